@@ -1,0 +1,159 @@
+"""Command line: ``groupsrc demo | check | run | report``.
+
+Exit codes: 0 success, 1 a problem with the data or design (every problem
+listed), 2 a usage error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import time
+from pathlib import Path
+
+from . import __version__
+from .problems import InputError
+
+EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
+
+
+def _parser():
+    p = argparse.ArgumentParser(
+        prog="groupsrc",
+        description="Group statistics for source-space EEG/MEG event-related responses.")
+    p.add_argument("--version", action="version", version=f"groupsrc {__version__}")
+    sub = p.add_subparsers(dest="command", metavar="COMMAND")
+
+    d = sub.add_parser("demo", help="build the demo cohort, run its analysis, write a report")
+    d.add_argument("--out", type=Path, default=Path("groupsrc_demo_results"),
+                   help="results folder (default: ./groupsrc_demo_results)")
+    d.add_argument("--cohort-dir", type=Path, default=None,
+                   help="where to build the demo cohort (default: OUT/../groupsrc_demo_cohort)")
+    d.add_argument("--small", action="store_true", help="a small, fast cohort (for tests)")
+    d.add_argument("--resamples", type=int, default=None)
+    d.add_argument("--seed", type=int, default=None)
+    d.add_argument("--workers", type=int, default=1)
+    d.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    d.add_argument("--build-only", action="store_true", help="build and check the cohort only")
+
+    c = sub.add_parser("check", help="validate cohort, design and settings; list every problem")
+    c.add_argument("analysis", type=Path, help="analysis file (TOML)")
+    c.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+    r = sub.add_parser("run", help="run an analysis and write a results folder")
+    r.add_argument("analysis", type=Path, help="analysis file (TOML)")
+    r.add_argument("--out", type=Path, default=None,
+                   help="results folder (default: 'results' beside the analysis file)")
+    r.add_argument("--resamples", type=int, default=None, help="override [inference] resamples")
+    r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
+    r.add_argument("--workers", type=int, default=1, help="parallel workers (default 1)")
+    r.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+
+    rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
+    rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
+    return p
+
+
+def _positive(args, parser):
+    for name in ("resamples", "workers"):
+        v = getattr(args, name, None)
+        if v is not None and v < 1:
+            parser.error(f"--{name} must be at least 1, got {v}")
+
+
+def main(argv=None) -> int:
+    parser = _parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help(sys.stderr)
+        return EXIT_USAGE
+    _positive(args, parser)
+    try:
+        return _dispatch(args, argv)
+    except InputError as exc:
+        print(exc.problems.format(), file=sys.stderr)
+        return EXIT_DATA
+    except KeyboardInterrupt:
+        print("interrupted; nothing was overwritten", file=sys.stderr)
+        return 130
+
+
+def _dispatch(args, argv) -> int:
+    command = ["groupsrc"] + (list(argv) if argv is not None else sys.argv[1:])
+    if args.command == "check":
+        return cmd_check(args.analysis, as_json=args.json)
+    if args.command == "run":
+        from .pipeline import run
+        t = time.perf_counter()
+        out = run(args.analysis, args.out, resamples=args.resamples, seed=args.seed,
+                  workers=args.workers, overwrite=args.overwrite, command=command)
+        print(f"results written to {out} ({time.perf_counter() - t:.1f} s); "
+              f"open {out / 'report.html'}")
+        return EXIT_OK
+    if args.command == "report":
+        from .outputs import build_report
+        if not (args.results / "run.json").exists():
+            from .problems import Problem
+            raise InputError([Problem(str(args.results), "not a groupsrc results folder "
+                                      "(no run.json)", "give the folder 'groupsrc run' wrote")])
+        path = build_report(args.results)
+        print(f"report rebuilt: {path}")
+        return EXIT_OK
+    if args.command == "demo":
+        return cmd_demo(args, command)
+    return EXIT_USAGE
+
+
+def cmd_check(analysis: Path, as_json=False) -> int:
+    from .pipeline import prepare
+    from .settings import parse_settings
+    settings = parse_settings(analysis)
+    prep = prepare(settings)
+    s = prep.summary
+    if as_json:
+        print(json.dumps(s, indent=2))
+        return EXIT_OK
+    print(f"{settings.path}: no problems found")
+    print(f"  participants : {s['participants']}"
+          + (" (" + ", ".join(f"{k} {v}" for k, v in s.get('per_group', {}).items()) + ")"
+             if s.get("per_group") else ""))
+    if s.get("conditions"):
+        print(f"  conditions   : {', '.join(s['conditions'])}")
+    if s.get("sessions"):
+        print(f"  sessions     : {', '.join(s['sessions'])}")
+    print(f"  maps         : {s['maps']}")
+    print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
+    print(f"  samples      : {s['samples']}, {s['time_range_ms'][0]:g} to "
+          f"{s['time_range_ms'][1]:g} ms every {s['sampling_interval_ms']:g} ms")
+    print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
+    print(f"  design       : {prep.design.X.shape[0]} participants x "
+          f"{prep.design.X.shape[1]} coefficients: {', '.join(prep.design.X.columns)}")
+    for plan in prep.plans:
+        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}] {plan.description}")
+    return EXIT_OK
+
+
+def cmd_demo(args, command) -> int:
+    from .simulate import build_demo_cohort
+    out = args.out.resolve()
+    cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
+    size = "small" if args.small else "default"
+    print(f"building the {size} demo cohort in {cohort_dir} ...")
+    t = time.perf_counter()
+    analysis = build_demo_cohort(cohort_dir, size=size)
+    print(f"  built in {time.perf_counter() - t:.1f} s")
+    rc = cmd_check(analysis)
+    if rc != EXIT_OK or args.build_only:
+        return rc
+    from .pipeline import run
+    t = time.perf_counter()
+    res = run(analysis, out, resamples=args.resamples, seed=args.seed, workers=args.workers,
+              overwrite=args.overwrite, command=command)
+    print(f"results written to {res} ({time.perf_counter() - t:.1f} s); "
+          f"open {res / 'report.html'}")
+    return EXIT_OK
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

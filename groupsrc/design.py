@@ -1,0 +1,236 @@
+"""Within-participant reduction, design matrix and contrast weights.
+
+Stage 2 and the model half of stage 3 of the pipeline: arrays and tables in,
+arrays out; no file I/O.
+
+Contrast meaning
+----------------
+Contrasts are defined on *marginal predictions*, not on coefficients, so
+their meaning does not depend on how factors are coded:
+
+* the reference grid holds every combination of the levels of the factors
+  in the ``between`` formula, with every numeric covariate at its sample
+  mean;
+* the prediction row ``r(...)`` is the design-matrix row of a reference
+  point, averaged over the grid with equal weight per combination;
+* ``within`` alone tests ``r()`` on the within-contrast maps (the condition
+  effect averaged over the between factors with equal weight, at the mean
+  of every covariate);
+* ``compare = {f = [a, b]}`` tests ``r(f=a) - r(f=b)``; with three or more
+  levels an F test of ``r(f=l_i) - r(f=l_last)`` for every other level;
+* ``slope = "x"`` tests ``r(x = mean + 1) - r(x = mean)``, the change per unit
+  of ``x`` averaged over the grid;
+* ``weights`` are taken as given over the design-matrix columns (treatment
+  coding for text columns, formulaic's naming, e.g. ``group[T.patient]``),
+  which ``groupsrc check`` prints.
+
+The design matrix uses formulaic's default (treatment) coding; because
+contrasts are built from predictions, sum coding would give the same
+estimates, statistics and p-values.
+"""
+
+from __future__ import annotations
+
+import itertools
+import re
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from formulaic import Formula, model_matrix
+
+from .problems import ProblemList, closest
+
+ID = "participant_id"
+
+
+def formula_variables(rhs: str) -> set:
+    """Participants columns a right-hand-side formula uses."""
+    try:
+        return set(Formula(rhs).required_variables)
+    except Exception:
+        return set()
+
+
+def factor_columns(settings, parts: pd.DataFrame, present) -> list:
+    """Columns treated as factors: text columns, and numeric ones wrapped in C()."""
+    rhs = settings.model.get("between") or "1"
+    out = []
+    for col in present:
+        if col not in parts.columns:
+            continue
+        wrapped = re.search(r"C\(\s*" + re.escape(col) + r"\b", rhs) is not None
+        if wrapped or not pd.api.types.is_numeric_dtype(parts[col]):
+            out.append(col)
+    # compare factors that are not in the formula are still factors
+    for c in settings.contrasts:
+        for f in (c.compare or {}):
+            if f in parts.columns and f not in out:
+                out.append(f)
+    return out
+
+
+@dataclass
+class Design:
+    X: pd.DataFrame            # participants x coefficients
+    spec: object               # formulaic ModelSpec, to build prediction rows
+    factors: dict              # factor column -> sorted levels
+    covariates: dict           # numeric column -> mean
+    participants: list
+
+
+def build_design(settings, parts: pd.DataFrame, problems: ProblemList, where) -> Design | None:
+    rhs = settings.model.get("between") or "1"
+    variables = sorted(formula_variables(rhs))
+    missing = [v for v in variables if v not in parts.columns]
+    if missing:
+        return None  # reported by the table checks
+    try:
+        Xm = model_matrix(rhs, parts, na_action="raise")
+    except Exception as exc:
+        problems.add(f"{settings.path} [model] between",
+                     f"formula '{rhs}' cannot be built: {exc}",
+                     "write a Wilkinson right-hand side such as \"group + age\"")
+        return None
+    X = pd.DataFrame(np.asarray(Xm, dtype=float), columns=list(Xm.columns),
+                     index=parts[ID].tolist())
+    factors = {}
+    for col in factor_columns(settings, parts, variables):
+        if col in variables:
+            factors[col] = sorted(parts[col].astype(str).unique()) if parts[col].dtype == object \
+                else sorted(parts[col].unique())
+    covariates = {v: float(parts[v].mean()) for v in variables if v not in factors}
+    n, p = X.shape
+    if n <= p:
+        problems.add(where, f"{n} participants for {p} design columns ({', '.join(X.columns)})",
+                     "the model needs more participants than coefficients; simplify 'between'")
+    else:
+        rank = np.linalg.matrix_rank(X.to_numpy())
+        if rank < p:
+            problems.add(where, f"design matrix is rank-deficient (rank {rank} < {p} columns: "
+                         f"{', '.join(X.columns)}); some columns are linear combinations of others",
+                         "remove redundant terms from 'between' (e.g. a covariate constant within "
+                         "a group, or two columns that carry the same information)")
+        for col in covariates:
+            if parts[col].std() == 0:
+                problems.add(where, f"covariate '{col}' is constant", "remove it from 'between'")
+    return Design(X=X, spec=Xm.model_spec, factors=factors, covariates=covariates,
+                  participants=parts[ID].tolist())
+
+
+def _prediction_row(design: Design, fixed: dict) -> np.ndarray:
+    levels = {f: ([fixed[f]] if f in fixed else lv) for f, lv in design.factors.items()}
+    names = list(levels)
+    rows = []
+    for combo in itertools.product(*[levels[n] for n in names]) if names else [()]:
+        point = dict(zip(names, combo))
+        for c, m in design.covariates.items():
+            point[c] = fixed.get(c, m)
+        rows.append(point)
+    grid = pd.DataFrame(rows) if rows and rows[0] else pd.DataFrame(index=[0])
+    M = design.spec.get_model_matrix(grid)
+    M = pd.DataFrame(np.asarray(M, dtype=float), columns=list(M.columns))
+    M = M.reindex(columns=design.X.columns, fill_value=0.0)
+    return M.to_numpy().mean(axis=0)
+
+
+@dataclass
+class ContrastPlan:
+    name: str
+    description: str
+    within: dict | None      # condition -> weight, or None (average of conditions)
+    weights: np.ndarray      # (p,) or (k, p)
+    kind: str                # "t" or "F"
+    scheme: str              # "sign-flip" or "permutation"
+
+
+def plan_contrast(spec, design: Design, problems: ProblemList, where) -> ContrastPlan | None:
+    cols = list(design.X.columns)
+    within = spec.within
+    if spec.weights:
+        unknown = [k for k in spec.weights if k not in cols]
+        for k in unknown:
+            problems.add(f"{where} weights", f"'{k}' is not a design-matrix column",
+                         closest(k, cols) or f"columns are: {', '.join(cols)}")
+        if unknown:
+            return None
+        w = np.array([float(spec.weights.get(c, 0.0)) for c in cols])
+        kind, scheme = "t", ("sign-flip" if within else "permutation")
+        desc = "raw weights " + ", ".join(f"{v:+g} {k}" for k, v in spec.weights.items())
+    elif spec.compare:
+        (fac, levels), = spec.compare.items()
+        if fac not in design.factors:
+            problems.add(f"{where} compare", f"'{fac}' is not a factor of the between formula",
+                         f"add {fac} to [model] between")
+            return None
+        known = design.factors[fac]
+        conv = []
+        for lv in levels:
+            match = [k for k in known if str(k) == str(lv)]
+            if not match:
+                return None  # reported by the table checks
+            conv.append(match[0])
+        rows = [_prediction_row(design, {fac: lv}) for lv in conv]
+        if len(rows) == 2:
+            w, kind = rows[0] - rows[1], "t"
+            desc = f"{fac}: {conv[0]} minus {conv[1]}"
+        else:
+            w, kind = np.vstack([r - rows[-1] for r in rows[:-1]]), "F"
+            desc = f"{fac}: any difference among {', '.join(map(str, conv))}"
+        scheme = "permutation"
+        if within:
+            desc = f"({_within_text(within)}) differs by {desc}"
+    elif spec.slope:
+        s = spec.slope
+        if s not in design.covariates:
+            problems.add(f"{where} slope", f"'{s}' is not a numeric covariate of the between formula",
+                         f"add {s} to [model] between")
+            return None
+        m = design.covariates[s]
+        w = _prediction_row(design, {s: m + 1.0}) - _prediction_row(design, {s: m})
+        kind, scheme = "t", "permutation"
+        desc = f"change per unit of {s}" + (f" in ({_within_text(within)})" if within else "")
+    else:
+        w, kind, scheme = _prediction_row(design, {}), "t", "sign-flip"
+        desc = _within_text(within) + " (averaged over groups, at covariate means)"
+    w = np.where(np.abs(w) < 1e-12, 0.0, w)
+    if not np.any(w):
+        problems.add(where, "the contrast has all-zero weights on this design",
+                     "check that the tested factor or covariate is in [model] between")
+        return None
+    if not spec.weights and not within and scheme == "sign-flip":
+        problems.add(where, "tests the grand mean of averaged maps", "give within weights")
+        return None
+    return ContrastPlan(spec.name, spec.description or desc, within, w, kind, scheme)
+
+
+def _within_text(within):
+    if not within:
+        return "average of conditions"
+    return " ".join(f"{'+' if v > 0 else '-'}{abs(v):g}*{k}" for k, v in within.items()).lstrip("+")
+
+
+def reduction_matrix(maps: pd.DataFrame, participants: list, within_col, within: dict | None,
+                     conditions: list) -> np.ndarray:
+    """(n_participants, n_maps) weights turning maps into one map per participant.
+
+    Sessions of the same condition are averaged; conditions are weighted by
+    ``within`` or, when None, averaged with equal weight.
+    """
+    W = np.zeros((len(participants), len(maps)))
+    row_of = {p: i for i, p in enumerate(participants)}
+    pid = maps[ID].to_numpy()
+    if within_col is None:
+        cond = np.array(["_all"] * len(maps))
+        weights = {"_all": 1.0}
+    else:
+        cond = maps[within_col].astype(str).to_numpy()
+        weights = {str(k): float(v) for k, v in within.items()} if within else \
+            {str(c): 1.0 / len(conditions) for c in conditions}
+    for p in participants:
+        i = row_of[p]
+        for c, wc in weights.items():
+            sel = np.nonzero((pid == p) & (cond == c))[0]
+            if sel.size:
+                W[i, sel] = wc / sel.size
+    return W

@@ -1,0 +1,209 @@
+"""The pipeline: load + validate -> reduce -> model -> resample -> correct -> write.
+
+Data flow one way: :func:`prepare` is the only stage that touches input
+files (through :func:`groupsrc.cohort.load_cohort`); :func:`analyse` works on
+arrays and tables only; :func:`groupsrc.outputs.write_results` is the only
+stage that writes.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import sys
+import tempfile
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from . import __version__
+from .cohort import Cohort, load_cohort, summary
+from .design import Design, build_design, plan_contrast, reduction_matrix
+from .problems import InputError, ProblemList
+from .results import AnalysisResult, ContrastResult
+from .settings import Settings, parse_settings
+
+
+@dataclass
+class Prepared:
+    settings: Settings
+    cohort: Cohort
+    design: Design
+    plans: list
+    time_index: np.ndarray
+    summary: dict
+
+
+def prepare(settings: Settings, *, progress=None) -> Prepared:
+    """Stage 1: load and validate everything; InputError lists every problem."""
+    problems = ProblemList()
+    if settings.model.get("mixed"):
+        problems.add(f"{settings.path} [model] mixed",
+                     "the mass-univariate mixed model is not available in this version",
+                     "set mixed = false: the summary-statistic GLM averages sessions within "
+                     "participants, which is exact for balanced designs")
+    try:
+        cohort = load_cohort(settings, progress=progress)
+    except InputError as exc:
+        raise InputError(list(problems) + list(exc.problems)) from None
+    parts = cohort.participants.reset_index(drop=True)
+    where = f"{settings.path} [model] between"
+    design = build_design(settings, parts, problems, where)
+    plans = []
+    if design is not None:
+        for spec in settings.contrasts:
+            plan = plan_contrast(spec, design, problems, f"{settings.path} contrast '{spec.name}'")
+            if plan is not None:
+                plans.append(plan)
+    tw = settings.inference.get("time_window")
+    tindex = cohort.time_axis.window(*(tw or (None, None)))
+    if tindex.size == 0:
+        t = cohort.time_axis.times
+        problems.add(f"{settings.path} [inference] time_window",
+                     f"{tw} holds no sample; the maps run from {t[0]:.4g} s to {t[-1]:.4g} s",
+                     "choose a window inside that range")
+    blocks = settings.inference.get("blocks")
+    if problems:
+        raise InputError(problems)
+    return Prepared(settings, cohort, design, plans, tindex, summary(cohort, settings))
+
+
+def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None):
+    """Stages 2-5 on arrays: returns an AnalysisResult."""
+    from .permutation import run_inference
+
+    s, cohort, design = prep.settings, prep.cohort, prep.design
+    inf = dict(s.inference)
+    if resamples is not None:
+        inf["resamples"] = int(resamples)
+    if seed is not None:
+        inf["seed"] = int(seed)
+    within_col = s.model.get("within")
+    conditions = sorted(map(str, cohort.maps[within_col].unique())) if within_col else []
+    participants = design.participants
+    taxis = cohort.time_axis.subset(prep.time_index)
+    adjacency = cohort.grid.adjacency(inf["neighbors"])
+    blocks = None
+    if inf.get("blocks"):
+        blocks = cohort.participants.loc[participants, inf["blocks"]].astype(str).to_numpy()
+    results, timings = [], {}
+    n_maps = cohort.n_maps
+    S = cohort.grid.n_sources
+    t_lo, t_hi = int(prep.time_index[0]), int(prep.time_index[-1]) + 1
+    for plan in prep.plans:
+        t0 = time.perf_counter()
+        W = reduction_matrix(cohort.maps, participants, within_col, plan.within, conditions)
+        data = np.empty((len(participants), S, t_hi - t_lo), dtype=np.float32)
+        flat = data.reshape(len(participants), -1)
+        # chunk over sources so the memmap is streamed, float64 accumulation
+        step = max(1, int(2e7 // max(1, n_maps * (t_hi - t_lo))))
+        for a in range(0, S, step):
+            b = min(S, a + step)
+            block = np.asarray(cohort.Y[:, a:b, t_lo:t_hi], dtype=np.float64)
+            data[:, a:b, :] = np.tensordot(W, block, axes=(1, 0)).astype(np.float32)
+        inference = run_inference(
+            data, design.X.to_numpy(), plan.weights, adjacency,
+            scheme=plan.scheme, correction=inf["correction"], n_resamples=inf["resamples"],
+            seed=inf["seed"], forming_p=inf["forming_p"], tails=inf["tails"],
+            alpha=inf["alpha"], blocks=blocks, n_jobs=workers, progress=progress,
+            tfce_e=inf["tfce_e"], tfce_h=inf["tfce_h"], tfce_steps=inf["tfce_steps"])
+        results.append(ContrastResult(
+            name=plan.name, description=plan.description, inference=inference, data=data,
+            participants=participants, design=design.X, weights=plan.weights,
+            within=plan.within))
+        timings[plan.name] = round(time.perf_counter() - t0, 3)
+    settings_dict = s.as_dict()
+    settings_dict["inference"] = inf
+    settings_dict["check_summary"] = prep.summary
+    return AnalysisResult(title=s.title, grid=cohort.grid, time_axis=taxis, contrasts=results,
+                          participants=cohort.participants, maps=cohort.maps,
+                          settings=settings_dict, timings=timings)
+
+
+def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
+        overwrite=False, progress=None, command=None) -> Path:
+    """Whole pipeline; writes a results folder and returns its path."""
+    from .outputs import write_results
+
+    t_start = time.perf_counter()
+    settings = parse_settings(analysis_path)
+    out = Path(out_dir) if out_dir else settings.base / "results"
+    out = out.resolve()
+    _check_out(out, overwrite, settings)
+    prep = prepare(settings, progress=progress)
+    t_loaded = time.perf_counter()
+    result = analyse(prep, resamples=resamples, seed=seed, workers=workers, progress=progress)
+    t_stats = time.perf_counter()
+    record = run_record(settings, prep, result, command, workers)
+    # write into a fresh sibling folder, then swap it in: a failed write loses nothing
+    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
+    try:
+        record["timings_s"] = {"load": round(t_loaded - t_start, 3),
+                               "statistics": round(t_stats - t_loaded, 3),
+                               "per_contrast": result.timings}
+        write_results(result, tmp, record)
+        if out.exists():
+            old = out.with_name(f".{out.name}.old{os.getpid()}")
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return out
+
+
+def _check_out(out: Path, overwrite: bool, settings: Settings):
+    if out.exists() and not out.is_dir():
+        raise InputError([_problem(out, "exists and is not a folder", "choose another --out")])
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise InputError([_problem(out, "results folder already exists and is not empty",
+                                   "pass --overwrite to replace it, or choose another --out")])
+    inputs = {settings.base.resolve(), settings.path.resolve()}
+    if out in inputs or settings.path.resolve().is_relative_to(out):
+        raise InputError([_problem(out, "results folder would contain the analysis inputs",
+                                   "choose an --out folder outside the cohort folder's inputs")])
+    out.parent.mkdir(parents=True, exist_ok=True)
+
+
+def _problem(where, what, fix):
+    from .problems import Problem
+    return Problem(str(where), what, fix)
+
+
+def run_record(settings, prep, result, command, workers) -> dict:
+    import platform
+    import importlib.metadata as md
+    libs = {}
+    for name in ("numpy", "scipy", "pandas", "nibabel", "statsmodels", "matplotlib",
+                 "formulaic", "joblib", "tqdm"):
+        try:
+            libs[name] = md.version(name)
+        except md.PackageNotFoundError:
+            pass
+    return {
+        "groupsrc_version": __version__,
+        "command": command if command is not None else sys.argv,
+        "analysis_file": str(settings.path.resolve()),
+        "settings": result.settings,
+        "seed": result.settings["inference"]["seed"],
+        "workers": workers,
+        "inputs_sha256": prep.cohort.inputs,
+        "cache_hit": prep.cohort.cache_hit,
+        "cohort": prep.summary,
+        "contrasts": [{"name": c.name, "description": c.description,
+                       "statistic": c.inference.kind, "df": list(c.inference.df),
+                       "scheme": c.inference.scheme, "resamples": c.inference.n_resamples,
+                       "exact": c.inference.exact,
+                       "weights": np.asarray(c.weights).tolist(),
+                       "coefficients": list(c.design.columns),
+                       "within": c.within}
+                      for c in result.contrasts],
+        "platform": {"python": platform.python_version(), "system": platform.platform(),
+                     "machine": platform.machine(), "cpus": os.cpu_count()},
+        "libraries": libs,
+    }

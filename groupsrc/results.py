@@ -1,0 +1,100 @@
+"""Small result objects passed from the statistics stages to the output stage.
+
+Arrays over sources and time are ``(n_sources, n_times)``; ``n_times`` is the
+analysed window (``time_axis``), not necessarily the whole input.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from .grid import Grid, TimeAxis
+
+
+@dataclass
+class InferenceResult:
+    """What the permutation engine returns for one contrast.
+
+    Attributes
+    ----------
+    kind : "t" or "F"
+    df : tuple
+        (df,) for t, (df1, df2) for F.
+    statistic, estimate, std_effect, se, p_uncorrected, p_corrected
+        (n_sources, n_times) float arrays.  ``estimate`` and ``se`` are the
+        contrast estimate and its standard error in input units (NaN for F);
+        ``std_effect`` is Hedges-corrected Cohen's d for t contrasts, partial
+        eta squared for F.  ``p_corrected`` is None for ``correction="none"``.
+    cluster_labels : (n_sources, n_times) int32, 0 = not in a cluster
+        Clusters numbered 1..K in the order of ``clusters`` rows.
+    clusters : DataFrame
+        One row per observed cluster: cluster, sign (+1/-1), mass, extent
+        (points), n_sources, n_samples, p_corrected.
+    null : DataFrame
+        One row per resample (identity first): resample, max_stat (the
+        maximum over both signs of the cluster score, TFCE or |statistic|
+        used for FWER), and, where defined, max_pos / max_neg.
+    threshold : float or None
+        Cluster-forming threshold on the statistic scale.
+    n_resamples : int
+        Number of rearrangements used, identity included.
+    exact : bool
+        True when every distinct rearrangement was enumerated.
+    scheme : str
+        "sign-flip" or "permutation" (+ " / Freedman-Lane" when nuisance).
+    """
+
+    kind: str
+    df: tuple
+    statistic: np.ndarray
+    estimate: np.ndarray
+    std_effect: np.ndarray
+    se: np.ndarray
+    p_uncorrected: np.ndarray
+    p_corrected: np.ndarray | None
+    cluster_labels: np.ndarray
+    clusters: pd.DataFrame
+    null: pd.DataFrame
+    threshold: float | None
+    n_resamples: int
+    exact: bool
+    scheme: str
+    correction: str
+    tails: str
+    extra: dict = field(default_factory=dict)
+
+
+@dataclass
+class ContrastResult:
+    """One contrast's full result, ready for writing."""
+
+    name: str
+    description: str
+    inference: InferenceResult
+    #: per-participant data the between model ran on: (n_participants, n_sources, n_times)
+    data: np.ndarray
+    #: participant ids in the row order of ``data``
+    participants: list
+    #: design matrix used (participants x coefficients) with column names
+    design: pd.DataFrame
+    #: contrast weights over ``design`` columns: (n_coef,) for t, (k, n_coef) for F
+    weights: np.ndarray
+    #: within-participant weights over conditions, e.g. {"rare": 1, "frequent": -1}
+    within: dict | None = None
+
+
+@dataclass
+class AnalysisResult:
+    """Everything a run produced, before writing."""
+
+    title: str
+    grid: Grid
+    time_axis: TimeAxis
+    contrasts: list
+    participants: pd.DataFrame
+    maps: pd.DataFrame
+    settings: dict
+    timings: dict = field(default_factory=dict)

@@ -1,0 +1,309 @@
+"""Analysis file (TOML) -> validated :class:`Settings`.
+
+Every key, its type and its default is declared once in ``SCHEMA`` below;
+the README's analysis-file reference documents the same keys.  Unknown or
+mistyped keys are problems (with the closest known key suggested), never
+silently ignored.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover
+    import tomli as tomllib
+
+from .problems import InputError, ProblemList, closest
+
+CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
+TAILS = ("two", "greater", "less")
+NEIGHBORS = ("face", "edge", "vertex")
+
+# key: (type(s), default, description)
+SCHEMA = {
+    "": {
+        "title": (str, "Untitled analysis", "title shown in the report"),
+    },
+    "cohort": {
+        "participants": (str, None, "participants table (TSV), required"),
+        "maps": (str, None, "maps table (TSV), required"),
+        "mask": (str, None, "source mask NIfTI; default: sources finite in every map"),
+        "time_start": ((int, float), None, "first sample time (s), overrides the NIfTI header"),
+        "sampling_interval": ((int, float), None, "sampling interval (s), overrides the header"),
+        "cache": (str, None, "folder for the loading cache; default ~/.cache/groupsrc"),
+    },
+    "model": {
+        "between": (str, "1", "Wilkinson right-hand side over participants columns"),
+        "within": (str, None, "maps-table column holding the condition, optional"),
+        "mixed": (bool, False, "mass-univariate mixed model (not yet available)"),
+    },
+    "contrasts": {
+        "name": (str, None, "contrast name (letters, digits, _ and -)"),
+        "description": (str, "", "free text for the report"),
+        "within": (dict, None, "weights over conditions, e.g. {rare = 1, frequent = -1}"),
+        "compare": (dict, None, "{factor = [level_a, level_b, ...]}"),
+        "slope": (str, None, "numeric participants column"),
+        "weights": (dict, None, "raw weights over design-matrix coefficient names"),
+    },
+    "inference": {
+        "correction": (str, "cluster-mass", " | ".join(CORRECTIONS)),
+        "resamples": (int, 5000, "number of rearrangements, identity included"),
+        "seed": (int, 20261201, "random seed for the rearrangements"),
+        "forming_p": ((int, float), 0.001, "cluster-forming threshold as a p-value"),
+        "alpha": ((int, float), 0.05, "family-wise (or FDR) level"),
+        "tails": (str, "two", " | ".join(TAILS)),
+        "time_window": (list, None, "[start, stop] in seconds; default: all samples"),
+        "neighbors": (str, "face", " | ".join(NEIGHBORS)),
+        "blocks": (str, None, "participants column defining exchangeability blocks"),
+        "tfce_e": ((int, float), 0.5, "TFCE extent exponent E"),
+        "tfce_h": ((int, float), 2.0, "TFCE height exponent H"),
+        "tfce_steps": (int, 100, "TFCE number of height steps"),
+    },
+}
+
+
+@dataclass
+class ContrastSpec:
+    name: str
+    description: str = ""
+    within: dict | None = None
+    compare: dict | None = None
+    slope: str | None = None
+    weights: dict | None = None
+
+
+@dataclass
+class Settings:
+    path: Path
+    title: str
+    cohort: dict
+    model: dict
+    contrasts: list
+    inference: dict
+    raw: dict = field(default_factory=dict, repr=False)
+
+    @property
+    def base(self) -> Path:
+        """Folder that relative paths in the analysis file are relative to."""
+        return self.path.parent
+
+    def resolve(self, rel: str | None) -> Path | None:
+        if rel is None:
+            return None
+        p = Path(rel).expanduser()
+        return p if p.is_absolute() else (self.base / p)
+
+    def as_dict(self) -> dict:
+        """Every setting after defaults, for the run record."""
+        return {
+            "title": self.title,
+            "cohort": dict(self.cohort),
+            "model": dict(self.model),
+            "contrasts": [{k: v for k, v in c.__dict__.items() if v not in (None, "")}
+                          for c in self.contrasts],
+            "inference": dict(self.inference),
+        }
+
+
+def _type_name(t):
+    if isinstance(t, tuple):
+        return "number"
+    return {str: "text", int: "integer", bool: "true/false", dict: "table",
+            list: "list"}.get(t, t.__name__)
+
+
+def _check_type(value, typ):
+    if typ is bool:
+        return isinstance(value, bool)
+    if isinstance(value, bool):
+        return False
+    return isinstance(value, typ)
+
+
+def _section(raw, name, where, problems, *, allow_missing=True):
+    schema = SCHEMA[name]
+    out = {}
+    for key, value in raw.items():
+        if key not in schema:
+            hint = closest(key, schema)
+            problems.add(f"{where}: key '{key}'" if name == "" else f"{where} [{name}]: key '{key}'",
+                         "unknown key", hint or f"known keys: {', '.join(schema)}")
+            continue
+        typ = schema[key][0]
+        if not _check_type(value, typ):
+            problems.add(f"{where} [{name}] {key}" if name else f"{where}: {key}",
+                         f"expected {_type_name(typ)}, got {value!r}",
+                         f"write {key} as a {_type_name(typ)}")
+            continue
+        out[key] = value
+    for key, (typ, default, _) in schema.items():
+        out.setdefault(key, default)
+    return out
+
+
+def parse_settings(path) -> Settings:
+    """Read and validate an analysis file; raise InputError listing every problem."""
+    path = Path(path)
+    problems = ProblemList()
+    where = str(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise InputError([_p(where, "analysis file not found", "check the path")])
+    except OSError as exc:
+        raise InputError([_p(where, f"cannot read the analysis file ({exc})", "")])
+    try:
+        raw = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError([_p(where, f"not valid TOML: {exc}",
+                             "fix the syntax at the line and column given")])
+    settings = settings_from_dict(raw, path, problems)
+    if problems:
+        raise InputError(problems)
+    return settings
+
+
+def _p(where, what, fix):
+    from .problems import Problem
+    return Problem(where, what, fix)
+
+
+def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings:
+    where = str(path)
+    top_known = {"title", "cohort", "model", "contrasts", "inference"}
+    top = {}
+    for key, value in raw.items():
+        if key not in top_known:
+            hint = closest(key, top_known)
+            problems.add(f"{where}: key '{key}'", "unknown key or section",
+                         hint or f"known: {', '.join(sorted(top_known))}")
+        elif key == "title":
+            if isinstance(value, str):
+                top["title"] = value
+            else:
+                problems.add(f"{where}: title", f"expected text, got {value!r}", "quote it")
+    for sec in ("cohort", "model", "inference"):
+        if sec in raw and not isinstance(raw[sec], dict):
+            problems.add(f"{where} [{sec}]", "must be a table", f"write it as [{sec}]")
+            raw = {**raw, sec: {}}
+    cohort = _section(raw.get("cohort", {}), "cohort", where, problems)
+    model = _section(raw.get("model", {}), "model", where, problems)
+    inference = _section(raw.get("inference", {}), "inference", where, problems)
+
+    for key in ("participants", "maps"):
+        if cohort.get(key) is None:
+            problems.add(f"{where} [cohort]", f"'{key}' is required",
+                         f"add {key} = \"{key}.tsv\" (path relative to the analysis file)")
+
+    _check_choice(inference, "correction", CORRECTIONS, where, problems)
+    _check_choice(inference, "tails", TAILS, where, problems)
+    _check_choice(inference, "neighbors", NEIGHBORS, where, problems)
+    if isinstance(inference.get("resamples"), int) and inference["resamples"] < 1:
+        problems.add(f"{where} [inference] resamples", "must be at least 1",
+                     "use e.g. 5000 (fewer gives coarse p-values)")
+    for key in ("forming_p", "alpha"):
+        v = inference.get(key)
+        if isinstance(v, (int, float)) and not (0 < v < 1):
+            problems.add(f"{where} [inference] {key}", f"must be between 0 and 1, got {v}",
+                         "give a p-value such as 0.001 or 0.05")
+    tw = inference.get("time_window")
+    if tw is not None:
+        if (len(tw) != 2 or not all(isinstance(x, (int, float)) and not isinstance(x, bool)
+                                    for x in tw) or not tw[0] < tw[1]):
+            problems.add(f"{where} [inference] time_window",
+                         f"expected [start, stop] in seconds with start < stop, got {tw!r}",
+                         "e.g. time_window = [0.0, 0.6]")
+        else:
+            inference["time_window"] = [float(tw[0]), float(tw[1])]
+    dt = cohort.get("sampling_interval")
+    if isinstance(dt, (int, float)) and dt <= 0:
+        problems.add(f"{where} [cohort] sampling_interval", "must be positive (seconds)",
+                     "e.g. sampling_interval = 0.004 for 250 Hz")
+    if inference.get("tfce_steps") is not None and inference["tfce_steps"] < 10:
+        problems.add(f"{where} [inference] tfce_steps", "must be at least 10", "use 100")
+
+    contrasts = []
+    raw_contrasts = raw.get("contrasts", [])
+    if not isinstance(raw_contrasts, list):
+        problems.add(f"{where} contrasts", "must be an array of tables",
+                     "write each contrast as a [[contrasts]] block")
+        raw_contrasts = []
+    if not raw_contrasts:
+        problems.add(f"{where}", "no contrasts defined",
+                     "add at least one [[contrasts]] block with a name and within / compare / slope / weights")
+    names = set()
+    for i, rc in enumerate(raw_contrasts):
+        cwhere = f"{where} [[contrasts]] #{i + 1}"
+        if not isinstance(rc, dict):
+            problems.add(cwhere, "must be a table", "")
+            continue
+        c = _section(rc, "contrasts", cwhere, problems)
+        name = c.get("name")
+        if not name:
+            problems.add(cwhere, "missing 'name'", "add name = \"my_contrast\"")
+            name = f"contrast_{i + 1}"
+        else:
+            cwhere = f"{where} contrast '{name}'"
+            ok = all(ch.isalnum() or ch in "_-" for ch in name)
+            if not ok:
+                problems.add(cwhere, "name may hold only letters, digits, '_' and '-'",
+                             "it becomes a folder name in the results")
+            if name in names:
+                problems.add(cwhere, "duplicate contrast name", "give each contrast its own name")
+            names.add(name)
+        if not any(c.get(k) for k in ("within", "compare", "slope", "weights")):
+            problems.add(cwhere, "says nothing to test",
+                         "give within = {...}, compare = {...}, slope = \"column\" or weights = {...}")
+        if c.get("weights") and (c.get("compare") or c.get("slope")):
+            problems.add(cwhere, "'weights' cannot be combined with 'compare' or 'slope'",
+                         "use weights alone (raw coefficients) or the named forms")
+        if c.get("compare") and c.get("slope"):
+            problems.add(cwhere, "'compare' and 'slope' cannot be combined",
+                         "write two contrasts")
+        for key in ("within", "weights"):
+            d = c.get(key)
+            if d:
+                bad = [k for k, v in d.items()
+                       if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)]
+                if bad:
+                    problems.add(f"{cwhere} {key}", f"weights must be numbers: {', '.join(bad)}",
+                                 "e.g. {rare = 1, frequent = -1}")
+        if c.get("within") and abs(sum(v for v in c["within"].values()
+                                       if isinstance(v, (int, float)))) > 1e-9:
+            problems.add(f"{cwhere} within", "weights over conditions must sum to 0",
+                         "a within contrast compares conditions, e.g. {rare = 1, frequent = -1}; "
+                         "to average conditions leave 'within' out")
+        cmp_ = c.get("compare")
+        if cmp_:
+            if len(cmp_) != 1:
+                problems.add(f"{cwhere} compare", "name exactly one factor",
+                             "e.g. compare = {group = [\"patient\", \"control\"]}")
+            for fac, levels in cmp_.items():
+                if (not isinstance(levels, list) or len(levels) < 2
+                        or not all(isinstance(x, (str, int)) for x in levels)):
+                    problems.add(f"{cwhere} compare.{fac}", "needs a list of at least two levels",
+                                 "e.g. [\"patient\", \"control\"]")
+                elif len(set(map(str, levels))) != len(levels):
+                    problems.add(f"{cwhere} compare.{fac}", "a level is listed twice", "")
+        if c.get("within") and not model.get("within"):
+            problems.add(cwhere, "has within weights but [model] within is not set",
+                         "add within = \"condition\" under [model]")
+        contrasts.append(ContrastSpec(name=name, description=c.get("description") or "",
+                                      within=c.get("within"), compare=c.get("compare"),
+                                      slope=c.get("slope"), weights=c.get("weights")))
+    return Settings(path=Path(path), title=top.get("title", SCHEMA[""]["title"][1]),
+                    cohort=cohort, model=model, contrasts=contrasts, inference=inference,
+                    raw=raw)
+
+
+def _check_choice(d, key, choices, where, problems):
+    v = d.get(key)
+    if v is not None and v not in choices:
+        hint = closest(str(v), choices)
+        problems.add(f"{where} {key}", f"'{v}' is not one of {', '.join(choices)}",
+                     hint or f"choose one of {', '.join(choices)}")
