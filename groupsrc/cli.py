@@ -107,9 +107,9 @@ def _dispatch(args, argv) -> int:
 
 def cmd_check(analysis: Path, as_json=False) -> int:
     from .pipeline import prepare
-    from .settings import parse_settings
-    settings = parse_settings(analysis)
-    prep = prepare(settings)
+    from .settings import read_settings
+    settings, problems = read_settings(analysis)
+    prep = prepare(settings, prior=problems)
     s = prep.summary
     if as_json:
         print(json.dumps(s, indent=2))

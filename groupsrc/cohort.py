@@ -215,6 +215,7 @@ def check_headers(settings, maps, mpath, problems):
     headers = [None] * len(maps)
     ref = None
     shape_bad, affine_bad, time_bad = [], [], []
+    rows = []
     for i, rel in enumerate(maps["path"]):
         row = f"{mpath} row {i + 2}"
         if not rel.strip():
@@ -236,8 +237,16 @@ def check_headers(settings, maps, mpath, problems):
                          "(x, y, z, time) is expected", "save every map with time as the 4th axis")
             continue
         headers[i] = h
-        if ref is None:
-            ref = h
+        rows.append((i, row, p, h))
+    if not rows:
+        return headers, None
+    # the reference geometry is the one most maps share, so one odd file is the one named
+    keys = [(h.shape[:3], tuple(np.round(h.affine, 3).ravel()), h.shape[3],
+             round(h.time_axis.dt, 9), round(h.time_axis.t0, 9)) for _, _, _, h in rows]
+    best = max(set(keys), key=lambda k: (keys.count(k), -keys.index(k)))
+    ref = rows[keys.index(best)][3]
+    for i, row, p, h in rows:
+        if h is ref:
             continue
         if h.shape[:3] != ref.shape[:3]:
             shape_bad.append((row, p, h))
@@ -308,6 +317,17 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         except ValueError as exc:
             problems.add(mask_path, str(exc), "give a 3D NIfTI mask")
     if problems:
+        # still count NaN/Inf in the maps that match the template, so that every
+        # problem is listed in one pass
+        good = [i for i, h in enumerate(headers) if h is not None and h.shape == ref.shape
+                and np.allclose(h.affine, ref.affine, atol=1e-3)]
+        _, _, bad = _decode([headers[i] for i in good], ref, mask, progress)
+        for j, n in bad.items():
+            i = good[j]
+            problems.add(f"{mpath} row {i + 2} ({headers[i].path})",
+                         f"{n} NaN/Inf value(s) inside the mask",
+                         "fix the inverse solution for this map, or give a mask that excludes "
+                         "those sources")
         raise InputError(problems)
 
     cache_dir = settings.resolve(settings.cohort.get("cache")) or _cache.default_cache_dir()

@@ -36,9 +36,15 @@ class Prepared:
     summary: dict
 
 
-def prepare(settings: Settings, *, progress=None) -> Prepared:
-    """Stage 1: load and validate everything; InputError lists every problem."""
-    problems = ProblemList()
+def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
+    """Stage 1: load and validate everything; InputError lists every problem.
+
+    ``prior`` holds problems already found in the analysis file; they are
+    reported together with those of the cohort and design.
+    """
+    problems = ProblemList(prior or [])
+    if any(settings.cohort.get(k) is None for k in ("participants", "maps")):
+        raise InputError(problems)
     if settings.model.get("mixed"):
         problems.add(f"{settings.path} [model] mixed",
                      "the mass-univariate mixed model is not available in this version",
@@ -47,7 +53,16 @@ def prepare(settings: Settings, *, progress=None) -> Prepared:
     try:
         cohort = load_cohort(settings, progress=progress)
     except InputError as exc:
-        raise InputError(list(problems) + list(exc.problems)) from None
+        problems.extend(exc.problems)
+        # still check the design, so that its problems are reported in the same pass
+        from .cohort import check_tables
+        parts = check_tables(settings, ProblemList())[0]
+        if parts is not None:
+            design = build_design(settings, parts, problems, f"{settings.path} [model] between")
+            if design is not None:
+                for spec in settings.contrasts:
+                    plan_contrast(spec, design, problems, f"{settings.path} contrast '{spec.name}'")
+        raise InputError(problems) from None
     parts = cohort.participants.reset_index(drop=True)
     where = f"{settings.path} [model] between"
     design = build_design(settings, parts, problems, where)

@@ -148,6 +148,20 @@ def _section(raw, name, where, problems, *, allow_missing=True):
 
 def parse_settings(path) -> Settings:
     """Read and validate an analysis file; raise InputError listing every problem."""
+    settings, problems = read_settings(path)
+    if problems:
+        raise InputError(problems)
+    return settings
+
+
+def read_settings(path):
+    """Read an analysis file leniently: (settings, problems).
+
+    Unknown keys and bad values are listed in ``problems`` and replaced by
+    their defaults, so that ``groupsrc check`` can go on to check the cohort
+    and report everything at once.  Raises InputError only when the file
+    cannot be read or parsed at all.
+    """
     path = Path(path)
     problems = ProblemList()
     where = str(path)
@@ -163,9 +177,7 @@ def parse_settings(path) -> Settings:
         raise InputError([_p(where, f"not valid TOML: {exc}",
                              "fix the syntax at the line and column given")])
     settings = settings_from_dict(raw, path, problems)
-    if problems:
-        raise InputError(problems)
-    return settings
+    return settings, problems
 
 
 def _p(where, what, fix):

@@ -1,0 +1,236 @@
+"""`groupsrc check` on a clean cohort and on copies broken in each listed way.
+
+Each broken copy must exit 1 and name the file / row / column of every problem.
+"""
+
+import hashlib
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+
+from conftest import AFFINE, N_T, SHAPE, copy_cohort, write_map
+from groupsrc.cli import main
+
+
+def run_check(analysis, capsys):
+    rc = main(["check", str(analysis)])
+    out = capsys.readouterr()
+    return rc, out.out + out.err
+
+
+def tree_hashes(root):
+    return {p.relative_to(root).as_posix(): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(root.rglob("*")) if p.is_file()}
+
+
+def test_clean_cohort_exits_0(tiny_cohort, capsys):
+    rc, text = run_check(tiny_cohort, capsys)
+    assert rc == 0, text
+    assert "no problems found" in text
+    assert "control 4, patient 4" in text
+    assert "60" in text and "-8 to 24 ms" in text
+
+
+def test_usage_error_exits_2(capsys):
+    with pytest.raises(SystemExit) as exc:
+        main(["run"])
+    assert exc.value.code == 2
+    assert main([]) == 2
+
+
+def _maps(a):
+    return pd.read_csv(a.parent / "maps.tsv", sep="\t", dtype=str)
+
+
+def _parts(a):
+    return pd.read_csv(a.parent / "participants.tsv", sep="\t", dtype=str)
+
+
+def _save(df, path):
+    df.to_csv(path, sep="\t", index=False)
+
+
+def _map_path(a, row):
+    return a.parent / _maps(a).loc[row, "path"]
+
+
+def break_missing_file(a):
+    _map_path(a, 0).unlink()
+    return ["row 2", "map file not found"]
+
+
+def break_not_nifti(a):
+    _map_path(a, 1).write_bytes(b"this is not an image\n" * 10)
+    return ["row 3", "cannot be read as NIfTI"]
+
+
+def break_3d(a):
+    write_map(_map_path(a, 2), np.zeros(SHAPE, np.float32))
+    return ["row 4", "is 3D", "4D map"]
+
+
+def break_shape(a):
+    write_map(_map_path(a, 3), np.zeros((6, 7, 6, N_T), np.float32))
+    return ["row 5", "grid shape (6, 7, 6) differs"]
+
+
+def break_affine(a):
+    aff = AFFINE.copy()
+    aff[0, 3] += 2.5
+    write_map(_map_path(a, 4), np.zeros(SHAPE + (N_T,), np.float32), affine=aff)
+    return ["row 6", "affine differs", "2.5 mm"]
+
+
+def break_time(a):
+    write_map(_map_path(a, 5), np.zeros(SHAPE + (N_T,), np.float32), dt=0.002)
+    return ["row 7", "time axis", "every 2 ms"]
+
+
+def break_nan(a):
+    p = _map_path(a, 6)
+    data = np.asanyarray(nib.load(str(p)).dataobj).copy()
+    data[2, 2, 2, :3] = np.nan
+    data[3, 3, 2, 0] = np.inf
+    write_map(p, data)
+    return ["row 8", "4 NaN/Inf value(s) inside the mask"]
+
+
+def break_duplicate(a):
+    m = _maps(a)
+    _save(pd.concat([m, m.iloc[[0]]], ignore_index=True), a.parent / "maps.tsv")
+    return ["rows 2, 18", "duplicate map for (participant_id='sub-01', condition='rare')"]
+
+
+def break_unknown_participant(a):
+    m = _maps(a)
+    m.loc[0, "participant_id"] = "sub-99"
+    m.loc[1, "participant_id"] = "sub-99"
+    _save(m, a.parent / "maps.tsv")
+    return ["participant 'sub-99' is not in participants.tsv",
+            "participant 'sub-01' has no maps in maps.tsv"]
+
+
+def break_missing_column(a):
+    _save(_parts(a).drop(columns=["age"]), a.parent / "participants.tsv")
+    return ["column 'age'", "named by the model but missing"]
+
+
+def break_rare_level(a):
+    p = _parts(a)
+    p.loc[0, "group"] = "sibling"
+    _save(p, a.parent / "participants.tsv")
+    return ["column 'group'", "level 'sibling' has only 1 participant"]
+
+
+def break_rank(a):
+    p = _parts(a)
+    p["age_months"] = (p["age"].astype(int) * 12).astype(str)
+    _save(p, a.parent / "participants.tsv")
+    text = a.read_text().replace('between = "group + age"', 'between = "group + age + age_months"')
+    a.write_text(text)
+    return ["rank-deficient", "age_months"]
+
+
+def break_key(a):
+    text = a.read_text().replace("forming_p = 0.05", "froming_p = 0.05")
+    a.write_text(text.replace("[model]", "[model]\nbetwen = \"group\""))
+    return ["key 'froming_p'", "did you mean 'forming_p'?", "key 'betwen'",
+            "did you mean 'between'?"]
+
+
+BREAKERS = [break_missing_file, break_not_nifti, break_3d, break_shape, break_affine,
+            break_time, break_nan, break_duplicate, break_unknown_participant,
+            break_missing_column, break_rare_level, break_rank, break_key]
+
+
+@pytest.mark.parametrize("breaker", BREAKERS, ids=lambda f: f.__name__)
+def test_each_broken_copy_exits_1_and_names_the_problem(tiny_cohort, tmp_path, capsys, breaker):
+    a = copy_cohort(tiny_cohort, tmp_path / "broken")
+    expected = breaker(a)
+    before = tree_hashes(a.parent)
+    rc, text = run_check(a, capsys)
+    assert rc == 1, text
+    for fragment in expected:
+        assert fragment in text, f"{fragment!r} not in:\n{text}"
+    # no input file is ever modified
+    assert tree_hashes(a.parent) == before
+
+
+def test_every_problem_reported_at_once(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "many")
+    # file-level problems that do not stop the others from being found
+    expected = []
+    for breaker in (break_missing_file, break_not_nifti, break_affine, break_time,
+                    break_duplicate, break_rare_level):
+        expected += breaker(a)
+    rc, text = run_check(a, capsys)
+    assert rc == 1
+    missing = [e for e in expected if e not in text]
+    assert not missing, f"not reported: {missing}\n{text}"
+    assert "6 problems found" in text or "problems found" in text
+
+
+def test_settings_problems_collected_together(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "settings")
+    text = a.read_text().replace('correction = "cluster-mass"', 'correction = "clustermass"')
+    text = text.replace("resamples = 50", "resamples = 0")
+    text += '\n[[contrasts]]\nname = "bad name!"\n'
+    a.write_text(text)
+    rc, out = run_check(a, capsys)
+    assert rc == 1
+    for frag in ["did you mean 'cluster-mass'?", "resamples", "must be at least 1",
+                 "contrast 'bad name!'", "says nothing to test"]:
+        assert frag in out, out
+
+
+def test_second_check_reuses_the_cache(tiny_cohort, capsys):
+    assert run_check(tiny_cohort, capsys)[0] == 0
+    rc, text = run_check(tiny_cohort, capsys)
+    assert rc == 0 and "loading cache: reused" in text
+
+
+def test_cache_invalidated_when_a_map_changes(tiny_cohort, capsys):
+    from groupsrc.pipeline import prepare
+    from groupsrc.settings import parse_settings
+    s = parse_settings(tiny_cohort)
+    first = np.array(prepare(s).cohort.Y)
+    p = tiny_cohort.parent / _maps(tiny_cohort).loc[0, "path"]
+    data = np.asanyarray(nib.load(str(p)).dataobj).copy()
+    data[2, 2, 2, :] += 5.0
+    write_map(p, data)
+    prep = prepare(parse_settings(tiny_cohort))
+    assert not prep.cohort.cache_hit
+    assert not np.array_equal(np.asarray(prep.cohort.Y), first)
+    # loaded values equal the file's voxel values (nibabel is the reference reader)
+    src = prep.cohort.grid.ijk.tolist().index([2, 2, 2])
+    np.testing.assert_allclose(prep.cohort.Y[0, src], data[2, 2, 2, :], rtol=1e-6)
+
+
+def test_time_axis_in_milliseconds_is_understood(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "ms")
+    for rel in _maps(a)["path"]:
+        p = a.parent / rel
+        data = np.asanyarray(nib.load(str(p)).dataobj)
+        write_map(p, data, tunit="msec")  # same times written in ms (NIfTI-1 xyzt_units = 16)
+    rc, text = run_check(a, capsys)
+    assert rc == 0, text
+    assert "-8 to 24 ms every 4 ms" in text
+
+
+def test_time_override_in_analysis_file(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "override")
+    a.write_text(a.read_text().replace('mask = "mask.nii.gz"',
+                                       'mask = "mask.nii.gz"\ntime_start = 0.1\nsampling_interval = 0.002'))
+    rc, text = run_check(a, capsys)
+    assert rc == 0, text
+    assert "100 to 116 ms every 2 ms" in text
+
+
+def test_default_mask_is_finite_sources(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "nomask")
+    a.write_text(a.read_text().replace('mask = "mask.nii.gz"\n', ""))
+    rc, text = run_check(a, capsys)
+    assert rc == 0, text
+    assert "sources      : 60" in text  # zero outside the fixture's 4x5x3 box
