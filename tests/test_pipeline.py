@@ -1,0 +1,107 @@
+"""End to end on the tiny fixture cohort: the run contract of the command line."""
+
+import json
+
+import nibabel as nib
+import numpy as np
+import pandas as pd
+import pytest
+from scipy import stats
+
+from conftest import copy_cohort
+from groupsrc.cli import main
+
+
+@pytest.fixture
+def ran(tiny_cohort, tmp_path):
+    out = tmp_path / "res"
+    rc = main(["run", str(tiny_cohort), "--out", str(out)])
+    assert rc == 0
+    return tiny_cohort, out
+
+
+def test_run_writes_the_results_folder(ran):
+    analysis, out = ran
+    for name in ("run.json", "methods.md", "report.html", "clusters.tsv"):
+        assert (out / name).is_file(), name
+    for c in ("rare_minus_frequent", "group_by_tone", "age_slope"):
+        for f in ("statistic.nii.gz", "estimate.nii.gz", "std_effect.nii.gz",
+                  "p_uncorrected.nii.gz", "p_corrected.nii.gz", "clusters.nii.gz",
+                  "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
+                  "cluster_timecourses.tsv"):
+            assert (out / c / f).is_file(), f"{c}/{f}"
+    rec = json.loads((out / "run.json").read_text())
+    assert rec["seed"] == 3 and rec["settings"]["inference"]["resamples"] == 50
+    assert all(len(h) == 64 for h in rec["inputs_sha256"].values())
+
+
+def test_statistic_map_is_paired_t_of_the_inputs(ran):
+    """The written t map of rare - frequent equals the t of the equal-weight mean
+    of the within differences in an OLS fit with centred coding, computed here
+    plainly with numpy from the raw NIfTI files (the textbook OLS t formula,
+    common practice; test_design.py checks the same quantity against statsmodels)."""
+    analysis, out = ran
+    maps = pd.read_csv(analysis.parent / "maps.tsv", sep="\t")
+    mask = np.asanyarray(nib.load(str(analysis.parent / "mask.nii.gz")).dataobj) > 0
+    diffs = []
+    for pid, grp in maps.groupby("participant_id", sort=False):
+        d = {r.condition: np.asanyarray(nib.load(str(analysis.parent / r.path)).dataobj)
+             for r in grp.itertuples()}
+        diffs.append(d["rare"] - d["frequent"])
+    diffs = np.stack(diffs)[:, mask]
+    parts = pd.read_csv(analysis.parent / "participants.tsv", sep="\t")
+    # reference: OLS by numpy lstsq on [1, patient, age - mean] -> t of the equal-weight mean
+    X = np.column_stack([np.ones(len(parts)), (parts.group == "patient") - 0.5,
+                         parts.age - parts.age.mean()])
+    n, p = X.shape
+    Yf = diffs.reshape(n, -1).astype(np.float64)
+    beta, *_ = np.linalg.lstsq(X, Yf, rcond=None)
+    res = Yf - X @ beta
+    s2 = (res ** 2).sum(0) / (n - p)
+    t_ref = beta[0] / np.sqrt(s2 * np.linalg.inv(X.T @ X)[0, 0])
+    img = nib.load(str(out / "rare_minus_frequent" / "statistic.nii.gz"))
+    t_map = np.asanyarray(img.dataobj)[mask].reshape(-1)
+    np.testing.assert_allclose(t_map, t_ref, rtol=1e-4, atol=1e-5)
+
+
+def test_existing_results_are_not_overwritten(ran, capsys):
+    analysis, out = ran
+    before = (out / "run.json").read_bytes()
+    rc = main(["run", str(analysis), "--out", str(out)])
+    assert rc == 1
+    assert "--overwrite" in capsys.readouterr().err
+    assert (out / "run.json").read_bytes() == before
+    assert main(["run", str(analysis), "--out", str(out), "--overwrite", "--seed", "4"]) == 0
+    assert json.loads((out / "run.json").read_text())["seed"] == 4
+
+
+def test_same_seed_same_p_whatever_workers(tiny_cohort, tmp_path):
+    outs = []
+    for w in ("1", "2"):
+        out = tmp_path / f"w{w}"
+        assert main(["run", str(tiny_cohort), "--out", str(out), "--workers", w]) == 0
+        outs.append(out)
+    for c in ("rare_minus_frequent", "group_by_tone", "age_slope"):
+        a, b = (np.asanyarray(nib.load(str(o / c / "p_corrected.nii.gz")).dataobj) for o in outs)
+        np.testing.assert_array_equal(a, b)
+
+
+def test_report_rebuilds_from_saved_results(ran):
+    analysis, out = ran
+    (out / "report.html").unlink()
+    assert main(["report", str(out)]) == 0
+    assert (out / "report.html").stat().st_size > 1000
+
+
+def test_report_on_a_non_results_folder_exits_1(tmp_path, capsys):
+    assert main(["report", str(tmp_path)]) == 1
+    assert "no run.json" in capsys.readouterr().err
+
+
+def test_run_with_bad_input_exits_1_and_writes_nothing(tiny_cohort, tmp_path, capsys):
+    a = copy_cohort(tiny_cohort, tmp_path / "bad")
+    (a.parent / "maps.tsv").write_text("participant_id\tcondition\n")
+    out = tmp_path / "never"
+    assert main(["run", str(a), "--out", str(out)]) == 1
+    assert "required column missing" in capsys.readouterr().err
+    assert not out.exists() or not any(out.iterdir())
