@@ -35,6 +35,8 @@ class Cohort:
     Y: np.ndarray                # (n_maps, n_sources, n_times) float32
     inputs: dict = field(default_factory=dict)   # path -> sha256
     cache_hit: bool = False
+    #: optional atlas: {"labels": (x, y, z) int array, "names": {int: str}}
+    atlas: dict | None = None
 
     @property
     def n_maps(self) -> int:
@@ -316,6 +318,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
             problems.add(mask_path, "mask file not found", "check the path, or leave mask out")
         except ValueError as exc:
             problems.add(mask_path, str(exc), "give a 3D NIfTI mask")
+    atlas = _read_atlas(settings, ref, problems)
     if problems:
         # still count NaN/Inf in the maps that match the template, so that every
         # problem is listed in one pass
@@ -366,8 +369,63 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         problems.add(mpath, "no source is finite in every map", "give a mask")
     if problems:
         raise InputError(problems)
+    if atlas is not None:
+        for key in ("atlas", "atlas_labels"):
+            p = settings.resolve(settings.cohort[key])
+            inputs[str(p)] = index.sha256(p)
     return Cohort(participants=parts.set_index(ID, drop=False), maps=maps, grid=grid,
-                  time_axis=time_axis, Y=Y, inputs=inputs, cache_hit=cache_hit)
+                  time_axis=time_axis, Y=Y, inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+
+
+def _read_atlas(settings, ref, problems):
+    """Optional labelled atlas on the template grid with its lookup table."""
+    ipath = settings.resolve(settings.cohort.get("atlas"))
+    lpath = settings.resolve(settings.cohort.get("atlas_labels"))
+    if ipath is None or lpath is None:
+        return None
+    n_before = len(problems)
+    labels = None
+    try:
+        h = read_header(ipath)
+        data = np.asanyarray(h.image.dataobj)
+        if data.ndim == 4 and data.shape[3] == 1:
+            data = data[..., 0]
+        if data.shape != ref.shape[:3]:
+            problems.add(ipath, f"atlas shape {data.shape} differs from the maps' {ref.shape[:3]}",
+                         "resample the atlas onto the template grid (nearest neighbour)")
+        elif not np.allclose(h.affine, ref.affine, atol=1e-3):
+            problems.add(ipath, f"atlas affine differs from the maps: "
+                         f"{affine_difference(h.affine, ref.affine)}",
+                         "resample the atlas onto the template grid")
+        elif not np.all(np.isfinite(data)) or not np.allclose(data, np.round(data)):
+            problems.add(ipath, "atlas values must be integer labels", "save it as an integer image")
+        else:
+            labels = np.round(data).astype(np.int32)
+    except FileNotFoundError:
+        problems.add(ipath, "atlas file not found", "check the path")
+    except ValueError as exc:
+        problems.add(ipath, str(exc), "give a 3D NIfTI label image")
+    table = read_table(lpath, problems, "atlas labels")
+    names = None
+    if table is not None:
+        miss = [c for c in ("index", "name") if c not in table.columns]
+        if miss:
+            problems.add(lpath, f"missing column(s) {', '.join(miss)}",
+                         "the lookup table needs columns 'index' and 'name'")
+        else:
+            idx = pd.to_numeric(table["index"], errors="coerce")
+            for i in np.nonzero(idx.isna().to_numpy())[0]:
+                problems.add(f"{lpath} row {i + 2}", f"index {table['index'][i]!r} is not an integer",
+                             "give the label's integer value")
+            names = {int(k): str(v) for k, v in zip(idx, table["name"]) if not pd.isna(k)}
+    if labels is not None and names is not None:
+        unknown = sorted(set(np.unique(labels).tolist()) - set(names) - {0})
+        if unknown:
+            problems.add(lpath, f"labels {unknown[:10]} occur in the atlas but not in the table",
+                         "add a row for each label (0 means unlabelled)")
+    if len(problems) > n_before:
+        return None
+    return {"labels": labels, "names": names}
 
 
 def _decode(headers, ref, mask, progress):

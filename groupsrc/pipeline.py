@@ -132,6 +132,8 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     settings_dict = s.as_dict()
     settings_dict["inference"] = inf
     settings_dict["check_summary"] = prep.summary
+    if cohort.atlas is not None:
+        settings_dict["atlas"] = cohort.atlas
     return AnalysisResult(title=s.title, grid=cohort.grid, time_axis=taxis, contrasts=results,
                           participants=cohort.participants, maps=cohort.maps,
                           settings=settings_dict, timings=timings)
@@ -204,7 +206,7 @@ def run_record(settings, prep, result, command, workers) -> dict:
         "groupsrc_version": __version__,
         "command": command if command is not None else sys.argv,
         "analysis_file": str(settings.path.resolve()),
-        "settings": result.settings,
+        "settings": {k: v for k, v in result.settings.items() if k != "atlas"},
         "seed": result.settings["inference"]["seed"],
         "workers": workers,
         "inputs_sha256": prep.cohort.inputs,

@@ -36,6 +36,8 @@ SCHEMA = {
         "time_start": ((int, float), None, "first sample time (s), overrides the NIfTI header"),
         "sampling_interval": ((int, float), None, "sampling interval (s), overrides the header"),
         "cache": (str, None, "folder for the loading cache; default ~/.cache/groupsrc"),
+        "atlas": (str, None, "labelled atlas NIfTI on the template grid (integer labels), optional"),
+        "atlas_labels": (str, None, "TSV with columns index and name for the atlas labels"),
     },
     "model": {
         "between": (str, "1", "Wilkinson right-hand side over participants columns"),
@@ -232,6 +234,9 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
                          "e.g. time_window = [0.0, 0.6]")
         else:
             inference["time_window"] = [float(tw[0]), float(tw[1])]
+    if (cohort.get("atlas") is None) != (cohort.get("atlas_labels") is None):
+        problems.add(f"{where} [cohort]", "'atlas' and 'atlas_labels' go together",
+                     "give both the atlas image and its lookup table, or neither")
     dt = cohort.get("sampling_interval")
     if isinstance(dt, (int, float)) and dt <= 0:
         problems.add(f"{where} [cohort] sampling_interval", "must be positive (seconds)",

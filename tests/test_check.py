@@ -234,3 +234,21 @@ def test_default_mask_is_finite_sources(tiny_cohort, tmp_path, capsys):
     rc, text = run_check(a, capsys)
     assert rc == 0, text
     assert "sources      : 60" in text  # zero outside the fixture's 4x5x3 box
+
+
+def test_atlas_is_checked_against_the_grid(tiny_cohort, tmp_path, capsys):
+    from conftest import write_mask
+    a = copy_cohort(tiny_cohort, tmp_path / "atlas")
+    lab = np.zeros(SHAPE, np.uint8)
+    lab[1:3] = 1
+    lab[3:5] = 2
+    write_mask(a.parent / "atlas.nii.gz", lab)
+    (a.parent / "atlas.tsv").write_text("index\tname\n1\tfront\n")
+    a.write_text(a.read_text().replace('mask = "mask.nii.gz"',
+                                       'mask = "mask.nii.gz"\natlas = "atlas.nii.gz"\n'
+                                       'atlas_labels = "atlas.tsv"'))
+    rc, text = run_check(a, capsys)
+    assert rc == 1 and "labels [2] occur in the atlas but not in the table" in text
+    (a.parent / "atlas.tsv").write_text("index\tname\n1\tfront\n2\tback\n")
+    rc, text = run_check(a, capsys)
+    assert rc == 0, text
