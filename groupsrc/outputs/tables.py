@@ -1,0 +1,351 @@
+"""Tidy result tables (one observation per row), computed from a ContrastResult.
+
+``COLUMNS`` documents every column of every table; the README copies it and
+the tests check the written files against it, so the two cannot drift.
+
+Effect-size intervals
+---------------------
+``std_effect`` is Hedges' g (Cohen's d with Hedges' small-sample factor) for
+t contrasts and partial eta squared for F contrasts.  Its 95% interval at the
+peak is found by inverting the noncentral t distribution of the peak t
+(the noncentrality delta with P(T >= t) = 0.025 and P(T <= t) = 0.025, df of
+the model), scaled to the standardized scale by sqrt(c' (X'X)^+ c), the
+variance factor of the contrast.  For F contrasts the noncentral F is
+inverted for lambda and converted with eta^2 = lambda / (lambda + df1 + df2
++ 1).  The interval is exact under normal errors for a point chosen in
+advance; at a cluster's peak, which was selected for being large, the
+estimate and both intervals are biased away from zero.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+from scipy import optimize, stats
+
+from ..grid import Grid, TimeAxis
+
+#: column documentation: {table file: {column: "meaning (unit)"}}
+COLUMNS = {
+    "clusters.tsv": {
+        "contrast": "contrast name",
+        "cluster": "cluster number, as in clusters.nii.gz (1 = smallest corrected p, then largest mass)",
+        "sign": "+1 positive, -1 negative statistic (always +1 for F)",
+        "stat_type": "statistic: t or F",
+        "mass": "sum of the statistic over the cluster's source x time points (statistic units x points)",
+        "n_points": "number of source x time points in the cluster",
+        "n_sources": "number of distinct sources in the cluster",
+        "n_samples": "number of distinct time samples in the cluster",
+        "p_corrected": "family-wise corrected p of the cluster (n/a without correction)",
+        "t_start_ms": "first sample time of the cluster (ms)",
+        "t_end_ms": "last sample time of the cluster (ms)",
+        "t_peak_ms": "time of the largest |statistic| in the cluster (ms)",
+        "peak_x_mm": "x world coordinate of the peak (mm, template space)",
+        "peak_y_mm": "y world coordinate of the peak (mm)",
+        "peak_z_mm": "z world coordinate of the peak (mm)",
+        "peak_stat": "statistic at the peak (t or F)",
+        "estimate_at_peak": "contrast estimate at the peak (input units; n/a for F)",
+        "estimate_ci_low": "lower end of the 95% interval of the estimate, estimate - t(0.975, df) se (input units)",
+        "estimate_ci_high": "upper end of that interval (input units)",
+        "std_effect_at_peak": "standardized effect at the peak: Hedges' g (t) or partial eta squared (F) (unitless)",
+        "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless)",
+        "std_effect_ci_high": "upper end of that interval (unitless)",
+        "atlas_label_at_peak": "atlas region at the peak (only when an atlas is given)",
+    },
+    "peaks.tsv": {
+        "contrast": "contrast name",
+        "cluster": "cluster number",
+        "peak": "peak number within the cluster (1 = largest |statistic|)",
+        "x_mm": "x world coordinate (mm)",
+        "y_mm": "y world coordinate (mm)",
+        "z_mm": "z world coordinate (mm)",
+        "time_ms": "sample time (ms)",
+        "statistic": "statistic at the peak (t or F)",
+        "estimate": "contrast estimate at the peak (input units; n/a for F)",
+    },
+    "cluster_timecourses.tsv": {
+        "participant_id": "participant",
+        "group": "participant's group (only when the participants table has a group column)",
+        "measure": "what the value is: the contrast's per-participant measure, named as the contrast",
+        "cluster": "cluster number",
+        "time_ms": "sample time (ms), every sample of the analysed window",
+        "value": "mean over the cluster's sources of the participant's measure at that time (input units)",
+    },
+    "null_distribution.tsv": {
+        "resample": "rearrangement number (0 = the observed data)",
+        "max_stat": "largest score over the whole map in that rearrangement, on the scale used for the FWER",
+        "max_pos": "largest positive score (cluster mass/extent, TFCE or statistic)",
+        "max_neg": "most negative score (n/a when not defined)",
+    },
+    "cluster_atlas.tsv": {
+        "contrast": "contrast name",
+        "cluster": "cluster number",
+        "label": "atlas label value",
+        "name": "atlas region name",
+        "n_sources": "cluster sources in that region",
+        "share": "fraction of the cluster's sources in that region (0..1)",
+    },
+}
+
+def columns_markdown() -> str:
+    """COLUMNS as Markdown tables, one per file, for the README."""
+    out = []
+    for table, cols in COLUMNS.items():
+        out.append(f"`{table}`\n\n| column | meaning (unit) |\n|---|---|")
+        out += [f"| `{c}` | {m} |" for c, m in cols.items()]
+        out.append("")
+    return "\n".join(out)
+
+
+#: clusters beyond this many (in table order) get no time courses
+MAX_TIMECOURSE_CLUSTERS = 20
+
+
+def times_ms(time_axis: TimeAxis) -> np.ndarray:
+    return np.round(time_axis.times * 1e3, 3)
+
+
+def reported_clusters(clusters: pd.DataFrame, alpha: float) -> list:
+    """Clusters shown in figures: corrected p <= alpha, or all when p is not available."""
+    if clusters is None or len(clusters) == 0:
+        return []
+    p = pd.to_numeric(clusters["p_corrected"], errors="coerce")
+    if p.isna().all():
+        return [int(c) for c in clusters["cluster"]]
+    return [int(c) for c, pv in zip(clusters["cluster"], p) if pv <= alpha]
+
+
+def contrast_variance_factor(design: pd.DataFrame, weights) -> float:
+    """v = c' (X'X)^+ c, so that se = sigma sqrt(v) for a t contrast."""
+    X = np.asarray(design, float)
+    c = np.asarray(weights, float).reshape(-1)
+    return float(c @ np.linalg.pinv(X.T @ X) @ c)
+
+
+def _walk_root(f, start, step, direction, max_steps=60):
+    """Root of f, walking from ``start`` by ``step`` in ``direction`` until f
+    changes sign, then bisecting (brentq); NaN when f is not finite first."""
+    a, fa = start, f(start)
+    if not np.isfinite(fa):
+        return np.nan
+    if fa == 0:
+        return a
+    for _ in range(max_steps):
+        b = a + direction * step
+        fb = f(b)
+        if not np.isfinite(fb):
+            return np.nan
+        if fa * fb <= 0:
+            lo, hi = (a, b) if a < b else (b, a)
+            return optimize.brentq(f, lo, hi, xtol=1e-8)
+        a, fa = b, fb
+    return np.nan
+
+
+def noncentral_t_interval(t, df, level=0.95):
+    """Interval for the noncentrality delta of a noncentral t given observed ``t``:
+    P(T >= t | delta_low) = P(T <= t | delta_high) = (1 - level) / 2."""
+    if not np.isfinite(t):
+        return np.nan, np.nan
+    a = (1 - level) / 2
+    step = 0.5 * np.sqrt(1 + t * t / (2 * df))   # about half a standard deviation of T
+    lo = _walk_root(lambda d: stats.nct.sf(t, df, d) - a, t, step, -1)
+    hi = _walk_root(lambda d: stats.nct.cdf(t, df, d) - a, t, step, +1)
+    return lo, hi
+
+
+def noncentral_f_interval(F, df1, df2, level=0.95):
+    """Interval for lambda of a noncentral F given observed ``F`` (0 if not reached)."""
+    if not np.isfinite(F):
+        return np.nan, np.nan
+    a = (1 - level) / 2
+    step = 1.0 + 0.25 * F * df1
+
+    def upper_tail(lam):
+        return stats.ncf.sf(F, df1, df2, lam) if lam > 0 else stats.f.sf(F, df1, df2)
+
+    def lower_tail(lam):
+        return stats.ncf.cdf(F, df1, df2, lam) if lam > 0 else stats.f.cdf(F, df1, df2)
+
+    lo = 0.0 if upper_tail(0) >= a else _walk_root(lambda m: upper_tail(m) - a, 0.0, step, 1)
+    hi = 0.0 if lower_tail(0) <= a else _walk_root(lambda m: lower_tail(m) - a, 0.0, step, 1)
+    return lo, hi
+
+
+def _peak_of(stat, labels, k):
+    pts = np.flatnonzero(labels.reshape(-1) == k)
+    vals = np.abs(stat.reshape(-1)[pts])
+    vals = np.where(np.isfinite(vals), vals, -np.inf)
+    best = pts[int(np.argmax(vals))]
+    return divmod(int(best), stat.shape[1])
+
+
+def cluster_table(contrast, grid: Grid, time_axis: TimeAxis, atlas=None) -> pd.DataFrame:
+    """clusters.tsv rows for one contrast (columns of ``COLUMNS['clusters.tsv']``)."""
+    inf = contrast.inference
+    cols = [c for c in COLUMNS["clusters.tsv"] if c != "atlas_label_at_peak" or atlas]
+    table = inf.clusters
+    if table is None or len(table) == 0:
+        return pd.DataFrame(columns=cols)
+    stat = np.asarray(inf.statistic, float)
+    labels = np.asarray(inf.cluster_labels)
+    tms = times_ms(time_axis)
+    coords = grid.coords_mm
+    df = inf.df
+    v = contrast_variance_factor(contrast.design, contrast.weights) if inf.kind == "t" else np.nan
+    rows = []
+    for rec in table.to_dict("records"):
+        k = int(rec["cluster"])
+        member = labels == k
+        src = np.flatnonzero(member.any(axis=1))
+        smp = np.flatnonzero(member.any(axis=0))
+        s, t = _peak_of(stat, labels, k)
+        row = {"contrast": contrast.name, "cluster": k, "sign": int(rec["sign"]),
+               "stat_type": inf.kind, "mass": float(rec["mass"]),
+               "n_points": int(member.sum()), "n_sources": int(src.size),
+               "n_samples": int(smp.size), "p_corrected": rec.get("p_corrected", np.nan),
+               "t_start_ms": tms[smp[0]], "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t],
+               "peak_x_mm": coords[s, 0], "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2],
+               "peak_stat": stat[s, t]}
+        g = float(inf.std_effect[s, t])
+        if inf.kind == "t":
+            est, se = float(inf.estimate[s, t]), float(inf.se[s, t])
+            q = stats.t.ppf(0.975, df[0])
+            lo, hi = noncentral_t_interval(stat[s, t], df[0])
+            row.update(estimate_at_peak=est, estimate_ci_low=est - q * se,
+                       estimate_ci_high=est + q * se, std_effect_at_peak=g,
+                       std_effect_ci_low=lo * np.sqrt(v), std_effect_ci_high=hi * np.sqrt(v))
+        else:
+            lo, hi = noncentral_f_interval(stat[s, t], df[0], df[1])
+            conv = df[0] + df[1] + 1
+            row.update(estimate_at_peak=np.nan, estimate_ci_low=np.nan, estimate_ci_high=np.nan,
+                       std_effect_at_peak=g, std_effect_ci_low=lo / (lo + conv),
+                       std_effect_ci_high=hi / (hi + conv))
+        if atlas:
+            lab = int(grid.from_volume(atlas["labels"])[s])
+            row["atlas_label_at_peak"] = atlas.get("names", {}).get(lab, str(lab)) if lab else "none"
+        rows.append(row)
+    return pd.DataFrame(rows, columns=cols)
+
+
+def atlas_table(contrast, grid: Grid, atlas) -> pd.DataFrame:
+    """cluster_atlas.tsv: share of each cluster's sources in each atlas region."""
+    cols = list(COLUMNS["cluster_atlas.tsv"])
+    labels = np.asarray(contrast.inference.cluster_labels)
+    per_source = np.asarray(grid.from_volume(atlas["labels"])).astype(np.int64)
+    names = atlas.get("names", {})
+    rows = []
+    for k in np.unique(labels[labels > 0]):
+        src = np.flatnonzero((labels == k).any(axis=1))
+        vals, counts = np.unique(per_source[src], return_counts=True)
+        for lab, n in sorted(zip(vals, counts), key=lambda x: -x[1]):
+            rows.append({"contrast": contrast.name, "cluster": int(k), "label": int(lab),
+                         "name": names.get(int(lab), "none" if lab == 0 else str(lab)),
+                         "n_sources": int(n), "share": n / src.size})
+    return pd.DataFrame(rows, columns=cols)
+
+
+def local_maxima(stat, labels, adjacency) -> np.ndarray:
+    """(S, T) bool: points whose |stat| is >= that of every neighbour in the same
+    cluster (space neighbours at the same time, the same source at t +/- 1)."""
+    a = np.abs(np.asarray(stat, float))
+    a = np.where(np.isfinite(a) & (labels > 0), a, -np.inf)
+    best = np.full(a.shape, -np.inf)
+    coo = adjacency.tocoo()
+    r, c = coo.row, coo.col
+    for lo in range(0, r.size, 20000):
+        rr, cc = r[lo:lo + 20000], c[lo:lo + 20000]
+        same = labels[rr] == labels[cc]
+        np.maximum.at(best, rr, np.where(same, a[cc], -np.inf))
+    same_prev = np.zeros(a.shape, bool)
+    same_prev[:, 1:] = labels[:, 1:] == labels[:, :-1]
+    prev = np.full(a.shape, -np.inf)
+    prev[:, 1:] = np.where(same_prev[:, 1:], a[:, :-1], -np.inf)
+    nxt = np.full(a.shape, -np.inf)
+    nxt[:, :-1] = np.where(same_prev[:, 1:], a[:, 1:], -np.inf)
+    best = np.maximum(best, np.maximum(prev, nxt))
+    return (labels > 0) & np.isfinite(a) & (a >= best)
+
+
+def peak_table(contrast, grid: Grid, time_axis: TimeAxis, adjacency, min_separation_mm=20.0,
+               max_per_cluster=10) -> pd.DataFrame:
+    """peaks.tsv: local maxima of |statistic| per cluster, at least
+    ``min_separation_mm`` apart in space, largest first."""
+    cols = list(COLUMNS["peaks.tsv"])
+    inf = contrast.inference
+    labels = np.asarray(inf.cluster_labels)
+    if not np.any(labels > 0):
+        return pd.DataFrame(columns=cols)
+    stat = np.asarray(inf.statistic, float)
+    est = np.asarray(inf.estimate, float)
+    coords = grid.coords_mm
+    tms = times_ms(time_axis)
+    lm = local_maxima(stat, labels, adjacency)
+    s_idx, t_idx = np.nonzero(lm)
+    order = np.argsort(-np.abs(stat[s_idx, t_idx]), kind="stable")
+    s_idx, t_idx = s_idx[order], t_idx[order]
+    ks = labels[s_idx, t_idx]
+    rows = []
+    for k in np.unique(ks):
+        chosen = []
+        for s, t in zip(s_idx[ks == k], t_idx[ks == k]):
+            if any(np.linalg.norm(coords[s] - coords[c]) < min_separation_mm for c, _ in chosen):
+                continue
+            chosen.append((s, t))
+            if len(chosen) >= max_per_cluster:
+                break
+        for j, (s, t) in enumerate(chosen, start=1):
+            rows.append({"contrast": contrast.name, "cluster": int(k), "peak": j,
+                         "x_mm": coords[s, 0], "y_mm": coords[s, 1], "z_mm": coords[s, 2],
+                         "time_ms": tms[t], "statistic": stat[s, t],
+                         "estimate": est[s, t] if inf.kind == "t" else np.nan})
+    return pd.DataFrame(rows, columns=cols)
+
+
+def timecourse_table(contrast, participants: pd.DataFrame, time_axis: TimeAxis,
+                     max_clusters=MAX_TIMECOURSE_CLUSTERS) -> pd.DataFrame:
+    """cluster_timecourses.tsv: per participant, cluster and sample, the mean
+    of the per-participant measure over the cluster's sources (first
+    ``max_clusters`` clusters in table order)."""
+    labels = np.asarray(contrast.inference.cluster_labels)
+    ids = [str(p) for p in contrast.participants]
+    groups = None
+    if participants is not None and "group" in participants.columns:
+        parts = participants.copy()
+        if "participant_id" in parts.columns:
+            parts = parts.set_index(parts["participant_id"].astype(str), drop=False)
+        parts.index = parts.index.astype(str)
+        groups = parts.loc[ids, "group"].astype(str).to_numpy()
+    cols = [c for c in COLUMNS["cluster_timecourses.tsv"] if c != "group" or groups is not None]
+    clusters = contrast.inference.clusters
+    ks = [int(k) for k in clusters["cluster"]][:max_clusters] if clusters is not None else []
+    tms = times_ms(time_axis)
+    data = np.asarray(contrast.data)
+    frames = []
+    for k in ks:
+        src = np.flatnonzero((labels == k).any(axis=1))
+        if src.size == 0:
+            continue
+        vals = data[:, src, :].astype(np.float64).mean(axis=1)  # (n, T)
+        n, T = vals.shape
+        f = {"participant_id": np.repeat(ids, T)}
+        if groups is not None:
+            f["group"] = np.repeat(groups, T)
+        f.update({"measure": contrast.name, "cluster": k, "time_ms": np.tile(tms, n),
+                  "value": vals.reshape(-1)})
+        frames.append(pd.DataFrame(f, columns=cols))
+    if not frames:
+        return pd.DataFrame(columns=cols)
+    return pd.concat(frames, ignore_index=True)
+
+
+def null_table(contrast) -> pd.DataFrame:
+    cols = list(COLUMNS["null_distribution.tsv"])
+    null = contrast.inference.null
+    if null is None or len(null) == 0:
+        return pd.DataFrame(columns=cols)
+    out = null.copy()
+    for c in cols:
+        if c not in out.columns:
+            out[c] = np.nan
+    return out[cols]

@@ -1,0 +1,182 @@
+"""write_results: an AnalysisResult -> the results folder.
+
+Maps and tables are written first; figures, report.html and methods.md are
+then built from the written folder by :func:`build_report` (so a rebuilt
+report is the same as the first), and run.json comes last with the list of
+files.
+"""
+
+from __future__ import annotations
+
+import importlib.metadata as md
+import platform
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from ..results import AnalysisResult, ContrastResult
+from . import nifti, tables
+from .files import jsonable, save_nifti, write_json, write_tsv
+
+LIBRARIES = ("numpy", "scipy", "pandas", "nibabel", "matplotlib", "statsmodels", "formulaic")
+SUMMARY_FILE = "analysis_summary.json"
+MASK_FILE = "source_mask.nii.gz"
+
+
+def _version():
+    try:
+        from .. import __version__
+        return __version__
+    except ImportError:  # pragma: no cover
+        return "0.1.0"
+
+
+def cohort_summary(analysis: AnalysisResult) -> dict:
+    """The checks summary when the pipeline gave one, else what the result itself shows."""
+    given = analysis.settings.get("check_summary")
+    if given:
+        return dict(given)
+    parts = analysis.participants
+    out = {"participants": int(len(parts)), "maps": int(len(analysis.maps)),
+           "sources": analysis.grid.n_sources}
+    if parts is not None and "group" in parts.columns:
+        out["per_group"] = {str(k): int(v) for k, v in
+                            parts["group"].value_counts().sort_index().items()}
+    within = analysis.settings.get("model", {}).get("within")
+    if within and within in analysis.maps.columns:
+        out["conditions"] = sorted(map(str, analysis.maps[within].unique()))
+    return out
+
+
+def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
+    inf = c.inference
+    extra = {k: v for k, v in (inf.extra or {}).items()
+             if not isinstance(v, np.ndarray) or np.size(v) <= 16}
+    return {"name": c.name, "description": c.description, "kind": inf.kind,
+            "df": list(inf.df), "scheme": inf.scheme, "correction": inf.correction,
+            "tails": inf.tails, "alpha": alpha, "forming_p": forming_p,
+            "threshold": inf.threshold, "n_resamples": inf.n_resamples, "exact": inf.exact,
+            "critical_value": (inf.extra or {}).get("critical_value"),
+            "weights": np.asarray(c.weights).tolist(),
+            "coefficients": [str(x) for x in c.design.columns], "within": c.within,
+            "n_participants": len(c.participants),
+            "reported_clusters": tables.reported_clusters(inf.clusters, alpha),
+            "n_clusters": int(len(inf.clusters)) if inf.clusters is not None else 0,
+            "has_estimate": inf.kind == "t", "has_p_corrected": inf.p_corrected is not None,
+            "extra": extra}
+
+
+def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, adjacency,
+                   atlas) -> dict:
+    """One contrast's maps, tables and summary; returns its summary and tables."""
+    grid, taxis = analysis.grid, analysis.time_axis
+    inf = c.inference
+    alpha = analysis.settings.get("inference", {}).get("alpha", 0.05)
+    forming_p = analysis.settings.get("inference", {}).get("forming_p")
+    folder.mkdir(parents=True, exist_ok=True)
+    save_nifti(folder / "statistic.nii.gz",
+               nifti.statistic_image(inf.statistic, grid, taxis, inf.kind, inf.df, c.name))
+    if inf.kind == "t":
+        save_nifti(folder / "estimate.nii.gz",
+                   nifti.estimate_image(inf.estimate, grid, taxis, c.name, "estimate"))
+    save_nifti(folder / "std_effect.nii.gz",
+               nifti.estimate_image(inf.std_effect, grid, taxis, c.name,
+                                    "hedges g" if inf.kind == "t" else "partial eta2",
+                                    signed=inf.kind == "t"))
+    save_nifti(folder / "p_uncorrected.nii.gz",
+               nifti.p_image(inf.p_uncorrected, grid, taxis, c.name, "uncorrected"))
+    if inf.p_corrected is not None:
+        save_nifti(folder / "p_corrected.nii.gz",
+                   nifti.p_image(inf.p_corrected, grid, taxis, c.name, "corrected"))
+    save_nifti(folder / "clusters.nii.gz",
+               nifti.label_image(inf.cluster_labels, grid, taxis, c.name))
+    summ = _contrast_summary(c, alpha, forming_p)
+    save_nifti(folder / "cluster_summary.nii.gz",
+               nifti.cluster_summary_image(inf.statistic, inf.cluster_labels,
+                                           summ["reported_clusters"], grid, inf.kind, c.name))
+    ctab = tables.cluster_table(c, grid, taxis, atlas)
+    write_tsv(folder / "clusters.tsv", ctab)
+    write_tsv(folder / "peaks.tsv", tables.peak_table(c, grid, taxis, adjacency))
+    write_tsv(folder / "null_distribution.tsv", tables.null_table(c))
+    write_tsv(folder / "cluster_timecourses.tsv",
+              tables.timecourse_table(c, analysis.participants, taxis))
+    atab = None
+    if atlas:
+        atab = tables.atlas_table(c, grid, atlas)
+        write_tsv(folder / "cluster_atlas.tsv", atab)
+    design = c.design.copy()
+    design.insert(0, "participant_id", [str(p) for p in c.participants])
+    write_tsv(folder / "design.tsv", design)
+    write_json(folder / "summary.json", summ)
+    return {"summary": summ, "clusters": ctab, "atlas": atab}
+
+
+def library_versions() -> dict:
+    out = {}
+    for name in LIBRARIES:
+        try:
+            out[name] = md.version(name)
+        except md.PackageNotFoundError:
+            out[name] = None
+    return out
+
+
+def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> None:
+    """Write every map, table, figure, the report, methods.md and run.json.
+
+    ``out_dir`` must exist (the caller creates and later swaps it in).  Each
+    file is written atomically (temporary name in the same folder, then
+    :func:`os.replace`).
+    """
+    from .report import build_report
+
+    out = Path(out_dir)
+    if not out.is_dir():
+        raise FileNotFoundError(f"results folder {out} does not exist; create it first")
+    grid = analysis.grid
+    neighbors = analysis.settings.get("inference", {}).get("neighbors", "face")
+    adjacency = grid.adjacency(neighbors)
+    atlas = analysis.settings.get("atlas")
+    names = [c.name for c in analysis.contrasts]
+    if len(set(names)) != len(names):
+        raise ValueError(f"contrast names must be unique, got {names}")
+    save_nifti(out / MASK_FILE, nifti.make_image(
+        np.ones(grid.n_sources, np.uint8), grid, None, dtype=np.uint8,
+        intent_name="source mask", descrip="groupsrc source mask", cal=(0, 1)))
+    written = [write_contrast(c, analysis, out / c.name, adjacency, atlas)
+               for c in analysis.contrasts]
+    frames = [w["clusters"] for w in written if len(w["clusters"])]
+    all_clusters = (pd.concat(frames, ignore_index=True) if frames
+                    else pd.DataFrame(columns=list(tables.COLUMNS["clusters.tsv"])[:-1]))
+    write_tsv(out / "clusters.tsv", all_clusters)
+    if atlas:
+        aframes = [w["atlas"] for w in written if w["atlas"] is not None and len(w["atlas"])]
+        if aframes:
+            write_tsv(out / "cluster_atlas.tsv", pd.concat(aframes, ignore_index=True))
+    ta = analysis.time_axis
+    settings = {k: v for k, v in analysis.settings.items() if k != "atlas"}
+    summary = {"title": analysis.title, "groupsrc_version": _version(),
+               "cohort": cohort_summary(analysis),
+               "window": {"t0_s": ta.t0, "dt_s": ta.dt, "n": ta.n,
+                          "start_ms": round(ta.times[0] * 1e3, 3),
+                          "end_ms": round(ta.times[-1] * 1e3, 3), "dt_ms": round(ta.dt * 1e3, 6)},
+               "grid": {"shape": list(grid.shape), "affine": grid.affine.tolist(),
+                        "voxel_size_mm": grid.voxel_size.tolist()},
+               "settings": settings, "contrasts": names, "atlas": bool(atlas),
+               "seed": run_record.get("seed"), "timings": analysis.timings}
+    write_json(out / SUMMARY_FILE, jsonable(summary))
+    build_report(out)
+    record = dict(run_record)
+    record.setdefault("platform", {"python": platform.python_version(),
+                                   "system": platform.platform(),
+                                   "machine": platform.machine()})
+    libs = dict(record.get("libraries") or {})
+    for k, v in library_versions().items():
+        libs.setdefault(k, v)
+    record["libraries"] = libs
+    record.setdefault("groupsrc_version", _version())
+    files = sorted(str(p.relative_to(out)) for p in out.rglob("*")
+                   if p.is_file() and not p.name.startswith("."))
+    record["output_files"] = files + ["run.json"]
+    write_json(out / "run.json", record)
