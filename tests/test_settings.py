@@ -61,3 +61,12 @@ def test_readme_documents_every_key():
     for section, keys in SCHEMA.items():
         for key in keys:
             assert f"`{key}`" in readme, f"README does not document {section}.{key}"
+
+
+def test_readme_documents_every_table_column():
+    from groupsrc.outputs.tables import COLUMNS
+    readme = (ROOT / "README.md").read_text()
+    for table, cols in COLUMNS.items():
+        assert f"`{table}`" in readme
+        for col in cols:
+            assert f"`{col}`" in readme, f"README does not document {table} column {col}"

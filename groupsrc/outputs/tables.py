@@ -92,7 +92,7 @@ def columns_markdown() -> str:
     out = []
     for table, cols in COLUMNS.items():
         out.append(f"`{table}`\n\n| column | meaning (unit) |\n|---|---|")
-        out += [f"| `{c}` | {m} |" for c, m in cols.items()]
+        out += [f"| `{c}` | {m.replace('|', chr(92) + '|')} |" for c, m in cols.items()]
         out.append("")
     return "\n".join(out)
 
