@@ -175,7 +175,10 @@ class TimeAxis:
             raise ValueError("empty time window")
         if index.size > 1 and not np.all(np.diff(index) == 1):
             raise ValueError("a time subset must be contiguous")
-        return TimeAxis(float(self.times[index[0]]), self.dt, int(index.size))
+        t0 = float(self.times[index[0]])
+        # drop floating-point dust such as -1e-17 s (it would print as "-0 ms")
+        t0 = round(t0 / self.dt) * self.dt if abs(t0 / self.dt - round(t0 / self.dt)) < 1e-6 else t0
+        return TimeAxis(t0 + 0.0, self.dt, int(index.size))
 
     def close_to(self, other: "TimeAxis", rtol: float = 1e-4) -> bool:
         scale = max(abs(self.dt), 1e-12)

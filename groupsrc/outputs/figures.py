@@ -194,16 +194,19 @@ def mip_figure(stat3d, mask3d, cluster3d, affine, kind, title, base: Path, vlim=
 # ----------------------------------------------------------------------------
 
 def source_time_figure(stat, member, times_ms, kind, title, base: Path, coords_y=None) -> list:
-    """Statistic of a cluster's sources (rows, ordered by peak time) over time.
+    """Statistic of a cluster's sources (rows, ordered by onset) over time.
 
     ``stat``, ``member``: (n_cluster_sources, n_times); ``member`` marks the
-    points that belong to the cluster (outlined).
+    points that belong to the cluster (outlined when there are few rows;
+    with many rows the points outside the cluster are faded instead, since
+    an outline around hundreds of rows is unreadable).
     """
     stat = np.asarray(stat, float)
-    a = np.where(member, np.abs(stat), -np.inf)
-    peak_t = np.argmax(a, axis=1)
-    key2 = np.zeros(len(stat)) if coords_y is None else np.asarray(coords_y)
-    order = np.lexsort((key2, peak_t))
+    member = np.asarray(member, bool)
+    n_t = member.shape[1]
+    onset = np.where(member.any(axis=1), member.argmax(axis=1), n_t)
+    offset = np.where(member.any(axis=1), n_t - 1 - member[:, ::-1].argmax(axis=1), -1)
+    order = np.lexsort((-offset, onset))  # earliest onset first, then longest
     stat, member = stat[order], member[order]
     vmin, vmax = _stat_range(stat, kind)
     n = stat.shape[0]
@@ -215,11 +218,18 @@ def source_time_figure(stat, member, times_ms, kind, title, base: Path, coords_y
                    vmax=vmax, extent=[t[0] - dt / 2, t[-1] + dt / 2, 0.5, n + 0.5],
                    interpolation="nearest")
     if member.any() and not member.all():
-        rows_c = np.arange(1, n + 1, dtype=float)
-        _outline(ax, member.T, t, rows_c, OUTLINE_CLUSTER, 1.0)
-        _outline(ax, member.T, t, rows_c, "black", 0.4, "--")
+        if n <= 40:
+            rows_c = np.arange(1, n + 1, dtype=float)
+            _outline(ax, member.T, t, rows_c, OUTLINE_CLUSTER, 1.0)
+            _outline(ax, member.T, t, rows_c, "black", 0.4, "--")
+        else:
+            veil = np.zeros(member.shape + (4,))
+            veil[~member] = (1.0, 1.0, 1.0, 0.65)
+            ax.imshow(veil, aspect="auto", origin="lower", interpolation="nearest",
+                      extent=[t[0] - dt / 2, t[-1] + dt / 2, 0.5, n + 0.5])
     ax.set_xlabel("time (ms)")
-    ax.set_ylabel(f"cluster sources (n = {n}),\nordered by peak time")
+    ax.set_ylabel(f"cluster sources (n = {n}),\nordered by onset"
+                  + ("" if n <= 40 else "; faded: outside the cluster"))
     ax.set_title(title)
     cb = fig.colorbar(im, ax=ax)
     cb.set_label(_stat_label(kind))
