@@ -58,12 +58,16 @@ def main():
     ap.add_argument("--reference", type=int, default=6)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--forming-p", type=float, default=0.001,
+                    help="two-sided cluster-forming p for both implementations "
+                         "(default 0.001, groupsrc's default)")
     a = ap.parse_args()
     grid, Y, X = workload()
     adj = grid.adjacency("face")
     print(f"sources {grid.n_sources}, samples {Y.shape[2]}, participants {Y.shape[0]}, "
           f"data {Y.nbytes / 1e6:.0f} MB")
-    thr = stats.t.isf(0.025, 38)
+    thr = stats.t.isf(a.forming_p / 2, 38)
+    print(f"cluster-forming threshold: two-sided p {a.forming_p} -> |t| > {thr:.3f}")
     struct = ndimage.generate_binary_structure(4, 1)
     ours = []
     res = None
@@ -72,6 +76,7 @@ def main():
         t0 = time.perf_counter()
         res = run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation",
                             correction="cluster-mass", n_resamples=a.resamples, seed=rep,
+                            forming_p=a.forming_p,
                             n_jobs=a.jobs)
         ours.append((time.perf_counter() - t0) / a.resamples)
         batch = res.extra["batch_size"]
@@ -82,6 +87,7 @@ def main():
         t0 = time.perf_counter()
         res = run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation",
                             correction="cluster-mass", n_resamples=1, seed=rep,
+                            forming_p=a.forming_p,
                             n_jobs=a.jobs)
         setup.append(time.perf_counter() - t0)
     setup_med = float(np.median(setup))
