@@ -628,6 +628,9 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
     # ---- rearrangements and residual-forming ------------------------------
     rearr = rearrangements(scheme, n, int(n_resamples), seed, labels=X, blocks=blocks)
     extra["seed"] = rearr.seed
+    # the rearrangement set itself, so that the results record what was used
+    extra["rearrangements"] = rearr.matrix
+    extra["rearrangement_kind"] = rearr.kind
     use_fl = nuisance is not False and basis.q_nuisance.shape[1] > 0
     freedman_lane = use_fl and not _invariant(basis.q_nuisance, rearr)
     if freedman_lane:

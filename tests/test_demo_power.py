@@ -56,3 +56,31 @@ def test_no_cluster_wholly_in_no_effect_region(demo_results, contrast):
     for k in table.loc[table.p_corrected <= 0.05, "cluster"]:
         where = (labels == k).any(axis=3)
         assert not np.all(null_region[where]), f"cluster {k} of {contrast} lies in a no-effect region"
+
+
+@pytest.mark.parametrize("contrast", sorted(TRUTH))
+def test_cluster_table_agrees_with_label_image(demo_results, contrast):
+    """clusters.tsv against clusters.nii.gz and statistic.nii.gz of the demo:
+    point counts, source counts, sample counts, time span and peak."""
+    cohort, out = demo_results
+    lab_img = nib.load(str(out / contrast / "clusters.nii.gz"))
+    labels = np.asanyarray(lab_img.dataobj)
+    stat = np.asanyarray(nib.load(str(out / contrast / "statistic.nii.gz")).dataobj)
+    table = pd.read_csv(out / contrast / "clusters.tsv", sep="\t")
+    hdr = lab_img.header
+    t0_ms, dt_ms = float(hdr["toffset"]) * 1e3, float(hdr["pixdim"][4]) * 1e3  # units: s (xyzt_units)
+    assert hdr.get_xyzt_units()[1] == "sec"
+    for row in table.head(10).itertuples():
+        where = labels == row.cluster
+        assert where.sum() == row.n_points
+        assert where.any(axis=3).sum() == row.n_sources
+        samples = np.nonzero(where.any(axis=(0, 1, 2)))[0]
+        assert samples.size == row.n_samples
+        assert row.t_start_ms == pytest.approx(t0_ms + dt_ms * samples[0], abs=1e-3)
+        assert row.t_end_ms == pytest.approx(t0_ms + dt_ms * samples[-1], abs=1e-3)
+        masked = np.where(where, np.abs(stat), -np.inf)
+        pk = np.unravel_index(np.argmax(masked), masked.shape)
+        xyz = lab_img.affine[:3, :3] @ np.array(pk[:3]) + lab_img.affine[:3, 3]
+        assert [row.peak_x_mm, row.peak_y_mm, row.peak_z_mm] == pytest.approx(xyz.tolist(), abs=1e-3)
+        assert row.peak_stat == pytest.approx(float(stat[pk]), rel=1e-4)
+        assert row.mass == pytest.approx(float(stat[where].sum()), rel=1e-3)

@@ -30,6 +30,13 @@ def test_run_writes_the_results_folder(ran):
                   "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
                   "cluster_timecourses.tsv"):
             assert (out / c / f).is_file(), f"{c}/{f}"
+    # the rearrangement set is recorded: identity first, as many rows as resamples
+    rr = pd.read_csv(out / "rare_minus_frequent" / "rearrangements.tsv.gz", sep="\t")
+    assert len(rr) == 50 and (rr.iloc[0, 1:] == 1).all()
+    assert set(np.unique(rr.iloc[:, 1:].to_numpy())) <= {-1, 1}
+    pr = pd.read_csv(out / "age_slope" / "rearrangements.tsv.gz", sep="\t")
+    assert (pr.iloc[0, 1:].to_numpy() == np.array(pr.columns[1:])).all()
+    assert all(sorted(row) == sorted(pr.columns[1:]) for row in pr.iloc[:, 1:].to_numpy())
     rec = json.loads((out / "run.json").read_text())
     assert rec["seed"] == 3 and rec["settings"]["inference"]["resamples"] == 50
     assert all(len(h) == 64 for h in rec["inputs_sha256"].values())

@@ -97,6 +97,24 @@ def columns_markdown() -> str:
     return "\n".join(out)
 
 
+def rearrangement_table(matrix, kind, participants) -> pd.DataFrame:
+    """The rearrangements used, one row per resample (0 = identity).
+
+    Sign flips: one column per participant holding +1 or -1.  Permutations:
+    column ``p`` holds the participant whose data (or Freedman-Lane residual)
+    takes ``p``'s place in that resample.
+    """
+    m = np.asarray(matrix)
+    ids = [str(p) for p in participants]
+    if kind == "sign-flip":
+        body = m.astype(np.int8)
+    else:
+        body = np.asarray(ids, dtype=object)[m]
+    out = pd.DataFrame(body, columns=ids)
+    out.insert(0, "resample", np.arange(len(out)))
+    return out
+
+
 #: clusters beyond this many (in table order) get no time courses
 MAX_TIMECOURSE_CLUSTERS = 20
 

@@ -99,6 +99,11 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ad
     write_tsv(folder / "clusters.tsv", ctab)
     write_tsv(folder / "peaks.tsv", tables.peak_table(c, grid, taxis, adjacency))
     write_tsv(folder / "null_distribution.tsv", tables.null_table(c))
+    rearr = (inf.extra or {}).get("rearrangements")
+    if rearr is not None:
+        write_tsv(folder / "rearrangements.tsv.gz",
+                  tables.rearrangement_table(rearr, inf.extra.get("rearrangement_kind"),
+                                             c.participants))
     write_tsv(folder / "cluster_timecourses.tsv",
               tables.timecourse_table(c, analysis.participants, taxis))
     atab = None
