@@ -1,5 +1,15 @@
-"""Demo cohort simulation: forward model, minimum-norm inverse, fictional scenario."""
+"""The demo cohort generator: dipoles in a spherical head -> MEG sensors -> minimum norm.
 
-from .scenario import build_demo_cohort, scenario_settings
+* :mod:`.forward` -- Sarvas (1987) field of current dipoles in a spherical
+  conductor; magnetometer lead fields; a helmet-like sensor cap.
+* :mod:`.inverse` -- regularised minimum-norm inverse (Hamalainen & Ilmoniemi
+  1994) with depth weighting; moment amplitudes.
+* :mod:`.scenario` -- the fictional Velmora Listening Lab oddball study:
+  participants, generators with known effects, noise, NIfTI maps and truth.
+"""
 
-__all__ = ["build_demo_cohort", "scenario_settings"]
+from .scenario import (build_demo_cohort, demo_truth, participants_table, scenario_settings,
+                       simulate, template_grid)
+
+__all__ = ["build_demo_cohort", "demo_truth", "participants_table", "scenario_settings",
+           "simulate", "template_grid"]
