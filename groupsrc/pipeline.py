@@ -79,7 +79,6 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
         problems.add(f"{settings.path} [inference] time_window",
                      f"{tw} holds no sample; the maps run from {t[0]:.4g} s to {t[-1]:.4g} s",
                      "choose a window inside that range")
-    blocks = settings.inference.get("blocks")
     if problems:
         raise InputError(problems)
     return Prepared(settings, cohort, design, plans, tindex, summary(cohort, settings))
