@@ -327,10 +327,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         _, _, bad = _decode([headers[i] for i in good], ref, mask, progress)
         for j, n in bad.items():
             i = good[j]
-            problems.add(f"{mpath} row {i + 2} ({headers[i].path})",
-                         f"{n} NaN/Inf value(s) inside the mask",
-                         "fix the inverse solution for this map, or give a mask that excludes "
-                         "those sources")
+            _nonfinite_problem(problems, mpath, i, headers[i].path, n)
         raise InputError(problems)
 
     cache_dir = settings.resolve(settings.cohort.get("cache")) or _cache.default_cache_dir()
@@ -361,10 +358,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
                              {"flat_index": grid.flat_index.tolist(), "nonfinite": {}})
     for i, n in sorted(bad.items(), key=lambda kv: int(kv[0])):
         i = int(i)
-        problems.add(f"{mpath} row {i + 2} ({map_paths[i]})",
-                     f"{n} NaN/Inf value(s) inside the mask",
-                     "fix the inverse solution for this map, or give a mask that excludes "
-                     "those sources")
+        _nonfinite_problem(problems, mpath, i, map_paths[i], n)
     if grid.n_sources == 0:
         problems.add(mpath, "no source is finite in every map", "give a mask")
     if problems:
@@ -375,6 +369,12 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
             inputs[str(p)] = index.sha256(p)
     return Cohort(participants=parts.set_index(ID, drop=False), maps=maps, grid=grid,
                   time_axis=time_axis, Y=Y, inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+
+
+def _nonfinite_problem(problems, mpath, row, path, n):
+    problems.add(f"{mpath} row {row + 2} ({path})", f"{n} NaN/Inf value(s) inside the mask",
+                 "fix the inverse solution for this map, or give a mask that excludes "
+                 "those sources")
 
 
 def _read_atlas(settings, ref, problems):

@@ -21,7 +21,7 @@ import numpy as np
 from . import __version__
 from .cohort import Cohort, load_cohort, summary
 from .design import Design, build_design, plan_contrast, reduction_matrix
-from .problems import InputError, ProblemList
+from .problems import InputError, Problem, ProblemList
 from .results import AnalysisResult, ContrastResult
 from .settings import Settings, parse_settings
 
@@ -175,20 +175,15 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
 
 def _check_out(out: Path, overwrite: bool, settings: Settings):
     if out.exists() and not out.is_dir():
-        raise InputError([_problem(out, "exists and is not a folder", "choose another --out")])
+        raise InputError([Problem(str(out), "exists and is not a folder", "choose another --out")])
     if out.exists() and any(out.iterdir()) and not overwrite:
-        raise InputError([_problem(out, "results folder already exists and is not empty",
+        raise InputError([Problem(str(out), "results folder already exists and is not empty",
                                    "pass --overwrite to replace it, or choose another --out")])
     inputs = {settings.base.resolve(), settings.path.resolve()}
     if out in inputs or settings.path.resolve().is_relative_to(out):
-        raise InputError([_problem(out, "results folder would contain the analysis inputs",
+        raise InputError([Problem(str(out), "results folder would contain the analysis inputs",
                                    "choose an --out folder outside the cohort folder's inputs")])
     out.parent.mkdir(parents=True, exist_ok=True)
-
-
-def _problem(where, what, fix):
-    from .problems import Problem
-    return Problem(str(where), what, fix)
 
 
 def run_record(settings, prep, result, command, workers) -> dict:

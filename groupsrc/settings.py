@@ -18,7 +18,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from .problems import InputError, ProblemList, closest
+from .problems import InputError, Problem, ProblemList, closest
 
 CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
 TAILS = ("two", "greater", "less")
@@ -170,19 +170,19 @@ def read_settings(path):
     try:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
-        raise InputError([_p(where, "analysis file not found", "check the path")])
+        raise InputError([Problem(where, "analysis file not found", "check the path")])
     except OSError as exc:
-        raise InputError([_p(where, f"cannot read the analysis file ({exc})", "")])
+        raise InputError([Problem(where, f"cannot read the analysis file ({exc})", "")])
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
-        raise InputError([_p(where, f"not valid TOML: {exc}",
+        raise InputError([Problem(where, f"not valid TOML: {exc}",
                              "fix the syntax at the line and column given")])
     settings = settings_from_dict(raw, path, problems)
     return settings, problems
 
 
-def _p(where, what, fix):
+def Problem(where, what, fix):
     from .problems import Problem
     return Problem(where, what, fix)
 

@@ -169,7 +169,9 @@ def test_every_problem_reported_at_once(tiny_cohort, tmp_path, capsys):
     assert rc == 1
     missing = [e for e in expected if e not in text]
     assert not missing, f"not reported: {missing}\n{text}"
-    assert "6 problems found" in text or "problems found" in text
+    import re
+    n_listed = int(re.search(r"(\d+) problems found", text).group(1))
+    assert n_listed >= 6  # at least one line per breaker above
 
 
 def test_settings_problems_collected_together(tiny_cohort, tmp_path, capsys):
