@@ -8,12 +8,14 @@ from __future__ import annotations
 
 import argparse
 import json
+import logging
+import signal
 import sys
 import time
 from pathlib import Path
 
 from . import __version__
-from .problems import InputError
+from .problems import InputError, ProblemList
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -55,11 +57,20 @@ def _parser():
     return p
 
 
-def _positive(args, parser):
+#: seeds are non-negative integers below 2**63 (numpy's SeedSequence takes any
+#: non-negative integer; the bound keeps them exact in JSON readers)
+SEED_MAX = 2 ** 63 - 1
+
+
+def _check_options(args, parser):
+    """Command-line values: a bad one is a usage error (exit 2) with a message."""
     for name in ("resamples", "workers"):
         v = getattr(args, name, None)
         if v is not None and v < 1:
             parser.error(f"--{name} must be at least 1, got {v}")
+    seed = getattr(args, "seed", None)
+    if seed is not None and not 0 <= seed <= SEED_MAX:
+        parser.error(f"--seed must be a whole number from 0 to {SEED_MAX}, got {seed}")
 
 
 def main(argv=None) -> int:
@@ -68,15 +79,65 @@ def main(argv=None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
-    _positive(args, parser)
+    _check_options(args, parser)
+    _log_to_stderr()
+    previous = _on_sigterm()
     try:
         return _dispatch(args, argv)
     except InputError as exc:
         print(exc.problems.format(), file=sys.stderr)
         return EXIT_DATA
+    except OSError as exc:
+        # the file system refused (permission, disk full, ...): not a bug of ours
+        where = exc.filename or "groupsrc"
+        print(f"1 problem found:\n  1. {where}: {exc.strerror or exc} -> check the folder's "
+              "permissions and free space; nothing was overwritten", file=sys.stderr)
+        return EXIT_DATA
     except KeyboardInterrupt:
         print("interrupted; nothing was overwritten", file=sys.stderr)
         return 130
+    except Terminated:
+        print("terminated; nothing was overwritten", file=sys.stderr)
+        return 128 + signal.SIGTERM
+    finally:
+        if previous is not None:
+            signal.signal(signal.SIGTERM, previous)
+
+
+class Terminated(BaseException):
+    """SIGTERM received: unwinds like Ctrl-C, so partial results are removed."""
+
+
+def _on_sigterm():
+    """Turn SIGTERM into an exception (main thread only); return the old handler."""
+    import threading
+    if threading.current_thread() is not threading.main_thread():
+        return None
+
+    def handler(signum, frame):
+        raise Terminated()
+    return signal.signal(signal.SIGTERM, handler)
+
+
+class _StderrHandler(logging.Handler):
+    """Writes to whatever sys.stderr is at the time (it may be redirected)."""
+
+    def emit(self, record):
+        try:
+            print(self.format(record), file=sys.stderr)
+        except Exception:  # pragma: no cover - logging must never fail a run
+            self.handleError(record)
+
+
+def _log_to_stderr():
+    """Progress notes (e.g. cleanup of an interrupted run) go to stderr."""
+    logger = logging.getLogger("groupsrc")
+    if not any(isinstance(h, _StderrHandler) for h in logger.handlers):
+        handler = _StderrHandler()
+        handler.setFormatter(logging.Formatter("groupsrc: %(message)s"))
+        logger.addHandler(handler)
+        logger.setLevel(logging.INFO)
+        logger.propagate = False
 
 
 def _dispatch(args, argv) -> int:
@@ -93,10 +154,6 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "report":
         from .outputs import build_report
-        if not (args.results / "run.json").exists():
-            from .problems import Problem
-            raise InputError([Problem(str(args.results), "not a groupsrc results folder "
-                                      "(no run.json)", "give the folder 'groupsrc run' wrote")])
         path = build_report(args.results)
         print(f"report rebuilt: {path}")
         return EXIT_OK
@@ -135,10 +192,22 @@ def cmd_check(analysis: Path, as_json=False) -> int:
 
 
 def cmd_demo(args, command) -> int:
+    from .outputs.folder import check_target, sweep_stale
     from .simulate import build_demo_cohort
+    from .simulate.scenario import check_cohort_target
     out = args.out.resolve()
     cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
     size = "small" if args.small else "default"
+    # refuse before spending a minute on the simulation
+    problems = ProblemList()
+    check_cohort_target(cohort_dir, problems, option="--cohort-dir")
+    sweep_stale(out)
+    try:
+        check_target(out, overwrite=args.overwrite, inputs=[cohort_dir], problems=problems)
+    except InputError:
+        pass
+    if problems:
+        raise InputError(problems)
     print(f"building the {size} demo cohort in {cohort_dir} ...")
     t = time.perf_counter()
     analysis = build_demo_cohort(cohort_dir, size=size)

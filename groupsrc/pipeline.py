@@ -8,22 +8,24 @@ stage that writes.
 
 from __future__ import annotations
 
+import logging
 import os
-import shutil
 import sys
-import tempfile
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import pandas as pd
 
 from . import __version__
 from .cohort import Cohort, load_cohort, summary
 from .design import Design, build_design, plan_contrast, reduction_matrix
-from .problems import InputError, Problem, ProblemList
+from .problems import InputError, ProblemList
 from .results import AnalysisResult, ContrastResult
 from .settings import Settings, parse_settings
+
+log = logging.getLogger("groupsrc")
 
 
 @dataclass
@@ -110,7 +112,6 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
         t0 = time.perf_counter()
         W = reduction_matrix(cohort.maps, participants, within_col, plan.within, conditions)
         data = np.empty((len(participants), S, t_hi - t_lo), dtype=np.float32)
-        flat = data.reshape(len(participants), -1)
         # chunk over sources so the memmap is streamed, float64 accumulation
         step = max(1, int(2e7 // max(1, n_maps * (t_hi - t_lo))))
         for a in range(0, S, step):
@@ -140,50 +141,51 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
 
 def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
         overwrite=False, progress=None, command=None) -> Path:
-    """Whole pipeline; writes a results folder and returns its path."""
+    """Whole pipeline; writes a results folder and returns its path.
+
+    The results folder rules (what may be replaced, inputs never touched,
+    staging and swap, cleanup after killed runs) are those of
+    :mod:`groupsrc.outputs.folder`.
+    """
     from .outputs import write_results
+    from .outputs.folder import check_target, staged, sweep_stale
 
     t_start = time.perf_counter()
     settings = parse_settings(analysis_path)
     out = Path(out_dir) if out_dir else settings.base / "results"
-    out = out.resolve()
-    _check_out(out, overwrite, settings)
+    for action in sweep_stale(out):
+        log.info(action)
+    # cheap check first (declared inputs), full check once every map is known
+    check_target(out, overwrite=overwrite, inputs=declared_inputs(settings))
     prep = prepare(settings, progress=progress)
+    out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
     result = analyse(prep, resamples=resamples, seed=seed, workers=workers, progress=progress)
     t_stats = time.perf_counter()
     record = run_record(settings, prep, result, command, workers)
-    # write into a fresh sibling folder, then swap it in: a failed write loses nothing
-    tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-    try:
-        record["timings_s"] = {"load": round(t_loaded - t_start, 3),
-                               "statistics": round(t_stats - t_loaded, 3),
-                               "per_contrast": result.timings}
+    record["timings_s"] = {"load": round(t_loaded - t_start, 3),
+                           "statistics": round(t_stats - t_loaded, 3),
+                           "per_contrast": result.timings}
+    with staged(out) as tmp:
         write_results(result, tmp, record)
-        if out.exists():
-            old = out.with_name(f".{out.name}.old{os.getpid()}")
-            os.replace(out, old)
-            os.replace(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     return out
 
 
-def _check_out(out: Path, overwrite: bool, settings: Settings):
-    if out.exists() and not out.is_dir():
-        raise InputError([Problem(str(out), "exists and is not a folder", "choose another --out")])
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise InputError([Problem(str(out), "results folder already exists and is not empty",
-                                   "pass --overwrite to replace it, or choose another --out")])
-    inputs = {settings.base.resolve(), settings.path.resolve()}
-    if out in inputs or settings.path.resolve().is_relative_to(out):
-        raise InputError([Problem(str(out), "results folder would contain the analysis inputs",
-                                   "choose an --out folder outside the cohort folder's inputs")])
-    out.parent.mkdir(parents=True, exist_ok=True)
+def declared_inputs(settings: Settings) -> list:
+    """Input paths known before loading: the analysis file, tables, mask, atlas
+    and (best effort) the maps the maps table lists; the loading stage reports
+    any problem with them."""
+    paths = [settings.path] + [settings.resolve(settings.cohort.get(k)) for k in
+                               ("participants", "maps", "mask", "atlas", "atlas_labels")]
+    mpath = settings.resolve(settings.cohort.get("maps"))
+    if mpath is not None and mpath.is_file():
+        try:
+            table = pd.read_csv(mpath, sep="\t", dtype=str, keep_default_na=False,
+                                usecols=["path"])
+            paths += [mpath.parent / rel for rel in table["path"] if rel.strip()]
+        except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserError):
+            pass
+    return [p for p in paths if p is not None]
 
 
 def run_record(settings, prep, result, command, workers) -> dict:

@@ -8,7 +8,6 @@ inside the no-effect region.  The truth masks are written by the simulator
 from its noise-free maps, not by the statistics under test.
 """
 
-import json
 
 import nibabel as nib
 import numpy as np

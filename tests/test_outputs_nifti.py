@@ -119,8 +119,18 @@ def test_f_statistic_map(written):
     assert not (out / c.name / "estimate.nii.gz").exists()
     eff = nib.load(str(out / c.name / "std_effect.nii.gz"))
     assert int(eff.header["intent_code"]) == NIFTI_INTENT_ESTIMATE
-    v = np.asarray(eff.dataobj)[analysis.grid.mask]
-    assert v.min() >= 0 and v.max() <= 1        # partial eta squared lies in [0, 1]
+    v = analysis.grid.from_volume(np.asarray(eff.dataobj))
+    # partial eta squared = SS_effect / (SS_effect + SS_residual), with SS_effect the
+    # drop in residual sum of squares when the group column is removed
+    # (textbook definition; statsmodels OLS as the reference fit)
+    import statsmodels.api as sm
+    rng = np.random.default_rng(0)
+    X = c.design.to_numpy()
+    for s_, t_ in zip(rng.integers(0, v.shape[0], 6), rng.integers(0, v.shape[1], 6)):
+        y = c.data[:, s_, t_].astype(float)
+        full, reduced = sm.OLS(y, X).fit(), sm.OLS(y, X[:, :1]).fit()
+        ss_eff = reduced.ssr - full.ssr
+        assert v[s_, t_] == pytest.approx(ss_eff / (ss_eff + full.ssr), rel=1e-5)
 
 
 @pytest.mark.parametrize("which", ["p_uncorrected", "p_corrected"])

@@ -16,6 +16,7 @@ import pytest
 
 from groupsrc.cli import main
 from groupsrc.grid import TimeAxis
+from groupsrc.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
 from groupsrc.simulate import scenario as sc
 
@@ -199,7 +200,7 @@ def test_refuses_a_folder_it_did_not_build(tmp_path):
     target = tmp_path / "mine"
     target.mkdir()
     (target / "participants.tsv").write_text("precious\n")
-    with pytest.raises(FileExistsError, match="not empty"):
+    with pytest.raises(InputError, match="not empty"):
         build_demo_cohort(target, size="small")
     assert (target / "participants.tsv").read_text() == "precious\n"
     assert sorted(p.name for p in tmp_path.iterdir()) == ["mine"]   # no staging left

@@ -146,7 +146,6 @@ def mip_figure(stat3d, mask3d, cluster3d, affine, kind, title, base: Path, vlim=
     vmin, vmax = vlim if vlim is not None else _stat_range(stat, kind)
     views = [("sagittal", 0, 1, 2), ("coronal", 1, 0, 2), ("axial", 2, 0, 1)]
     widths = [np.ptp(coords[h]) + 1 for _, _, h, _ in views]
-    heights = [np.ptp(coords[v]) + 1 for _, _, _, v in views]
     fig = _new_figure(70)
     gs = fig.add_gridspec(1, 4, width_ratios=widths + [0.06 * sum(widths)])
     cmap = stat_cmap(kind)

@@ -2,7 +2,9 @@
 
 Every file is written to a temporary name in its destination folder and then
 moved over the final name with :func:`os.replace`, so a reader (or an
-interrupted run) never sees a half-written file.
+interrupted run) never sees a half-written file.  Files get the mode a plain
+``open`` would give under the user's umask (``tempfile.mkstemp`` alone would
+make them owner-only).
 """
 
 from __future__ import annotations
@@ -14,6 +16,8 @@ from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
+
+from .folder import file_mode
 
 
 @contextmanager
@@ -33,6 +37,7 @@ def atomic_path(path, suffix=None):
     tmp = Path(tmp)
     try:
         yield tmp
+        os.chmod(tmp, file_mode())
         os.replace(tmp, path)
     except BaseException:
         tmp.unlink(missing_ok=True)

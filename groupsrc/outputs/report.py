@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 
 from ..grid import Grid
+from ..problems import InputError, Problem, ProblemList
 from . import figures
 from .files import write_text
 from .methods import methods_text
@@ -64,15 +65,75 @@ nav a{margin-right:1rem}
 # loading the saved folder
 # ----------------------------------------------------------------------------
 
+#: files of each contrast folder that the report reads (the writer always writes them)
+CONTRAST_FILES = ("summary.json", "statistic.nii.gz", "clusters.nii.gz", "clusters.tsv",
+                  "peaks.tsv", "null_distribution.tsv", "cluster_timecourses.tsv",
+                  "design.tsv")
+_FIX_DAMAGED = ("run 'groupsrc run' again to rewrite the results folder "
+                "(the report cannot be rebuilt without it)")
+
+
+def _damaged(path, what) -> InputError:
+    return InputError([Problem(str(path), what, _FIX_DAMAGED)])
+
+
 def _read_tsv(path: Path) -> pd.DataFrame:
-    if not path.exists():
-        return pd.DataFrame()
-    return pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False)
+    try:
+        return pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False)
+    except FileNotFoundError:
+        raise _damaged(path, "missing from the results folder") from None
+    except (OSError, ValueError, UnicodeDecodeError) as exc:
+        raise _damaged(path, f"cannot be read as a table ({exc})") from None
+
+
+def _read_json(path: Path) -> dict:
+    try:
+        return json.loads(Path(path).read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise _damaged(path, "missing from the results folder") from None
+    except (OSError, ValueError) as exc:
+        raise _damaged(path, f"cannot be read as JSON ({exc})") from None
+
+
+def _read_map(path: Path, dtype=np.float64):
+    """(data, affine) of a NIfTI map of the results folder; a clear error when damaged."""
+    try:
+        img = nib.load(str(path))
+        return np.asarray(img.dataobj, dtype=dtype), img.affine
+    except FileNotFoundError:
+        raise _damaged(path, "missing from the results folder") from None
+    except Exception as exc:   # nibabel and gzip raise many types for damaged files
+        raise _damaged(path, f"cannot be read as NIfTI ({type(exc).__name__}: {exc})") from None
+
+
+def check_results_folder(results: Path) -> None:
+    """List every file the report needs that is missing; raise InputError if any."""
+    results = Path(results)
+    problems = ProblemList()
+    if not results.is_dir():
+        problems.add(results, "not a folder", "give the folder 'groupsrc run' wrote")
+        raise InputError(problems)
+    if not (results / "run.json").is_file():
+        problems.add(results, "not a groupsrc results folder (no run.json)",
+                     "give the folder 'groupsrc run' wrote")
+        raise InputError(problems)
+    for name in (SUMMARY_FILE, MASK_FILE):
+        if not (results / name).is_file():
+            problems.add(results / name, "missing from the results folder", _FIX_DAMAGED)
+    if not problems:
+        summary = _read_json(results / SUMMARY_FILE)
+        for c in summary.get("contrasts", []):
+            for name in CONTRAST_FILES:
+                if not (results / c / name).is_file():
+                    problems.add(results / c / name, "missing from the results folder",
+                                 _FIX_DAMAGED)
+    if problems:
+        raise InputError(problems)
 
 
 def _load_grid(results: Path) -> Grid:
-    img = nib.load(str(results / MASK_FILE))
-    return Grid.from_mask(np.asarray(img.dataobj) > 0, img.affine)
+    data, affine = _read_map(results / MASK_FILE)
+    return Grid.from_mask(data > 0, affine)
 
 
 def _times_ms(window):
@@ -111,8 +172,8 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
     for old in list(figdir.glob("*.png")) + list(figdir.glob("*.svg")):
         old.unlink()
     times = _times_ms(summary["window"])
-    stat4 = np.asarray(nib.load(str(folder / "statistic.nii.gz")).dataobj, dtype=np.float64)
-    lab4 = np.asarray(nib.load(str(folder / "clusters.nii.gz")).dataobj).astype(np.int64)
+    stat4, _ = _read_map(folder / "statistic.nii.gz")
+    lab4 = _read_map(folder / "clusters.nii.gz")[0].astype(np.int64)
     if stat4.ndim == 3:
         stat4, lab4 = stat4[..., None], lab4[..., None]
     stat = grid.from_volume(stat4)
@@ -387,12 +448,21 @@ def render_html(summary, contrast_summaries, figure_lists, results: Path, method
 
 
 def build_report(results_dir) -> Path:
-    """Rebuild figures/, methods.md and report.html from a saved results folder."""
+    """Rebuild figures/, methods.md and report.html from a saved results folder.
+
+    Raises InputError naming every missing or damaged file the report needs.
+    """
+    check_results_folder(results_dir)
+    return render_report(results_dir)
+
+
+def render_report(results_dir) -> Path:
+    """Draw figures, methods.md and report.html of a folder the writer is filling
+    (its run record comes last, so it is not required here)."""
     results = Path(results_dir)
-    summary = json.loads((results / SUMMARY_FILE).read_text(encoding="utf-8"))
+    summary = _read_json(results / SUMMARY_FILE)
     grid = _load_grid(results)
-    cs_list = [json.loads((results / n / "summary.json").read_text(encoding="utf-8"))
-               for n in summary["contrasts"]]
+    cs_list = [_read_json(results / n / "summary.json") for n in summary["contrasts"]]
     figs = [contrast_figures(results, grid, summary, cs) for cs in cs_list]
     md = methods_text(summary, cs_list)
     write_text(results / "methods.md", md)

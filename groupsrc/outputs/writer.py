@@ -134,7 +134,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     file is written atomically (temporary name in the same folder, then
     :func:`os.replace`).
     """
-    from .report import build_report
+    from .report import render_report
 
     out = Path(out_dir)
     if not out.is_dir():
@@ -171,7 +171,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
                "settings": settings, "contrasts": names, "atlas": bool(atlas),
                "seed": run_record.get("seed"), "timings": analysis.timings}
     write_json(out / SUMMARY_FILE, jsonable(summary))
-    build_report(out)
+    render_report(out)
     record = dict(run_record)
     record.setdefault("platform", {"python": platform.python_version(),
                                    "system": platform.platform(),

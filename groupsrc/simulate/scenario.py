@@ -34,7 +34,6 @@ byte-identical.
 from __future__ import annotations
 
 import gzip
-import io
 import json
 import os
 import shutil
@@ -517,13 +516,26 @@ def _umask() -> int:
     return mask
 
 
-def _check_target(out: Path) -> None:
+def check_cohort_target(out: Path, problems, option: str = "the cohort folder") -> None:
+    """Add a problem when ``out`` may not receive a demo build.
+
+    ``out`` must be new, empty or a previous demo build (it holds the build
+    marker); a folder of anything else is never written into.
+    """
+    out = Path(out)
     if out.exists() and not out.is_dir():
-        raise FileExistsError(f"{out} exists and is not a folder")
-    if out.is_dir() and any(out.iterdir()) and not (out / MARKER).exists():
-        raise FileExistsError(
-            f"{out} is not empty and was not built by groupsrc's demo; choose a new or "
-            "empty folder (nothing was written)")
+        problems.add(out, "exists and is not a folder", f"choose another {option}")
+    elif out.is_dir() and any(out.iterdir()) and not (out / MARKER).exists():
+        problems.add(out, "the folder is not empty and was not built by 'groupsrc demo'; "
+                     "nothing was written", f"choose a new or empty {option}")
+
+
+def _check_target(out: Path) -> None:
+    from ..problems import InputError, ProblemList
+    problems = ProblemList()
+    check_cohort_target(out, problems)
+    if problems:
+        raise InputError(problems)
 
 
 def _install(staging: Path, out: Path) -> None:
