@@ -67,13 +67,13 @@ def test_figures_have_png_and_svg_at_print_size(written):
     _, out = written
     pngs = sorted(out.rglob("figures/*.png"))
     kinds = {re.sub(r"\d+$", "", p.stem) for p in pngs}
-    assert {"mip_cluster", "sources_by_time_cluster", "timecourses", "null_distribution",
+    assert {"projections_cluster", "sources_by_time_cluster", "timecourses", "null_distribution",
             "design"} <= kinds
     for p in pngs:
         svg = p.with_suffix(".svg")
         assert svg.exists() and svg.read_text()[:200].lstrip().startswith("<?xml")
     # 180 mm at 150 dpi = 180 / 25.4 * 150 = 1063 px wide (bbox not trimmed)
-    w, _ = png_size((out / "deviant_minus_standard" / "figures" / "mip_cluster01.png").read_bytes())
+    w, _ = png_size((out / "deviant_minus_standard" / "figures" / "projections_cluster01.png").read_bytes())
     assert abs(w - 180 / 25.4 * 150) <= 2
 
 
@@ -152,3 +152,48 @@ def test_report_renders_in_headless_chromium(written, tmp_path):
     img = mpimg.imread(str(shot))
     assert img.shape[0] >= 1000 and img.shape[1] >= 1000
     assert float(np.var(img[..., :3])) > 1e-3           # not a blank page
+
+
+def test_dataset_description_marks_a_bids_derivative(written):
+    """BIDS specification, "Derivatives" (field names from memory): a derived dataset's
+    dataset_description.json has Name, BIDSVersion, DatasetType "derivative" and
+    GeneratedBy, a list of objects with at least Name (here also Version)."""
+    analysis, out = written
+    desc = json.loads((out / "dataset_description.json").read_text())
+    assert desc["DatasetType"] == "derivative"
+    assert desc["Name"] == analysis.title
+    assert re.fullmatch(r"\d+\.\d+\.\d+", desc["BIDSVersion"])
+    gen = desc["GeneratedBy"]
+    assert isinstance(gen, list) and gen[0]["Name"] == "groupsrc"
+    import groupsrc
+    assert gen[0]["Version"] == groupsrc.__version__
+    assert "dataset_description.json" in json.loads((out / "run.json").read_text())["output_files"]
+
+
+def test_report_escapes_what_the_user_wrote(tmp_path):
+    """Text from the analysis file reaches the page as text, never as markup
+    (HTML standard: '<' and '&' in text content are written as character references)."""
+    from _outputs_fixture import make_analysis
+    from groupsrc.outputs import write_results
+    analysis = make_analysis(with_atlas=False)
+    analysis.title = "Tones <script>alert(1)</script> & more"
+    analysis.contrasts[0].description = "rare > frequent <b>bold?</b>"
+    write_results(analysis, tmp_path, dict(RUN_RECORD))
+    page = (tmp_path / "report.html").read_text(encoding="utf-8")
+    assert "<script>alert(1)</script>" not in page and "<b>bold?</b>" not in page
+    assert "Tones &lt;script&gt;alert(1)&lt;/script&gt; &amp; more" in page
+    assert "rare &gt; frequent &lt;b&gt;bold?&lt;/b&gt;" in page
+
+
+def test_design_figure_explains_a_covariate_mean_weight():
+    """A contrast read at the covariate's mean carries that mean as the weight on the
+    covariate's coefficient (the prediction at x = mean includes mean x slope; common
+    practice for estimated marginal means); the figure says so, and only then."""
+    import pandas as pd
+    from groupsrc.outputs.figures import weight_notes
+    age = np.array([20.0, 35, 41, 58, 66, 70])
+    X = pd.DataFrame({"Intercept": 1.0, "group[T.b]": [0.0, 1, 0, 1, 0, 1], "age": age})
+    notes = weight_notes(X, [1.0, 0.5, age.mean()])
+    assert len(notes) == 1 and "'age'" in notes[0] and f"{age.mean():.4g}" in notes[0]
+    assert weight_notes(X, [0.0, 1.0, 0.0]) == []
+    assert weight_notes(X, [[0, 1.0, 0], [0, 0, 1.0]]) == []

@@ -1,35 +1,37 @@
-"""build_report: figures, methods.md and a self-contained report.html from a
-saved results folder (no statistics are rerun).
+"""The report: figures, methods.md and a self-contained report.html, drawn
+from a saved results folder (no statistics are rerun).
 
-The report embeds every image as a base64 ``data:`` URI and carries its CSS
-inline, so the single file can be mailed or archived and opened offline.
+The page is a Jinja2 template (``templates/report.html.j2``, autoescaped);
+this module draws the figures and assembles the template's context from the
+folder's files (read through :mod:`.layout`).  Every image is embedded as a
+base64 ``data:`` URI and the CSS is inline, so the single file can be mailed
+or archived and opened offline.
 """
 
 from __future__ import annotations
 
 import base64
-import html
 import json
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import pandas as pd
+from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
 from ..grid import Grid
-from ..problems import InputError, Problem, ProblemList
 from . import figures
 from .files import write_text
+from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
+                     read_grid, read_json, read_map, read_tsv, times_ms)
 from .methods import methods_text
 from .tables import COLUMNS
-from .writer import MASK_FILE, SUMMARY_FILE
 
 MAX_CLUSTER_FIGURES = 6
-MAX_MIPS = 4
+MAX_PROJECTIONS = 4
 
 CAUTIONS = [
     "A significant cluster shows that the conditions or groups differ; it does not establish "
-    "the effect's exact onset, offset or location (Sassenhagen &amp; Draschkow 2019, "
+    "the effect's exact onset, offset or location (Sassenhagen & Draschkow 2019, "
     "Psychophysiology 56:e13335).",
     "Source estimates are blurred and biased by the inverse method; cluster extent reflects "
     "that blur.",
@@ -37,112 +39,21 @@ CAUTIONS = [
     "licensed practice to decide.",
 ]
 
-CSS = """
-body{font-family:system-ui,-apple-system,"Segoe UI",Helvetica,Arial,sans-serif;margin:0;
-background:#f4f4f1;color:#1d1d1d;line-height:1.45}
-main{max-width:1100px;margin:0 auto;padding:1.5rem 2rem 4rem;background:#fff}
-h1{font-size:1.6rem;margin:.2rem 0 .3rem;border-bottom:3px solid #2a5d84;padding-bottom:.3rem}
-h2{font-size:1.25rem;margin-top:2.2rem;color:#2a5d84}
-h3{font-size:1.05rem;margin-top:1.6rem}
-.sub{color:#555;margin-top:0}
-table{border-collapse:collapse;font-size:.82rem;margin:.6rem 0;display:block;overflow-x:auto}
-th,td{padding:.22rem .5rem;border-bottom:1px solid #ddd;text-align:right;white-space:nowrap}
-th{background:#eef2f5;position:sticky;top:0}
-td.l,th.l{text-align:left}
-tr.sig td{font-weight:600}
-figure{margin:1rem 0}
-figure img{max-width:100%;height:auto;border:1px solid #e3e3e3}
-figcaption{font-size:.85rem;color:#444}
-.caution{background:#fff6e0;border-left:4px solid #c98a00;padding:.6rem 1rem}
-.kv td{text-align:left}
-code,pre{font-family:ui-monospace,Menlo,Consolas,monospace;font-size:.82rem}
-pre{background:#f6f6f6;padding:.6rem;overflow-x:auto}
-nav a{margin-right:1rem}
-"""
+CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
+                "t_end_ms", "t_peak_ms", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
+                "estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "std_effect_at_peak",
+                "std_effect_ci_low", "std_effect_ci_high", "atlas_label_at_peak"]
+
+CHECKS_TEXT = ("Every input check passed before the statistics ran: each map read as a 4D "
+               "NIfTI on one template grid (same shape and affine) with one time axis, no NaN "
+               "or infinite value inside the mask, no duplicate or orphan table row, every "
+               "model column present with at least two participants per factor level, and a "
+               "full-rank design matrix.")
 
 
-# ----------------------------------------------------------------------------
-# loading the saved folder
-# ----------------------------------------------------------------------------
-
-#: files of each contrast folder that the report reads (the writer always writes them)
-CONTRAST_FILES = ("summary.json", "statistic.nii.gz", "clusters.nii.gz", "clusters.tsv",
-                  "peaks.tsv", "null_distribution.tsv", "cluster_timecourses.tsv",
-                  "design.tsv")
-_FIX_DAMAGED = ("run 'groupsrc run' again to rewrite the results folder "
-                "(the report cannot be rebuilt without it)")
-
-
-def _damaged(path, what) -> InputError:
-    return InputError([Problem(str(path), what, _FIX_DAMAGED)])
-
-
-def _read_tsv(path: Path) -> pd.DataFrame:
-    try:
-        return pd.read_csv(path, sep="\t", na_values=["n/a"], keep_default_na=False)
-    except FileNotFoundError:
-        raise _damaged(path, "missing from the results folder") from None
-    except (OSError, ValueError, UnicodeDecodeError) as exc:
-        raise _damaged(path, f"cannot be read as a table ({exc})") from None
-
-
-def _read_json(path: Path) -> dict:
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise _damaged(path, "missing from the results folder") from None
-    except (OSError, ValueError) as exc:
-        raise _damaged(path, f"cannot be read as JSON ({exc})") from None
-
-
-def _read_map(path: Path, dtype=np.float64):
-    """(data, affine) of a NIfTI map of the results folder; a clear error when damaged."""
-    try:
-        img = nib.load(str(path))
-        return np.asarray(img.dataobj, dtype=dtype), img.affine
-    except FileNotFoundError:
-        raise _damaged(path, "missing from the results folder") from None
-    except Exception as exc:   # nibabel and gzip raise many types for damaged files
-        raise _damaged(path, f"cannot be read as NIfTI ({type(exc).__name__}: {exc})") from None
-
-
-def check_results_folder(results: Path) -> None:
-    """List every file the report needs that is missing; raise InputError if any."""
-    results = Path(results)
-    problems = ProblemList()
-    if not results.is_dir():
-        problems.add(results, "not a folder", "give the folder 'groupsrc run' wrote")
-        raise InputError(problems)
-    if not (results / "run.json").is_file():
-        problems.add(results, "not a groupsrc results folder (no run.json)",
-                     "give the folder 'groupsrc run' wrote")
-        raise InputError(problems)
-    for name in (SUMMARY_FILE, MASK_FILE):
-        if not (results / name).is_file():
-            problems.add(results / name, "missing from the results folder", _FIX_DAMAGED)
-    if not problems:
-        summary = _read_json(results / SUMMARY_FILE)
-        for c in summary.get("contrasts", []):
-            for name in CONTRAST_FILES:
-                if not (results / c / name).is_file():
-                    problems.add(results / c / name, "missing from the results folder",
-                                 _FIX_DAMAGED)
-    if problems:
-        raise InputError(problems)
-
-
-def _load_grid(results: Path) -> Grid:
-    data, affine = _read_map(results / MASK_FILE)
-    return Grid.from_mask(data > 0, affine)
-
-
-def _times_ms(window):
-    return np.round((window["t0_s"] + window["dt_s"] * np.arange(window["n"])) * 1e3, 3)
-
-
-def _sample_index(times_ms, values_ms):
+def _sample_index(times, values_ms):
     """Nearest sample of each time (tables store times rounded to the microsecond)."""
-    return np.abs(np.asarray(values_ms, float)[:, None] - times_ms[None, :]).argmin(axis=1)
+    return np.abs(np.asarray(values_ms, float)[:, None] - times[None, :]).argmin(axis=1)
 
 
 # ----------------------------------------------------------------------------
@@ -167,18 +78,18 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
     """Draw one contrast's figures; return [(caption, png path)]."""
     name, kind = cs["name"], cs["kind"]
     folder = results / name
-    figdir = folder / "figures"
+    figdir = folder / FIGURES
     figdir.mkdir(exist_ok=True)
     for old in list(figdir.glob("*.png")) + list(figdir.glob("*.svg")):
         old.unlink()
-    times = _times_ms(summary["window"])
-    stat4, _ = _read_map(folder / "statistic.nii.gz")
-    lab4 = _read_map(folder / "clusters.nii.gz")[0].astype(np.int64)
+    times = times_ms(summary["window"])
+    stat4, _ = read_map(folder / "statistic.nii.gz")
+    lab4 = read_map(folder / "clusters.nii.gz")[0].astype(np.int64)
     if stat4.ndim == 3:
         stat4, lab4 = stat4[..., None], lab4[..., None]
     stat = grid.from_volume(stat4)
     labels = grid.from_volume(lab4)
-    clusters = _read_tsv(folder / "clusters.tsv")
+    clusters = read_tsv(folder / "clusters.tsv")
     reported = list(cs.get("reported_clusters", []))
     out = []
     vlim = figures._stat_range(stat, kind)
@@ -188,16 +99,16 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
         return clusters.loc[clusters["cluster"] == k].iloc[0]
 
     # maximum-intensity projections at cluster peak times
-    mip_targets = reported[:MAX_MIPS]
-    if not mip_targets:
+    targets = reported[:MAX_PROJECTIONS]
+    if not targets:
         s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
-        mip_targets = [None]
-    for k in mip_targets:
+        targets = [None]
+    for k in targets:
         if k is None:
             t_idx = int(t)
             title = f"{name}: {label} at its largest |{label}|, {times[t_idx]:g} ms (no cluster reported)"
             keep = np.zeros(stat.shape[0], bool)
-            base = figdir / "mip_peak"
+            base = figdir / "projections_peak"
         else:
             r = row_of(k)
             t_idx = int(_sample_index(times, [r["t_peak_ms"]])[0])
@@ -205,8 +116,8 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
                      f"(p = {r['p_corrected']:.3g})" if np.isfinite(r["p_corrected"])
                      else f"{name}: {label} at {times[t_idx]:g} ms, peak of cluster {k}")
             keep = np.isin(labels[:, t_idx], reported)
-            base = figdir / f"mip_cluster{k:02d}"
-        figures.mip_figure(stat4[..., t_idx], grid.mask, grid.to_volume(keep), grid.affine,
+            base = figdir / f"projections_cluster{k:02d}"
+        figures.projection_figure(stat4[..., t_idx], grid.mask, grid.to_volume(keep), grid.affine,
                            kind, title, base, vlim=vlim)
         out.append((f"Maximum-intensity projections of the {label} map at {times[t_idx]:g} ms "
                     "(grey: source mask; white: reported clusters at that time).",
@@ -225,7 +136,7 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
         out.append((f"Cluster {k}: {label} of each of its {src.size} sources over time; "
                     "outlined: points in the cluster.", base.with_suffix(".png")))
     # time courses
-    tc = _read_tsv(folder / "cluster_timecourses.tsv")
+    tc = read_tsv(folder / "cluster_timecourses.tsv")
     shown = reported[:MAX_CLUSTER_FIGURES] or ([int(clusters["cluster"].iloc[0])]
                                                if len(clusters) else [])
     shown = [k for k in shown if len(tc) and (tc["cluster"] == k).any()]
@@ -254,7 +165,7 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
                     "the cluster's time span (hatched when not significant).",
                     base.with_suffix(".png")))
     # null distribution
-    null = _read_tsv(folder / "null_distribution.tsv")
+    null = read_tsv(folder / "null_distribution.tsv")
     if len(null):
         corr = cs["correction"]
         if corr in ("cluster-mass", "cluster-extent") and len(clusters):
@@ -277,103 +188,73 @@ def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list
                     "lines: observed clusters; dashed: the critical value at alpha.",
                     base.with_suffix(".png")))
     # design
-    design = _read_tsv(folder / "design.tsv")
+    design = read_tsv(folder / "design.tsv")
     if len(design):
         design = design.set_index("participant_id")
         base = figdir / "design"
         figures.design_figure(design, cs["weights"], f"{name}: design and contrast", base)
-        out.append(("Design matrix (participants x coefficients; each column scaled to its "
-                    "own range for display, black = lowest, constant columns grey) and the "
-                    "contrast weights.",
+        out.append(("The between-participant design, one panel per coefficient "
+                    "(coloured blocks: indicator columns; dots: covariates on their own "
+                    "scale, dashed at the mean), and the contrast's weights below.",
                     base.with_suffix(".png")))
     return out
 
 
 # ----------------------------------------------------------------------------
-# HTML
+# the page: template context
 # ----------------------------------------------------------------------------
 
-def _img(path: Path) -> str:
-    data = base64.b64encode(Path(path).read_bytes()).decode("ascii")
-    return f'<img alt="{html.escape(Path(path).stem)}" src="data:image/png;base64,{data}">'
+def _environment() -> Environment:
+    return Environment(loader=PackageLoader("groupsrc.outputs", "templates"),
+                       autoescape=select_autoescape(default=True, default_for_string=True),
+                       undefined=StrictUndefined, trim_blocks=True, lstrip_blocks=True,
+                       keep_trailing_newline=True)
 
 
-def _fmt(v):
+def _image_uri(path: Path) -> str:
+    return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
+
+
+def _cell(v) -> str:
     if isinstance(v, (float, np.floating)):
-        if not np.isfinite(v):
-            return "n/a"
-        return f"{v:.4g}"
-    return html.escape(str(v))
+        return "n/a" if not np.isfinite(v) else f"{v:.4g}"
+    return str(v)
 
 
-def _html_table(frame: pd.DataFrame, columns=None, docs=None, highlight=None, max_rows=50):
+def table_view(frame: pd.DataFrame | None, columns=None, docs=None, highlight=None,
+               max_rows=50) -> dict:
+    """A table for the template: column names, docs, alignment, rows (first ``max_rows``)."""
     if frame is None or len(frame) == 0:
-        return "<p>None.</p>"
+        return {"columns": [], "rows": [], "more": 0}
     cols = [c for c in (columns or frame.columns) if c in frame.columns]
-    head = "".join(f'<th class="l" title="{html.escape((docs or {}).get(c, ""))}">'
-                   f"{html.escape(c)}</th>" if frame[c].dtype == object else
-                   f'<th title="{html.escape((docs or {}).get(c, ""))}">{html.escape(c)}</th>'
-                   for c in cols)
-    rows = []
-    for _, r in frame.head(max_rows).iterrows():
-        cls = ' class="sig"' if highlight is not None and highlight(r) else ""
-        cells = "".join(f'<td class="l">{_fmt(r[c])}</td>' if frame[c].dtype == object
-                        else f"<td>{_fmt(r[c])}</td>" for c in cols)
-        rows.append(f"<tr{cls}>{cells}</tr>")
-    more = (f"<p>{len(frame) - max_rows} more rows in the TSV file.</p>"
-            if len(frame) > max_rows else "")
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{''.join(rows)}</tbody></table>{more}"
+    text = {c: frame[c].dtype == object for c in cols}
+    rows = [{"sig": bool(highlight(r)) if highlight is not None else False,
+             "cells": [{"text": _cell(r[c]), "left": text[c]} for c in cols]}
+            for _, r in frame.head(max_rows).iterrows()]
+    return {"columns": [{"name": c, "doc": (docs or {}).get(c, ""), "left": text[c]}
+                        for c in cols],
+            "rows": rows, "more": max(0, len(frame) - max_rows)}
 
 
-def _kv(pairs):
-    return ('<table class="kv">' + "".join(
-        f"<tr><th class='l'>{html.escape(str(k))}</th><td>{html.escape(str(v))}</td></tr>"
-        for k, v in pairs) + "</table>")
-
-
-def _markdown_to_html(md: str) -> str:
+def methods_blocks(md: str) -> list:
+    """The methods Markdown as blocks: headings, paragraphs and numbered lists."""
     out = []
     for block in md.strip().split("\n\n"):
         if block.startswith("# "):
             continue
         if block.startswith("## "):
-            out.append(f"<h3>{html.escape(block[3:])}</h3>")
+            out.append({"kind": "heading", "text": block[3:]})
         elif block[:2].strip().rstrip(".").isdigit():
-            items = "".join(f"<li>{html.escape(l.split('. ', 1)[1])}</li>"
-                            for l in block.splitlines() if ". " in l)
-            out.append(f"<ol>{items}</ol>")
+            out.append({"kind": "list", "entries": [line.split(". ", 1)[1]
+                                                  for line in block.splitlines() if ". " in line]})
         else:
-            out.append(f"<p>{html.escape(block)}</p>")
-    return "\n".join(out)
+            out.append({"kind": "paragraph", "text": block})
+    return out
 
 
-CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
-                "t_end_ms", "t_peak_ms", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
-                "estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "std_effect_at_peak",
-                "std_effect_ci_low", "std_effect_ci_high", "atlas_label_at_peak"]
-
-
-def render_html(summary, contrast_summaries, figure_lists, results: Path, methods_md) -> str:
-    coh = summary.get("cohort", {})
-    win = summary.get("window", {})
-    st = summary.get("settings", {})
-    title = html.escape(summary.get("title", "groupsrc results"))
-    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>"
-             f"<meta name='viewport' content='width=device-width,initial-scale=1'>"
-             f"<title>{title}</title><style>{CSS}</style></head><body><main>",
-             f"<h1>{title}</h1><p class='sub'>groupsrc {html.escape(str(summary.get('groupsrc_version')))}"
-             "</p>"]
-    nav = ["<a href='#cohort'>Cohort</a>", "<a href='#design'>Design</a>"] + \
-        [f"<a href='#c-{html.escape(c['name'])}'>{html.escape(c['name'])}</a>"
-         for c in contrast_summaries] + ["<a href='#methods'>Methods</a>",
-                                         "<a href='#cautions'>Cautions</a>"]
-    parts.append("<nav>" + "".join(nav) + "</nav>")
-    parts.append("<section class='caution'><strong>Read with care.</strong> "
-                 + CAUTIONS[0] + "</section>")
-    # cohort
+def _cohort_rows(coh: dict, win: dict) -> list:
     rows = [("participants", coh.get("participants", "?"))]
-    for g, n in (coh.get("per_group") or {}).items():
-        rows.append((f"  group {g}", n))
+    rows += [(f"  group {g}", n) for g, n in (coh.get("per_group") or {}).items()]
     if coh.get("conditions"):
         rows.append(("conditions", ", ".join(coh["conditions"])))
     if coh.get("sessions"):
@@ -382,69 +263,63 @@ def render_html(summary, contrast_summaries, figure_lists, results: Path, method
     if coh.get("voxel_size_mm"):
         rows.append(("voxel size (mm)", " x ".join(f"{v:g}" for v in coh["voxel_size_mm"])))
     if coh.get("time_range_ms"):
-        rows.append(("input samples", f"{coh.get('samples', '?')}, {coh['time_range_ms'][0]:g} to "
-                     f"{coh['time_range_ms'][1]:g} ms"))
+        rows.append(("input samples", f"{coh.get('samples', '?')}, {coh['time_range_ms'][0]:g} "
+                     f"to {coh['time_range_ms'][1]:g} ms"))
     rows.append(("analysed window", f"{win.get('start_ms'):g} to {win.get('end_ms'):g} ms, "
                  f"{win.get('n')} samples every {win.get('dt_ms'):g} ms"))
-    parts.append("<h2 id='cohort'>Cohort</h2>" + _kv(rows))
-    if st.get("check_summary"):
-        parts.append(
-            "<h3>Checks</h3><p>Every input check passed before the statistics ran: each map "
-            "read as a 4D NIfTI on one template grid (same shape and affine) with one time axis, "
-            "no NaN or infinite value inside the mask, no duplicate or orphan table row, every "
-            "model column present with at least two participants per factor level, and a "
-            "full-rank design matrix.</p>")
-    # design
-    model = st.get("model", {})
-    parts.append("<h2 id='design'>Design and contrasts</h2>" + _kv(
-        [(k, v) for k, v in model.items() if v not in (None, "")]))
-    crow = []
-    for c in contrast_summaries:
-        df = ", ".join(str(d) for d in c["df"])
-        crow.append({"contrast": c["name"], "description": c.get("description", ""),
-                     "statistic": f"{c['kind']}({df})", "scheme": c["scheme"],
-                     "resamples": c["n_resamples"], "exact": "yes" if c["exact"] else "no",
-                     "weights": json.dumps(c["weights"]),
-                     "within": json.dumps(c.get("within")) if c.get("within") else ""})
-    parts.append(_html_table(pd.DataFrame(crow).astype(str)))
-    # per contrast
-    for c, figs in zip(contrast_summaries, figure_lists):
-        name = c["name"]
-        folder = results / name
-        df = ", ".join(str(d) for d in c["df"])
-        parts.append(f"<h2 id='c-{html.escape(name)}'>Contrast {html.escape(name)}</h2>")
-        if c.get("description"):
-            parts.append(f"<p>{html.escape(c['description'])}</p>")
-        n_rep = len(c.get("reported_clusters", []))
-        parts.append(f"<p>{c['kind']} statistic with df = {df}; correction "
-                     f"<strong>{html.escape(c['correction'])}</strong>, {html.escape(c['tails'])}"
-                     f"-tailed, alpha = {c['alpha']}; {c.get('n_clusters', 0)} observed clusters, "
-                     f"{n_rep} with corrected p &le; alpha.</p>")
-        clusters = _read_tsv(folder / "clusters.tsv")
-        parts.append("<h3>Clusters</h3>")
-        alpha = c["alpha"]
-        parts.append(_html_table(clusters, CLUSTER_VIEW, COLUMNS["clusters.tsv"],
-                                 highlight=lambda r: np.isfinite(r["p_corrected"])
-                                 and r["p_corrected"] <= alpha, max_rows=15))
-        peaks = _read_tsv(folder / "peaks.tsv")
-        if len(peaks):
-            rep = set(c.get("reported_clusters", []))
-            parts.append("<h3>Peaks of the reported clusters</h3>")
-            parts.append(_html_table(peaks[peaks["cluster"].isin(rep)], None,
-                                     COLUMNS["peaks.tsv"], max_rows=30))
-        parts.append("<h3>Figures</h3>")
-        for cap, png in figs:
-            parts.append(f"<figure>{_img(png)}<figcaption>{html.escape(cap)} "
-                         f"(<code>{html.escape(str(png.relative_to(results)))}</code>, SVG beside it)"
-                         "</figcaption></figure>")
-    # settings
-    parts.append("<h2 id='settings'>Settings</h2><pre>" + html.escape(json.dumps(
-        {k: v for k, v in st.items() if k != "check_summary"}, indent=1)) + "</pre>")
-    parts.append("<h2 id='methods'>Methods</h2>" + _markdown_to_html(methods_md))
-    parts.append("<h2 id='cautions'>Cautions</h2><ul>"
-                 + "".join(f"<li>{c}</li>" for c in CAUTIONS) + "</ul>")
-    parts.append("</main></body></html>")
-    return "\n".join(parts)
+    return rows
+
+
+def _contrast_view(results: Path, c: dict, figs: list) -> dict:
+    folder = results / c["name"]
+    alpha = c["alpha"]
+    clusters = read_tsv(folder / "clusters.tsv")
+    peaks = read_tsv(folder / "peaks.tsv")
+    reported = set(c.get("reported_clusters", []))
+    return {
+        "name": c["name"], "description": c.get("description", ""), "kind": c["kind"],
+        "df": ", ".join(str(d) for d in c["df"]), "correction": c["correction"],
+        "tails": c["tails"], "alpha": alpha, "n_clusters": c.get("n_clusters", 0),
+        "n_reported": len(reported),
+        "clusters": table_view(clusters, CLUSTER_VIEW, COLUMNS["clusters.tsv"],
+                               highlight=lambda r: np.isfinite(r["p_corrected"])
+                               and r["p_corrected"] <= alpha, max_rows=15),
+        "peaks": (table_view(peaks[peaks["cluster"].isin(reported)], None,
+                             COLUMNS["peaks.tsv"], max_rows=30) if len(peaks) else None),
+        "figures": [{"caption": cap, "uri": _image_uri(png),
+                     "path": png.relative_to(results).as_posix()} for cap, png in figs],
+    }
+
+
+def page_context(summary, contrast_summaries, figure_lists, results: Path, methods_md) -> dict:
+    """Everything the template shows, as plain values (escaped by the template)."""
+    st = summary.get("settings", {})
+    contrast_rows = pd.DataFrame([
+        {"contrast": c["name"], "description": c.get("description", ""),
+         "statistic": f"{c['kind']}({', '.join(str(d) for d in c['df'])})",
+         "scheme": c["scheme"], "resamples": c["n_resamples"],
+         "exact": "yes" if c["exact"] else "no", "weights": json.dumps(c["weights"]),
+         "within": json.dumps(c.get("within")) if c.get("within") else ""}
+        for c in contrast_summaries]).astype(str)
+    return {
+        "title": summary.get("title", "groupsrc results"),
+        "version": str(summary.get("groupsrc_version")),
+        "cautions": CAUTIONS,
+        "cohort_rows": _cohort_rows(summary.get("cohort", {}), summary.get("window", {})),
+        "checks": CHECKS_TEXT if st.get("check_summary") else None,
+        "model_rows": [(k, v) for k, v in st.get("model", {}).items() if v not in (None, "")],
+        "contrast_table": table_view(contrast_rows),
+        "contrasts": [_contrast_view(results, c, figs)
+                      for c, figs in zip(contrast_summaries, figure_lists)],
+        "settings_json": json.dumps({k: v for k, v in st.items() if k != "check_summary"},
+                                    indent=1),
+        "methods": methods_blocks(methods_md),
+    }
+
+
+def render_html(summary, contrast_summaries, figure_lists, results: Path, methods_md) -> str:
+    context = page_context(summary, contrast_summaries, figure_lists, results, methods_md)
+    return _environment().get_template("report.html.j2").render(**context)
 
 
 def build_report(results_dir) -> Path:
@@ -460,11 +335,11 @@ def render_report(results_dir) -> Path:
     """Draw figures, methods.md and report.html of a folder the writer is filling
     (its run record comes last, so it is not required here)."""
     results = Path(results_dir)
-    summary = _read_json(results / SUMMARY_FILE)
-    grid = _load_grid(results)
-    cs_list = [_read_json(results / n / "summary.json") for n in summary["contrasts"]]
+    summary = read_json(results / SUMMARY_FILE)
+    grid = read_grid(results)
+    cs_list = [read_json(results / n / "summary.json") for n in summary["contrasts"]]
     figs = [contrast_figures(results, grid, summary, cs) for cs in cs_list]
     md = methods_text(summary, cs_list)
-    write_text(results / "methods.md", md)
+    write_text(results / METHODS_FILE, md)
     page = render_html(summary, cs_list, figs, results, md)
-    return write_text(results / "report.html", page)
+    return write_text(results / REPORT_FILE, page)

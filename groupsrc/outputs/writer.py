@@ -18,10 +18,13 @@ import pandas as pd
 from ..results import AnalysisResult, ContrastResult
 from . import nifti, tables
 from .files import jsonable, save_nifti, write_json, write_tsv
+from .layout import (ALL_CLUSTERS, DATASET_DESCRIPTION, MASK_FILE, RUN_RECORD,
+                     SUMMARY_FILE)
 
-LIBRARIES = ("numpy", "scipy", "pandas", "nibabel", "matplotlib", "statsmodels", "formulaic")
-SUMMARY_FILE = "analysis_summary.json"
-MASK_FILE = "source_mask.nii.gz"
+#: the BIDS specification version the description follows (1.10.0, from memory)
+BIDS_VERSION = "1.10.0"
+LIBRARIES = ("numpy", "scipy", "pandas", "nibabel", "matplotlib", "statsmodels", "formulaic",
+             "jinja2")
 
 
 def _version():
@@ -154,7 +157,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     frames = [w["clusters"] for w in written if len(w["clusters"])]
     all_clusters = (pd.concat(frames, ignore_index=True) if frames
                     else pd.DataFrame(columns=list(tables.COLUMNS["clusters.tsv"])[:-1]))
-    write_tsv(out / "clusters.tsv", all_clusters)
+    write_tsv(out / ALL_CLUSTERS, all_clusters)
     if atlas:
         aframes = [w["atlas"] for w in written if w["atlas"] is not None and len(w["atlas"])]
         if aframes:
@@ -171,6 +174,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
                "settings": settings, "contrasts": names, "atlas": bool(atlas),
                "seed": run_record.get("seed"), "timings": analysis.timings}
     write_json(out / SUMMARY_FILE, jsonable(summary))
+    write_json(out / DATASET_DESCRIPTION, dataset_description(analysis.title))
     render_report(out)
     record = dict(run_record)
     record.setdefault("platform", {"python": platform.python_version(),
@@ -183,5 +187,19 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     record.setdefault("groupsrc_version", _version())
     files = sorted(str(p.relative_to(out)) for p in out.rglob("*")
                    if p.is_file() and not p.name.startswith("."))
-    record["output_files"] = files + ["run.json"]
-    write_json(out / "run.json", record)
+    record["output_files"] = files + [RUN_RECORD]
+    write_json(out / RUN_RECORD, record)
+
+
+def dataset_description(title: str) -> dict:
+    """BIDS derivatives description of a results folder.
+
+    BIDS specification, "Derivatives": a derived dataset has a
+    ``dataset_description.json`` with ``Name``, ``BIDSVersion``,
+    ``DatasetType`` = "derivative" and ``GeneratedBy`` (a list whose entries
+    name the pipeline and its version).
+    """
+    return {"Name": title, "BIDSVersion": BIDS_VERSION, "DatasetType": "derivative",
+            "GeneratedBy": [{"Name": "groupsrc", "Version": _version(),
+                             "Description": "group statistics on source-space maps of "
+                                            "event-related responses"}]}
