@@ -1,53 +1,17 @@
-"""Atomic file writing for the results folder.
-
-Every file is written to a temporary name in its destination folder and then
-moved over the final name with :func:`os.replace`, so a reader (or an
-interrupted run) never sees a half-written file.  Files get the mode a plain
-``open`` would give under the user's umask (``tempfile.mkstemp`` alone would
-make them owner-only).
+"""Writers for the results folder's file types, all through :mod:`groupsrc.atomic`.
 """
 
 from __future__ import annotations
 
 import json
-import os
-import tempfile
-from contextlib import contextmanager
 from pathlib import Path
 
 import numpy as np
 
-from .folder import file_mode
+from ..atomic import atomic_path, write_text
 
-
-@contextmanager
-def atomic_path(path, suffix=None):
-    """Yield a temporary path next to ``path``; move it over ``path`` on success.
-
-    ``suffix`` defaults to the final name's full suffix (e.g. ``.nii.gz``) so
-    that writers which choose a format from the extension still work.
-    """
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    if suffix is None:
-        suffix = "".join(path.suffixes)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=suffix + ".part"
-                               if not suffix else suffix, dir=path.parent)
-    os.close(fd)
-    tmp = Path(tmp)
-    try:
-        yield tmp
-        os.chmod(tmp, file_mode())
-        os.replace(tmp, path)
-    except BaseException:
-        tmp.unlink(missing_ok=True)
-        raise
-
-
-def write_text(path, text: str) -> Path:
-    with atomic_path(path) as tmp:
-        tmp.write_text(text, encoding="utf-8")
-    return Path(path)
+__all__ = ["atomic_path", "write_text", "write_json", "write_tsv", "save_nifti",
+           "save_figure", "jsonable"]
 
 
 def write_json(path, obj) -> Path:

@@ -47,6 +47,7 @@ import tempfile
 from contextlib import contextmanager
 from pathlib import Path
 
+from ..atomic import folder_mode
 from ..problems import InputError, ProblemList
 
 RUN_RECORD = "run.json"
@@ -58,34 +59,6 @@ FIGURE_SUFFIXES = {".png", ".svg"}
 OS_CLUTTER = {".DS_Store", "Thumbs.db", "desktop.ini"}
 #: files named in a refusal message at most
 _LIST_AT_MOST = 5
-
-
-# ----------------------------------------------------------------------------
-# permissions
-# ----------------------------------------------------------------------------
-
-def current_umask() -> int:
-    """The process umask, read without changing it where the system allows."""
-    try:
-        with open("/proc/self/status", encoding="ascii") as fh:
-            for line in fh:
-                if line.startswith("Umask:"):
-                    return int(line.split()[1], 8)
-    except (OSError, ValueError, IndexError):
-        pass
-    mask = os.umask(0o022)       # fallback: set and restore (not thread safe)
-    os.umask(mask)
-    return mask
-
-
-def file_mode() -> int:
-    """Mode of a new file under the user's umask (as ``open`` would give)."""
-    return 0o666 & ~current_umask()
-
-
-def folder_mode() -> int:
-    """Mode of a new folder under the user's umask (as ``mkdir`` would give)."""
-    return 0o777 & ~current_umask()
 
 
 # ----------------------------------------------------------------------------

@@ -48,6 +48,7 @@ import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
+from ..atomic import write_bytes
 from ..grid import Grid, TimeAxis
 from .forward import helmet_sensors, lead_field
 from .inverse import InverseOperator, minimum_norm
@@ -495,25 +496,8 @@ def _nifti_gz(data, affine, dt=None, t0=None, descrip="") -> bytes:
 
 
 def _write(path: Path, payload) -> None:
-    """Write bytes or text to a temporary name, then rename into place."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    data = payload.encode("utf-8") if isinstance(payload, str) else payload
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.chmod(tmp, 0o666 & ~_umask())      # mkstemp makes 0600; use the usual mode
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
-def _umask() -> int:
-    mask = os.umask(0o022)
-    os.umask(mask)
-    return mask
+    """Write bytes or text atomically (see :mod:`groupsrc.atomic`)."""
+    write_bytes(path, payload.encode("utf-8") if isinstance(payload, str) else payload)
 
 
 def check_cohort_target(out: Path, problems, option: str = "the cohort folder") -> None:
