@@ -164,20 +164,57 @@ def test_student_sleep_data():
                                                rel=1e-5)
 
 
+# (batch_size, n_jobs, backend) against the reference (64, 1, "threads"):
+# batches smaller, larger and not multiples of the product block, the
+# pipelined thread mode and joblib process workers ("loky")
+SPLITS = [(1, 1, "threads"), (7, 1, "threads"), (150, 1, "threads"), (1, 2, "threads"),
+          (7, 2, "threads"), (64, 2, "threads"), (7, 2, "loky"), (150, 2, "loky")]
+
+
+def _assert_same_null(r, ref, what):
+    for col in ("max_stat", "max_pos", "max_neg"):
+        np.testing.assert_array_equal(r.null[col].to_numpy(), ref.null[col].to_numpy(),
+                                      err_msg=f"{what}: null.{col}")
+    np.testing.assert_array_equal(r.p_corrected, ref.p_corrected, err_msg=what)
+
+
 @pytest.mark.parametrize("correction", ["cluster-mass", "tfce", "max-stat"])
 def test_seed_determinism_across_batches_and_jobs(correction):
+    # The promise (DESIGN.md): a seed gives the same result, bit for bit,
+    # whatever the batch size, worker count or backend.
     grid, Y = _small_problem(n=12, shape=(5, 4, 3), T=8, effect=0.5, seed=3)
     adj = grid.adjacency("face")
     kw = dict(scheme="sign-flip", correction=correction, n_resamples=150, seed=42)
     ref = run_inference(Y, np.ones((12, 1)), [1.0], adj, batch_size=64, n_jobs=1, **kw)
     assert not ref.exact
-    for bs, nj in [(7, 1), (64, 2), (7, 2)]:
-        r = run_inference(Y, np.ones((12, 1)), [1.0], adj, batch_size=bs, n_jobs=nj, **kw)
-        np.testing.assert_array_equal(r.p_corrected, ref.p_corrected)
-        np.testing.assert_array_equal(r.null.max_stat.to_numpy(), ref.null.max_stat.to_numpy())
+    for bs, nj, backend in SPLITS:
+        r = run_inference(Y, np.ones((12, 1)), [1.0], adj, batch_size=bs, n_jobs=nj,
+                          backend=backend, **kw)
+        _assert_same_null(r, ref, f"batch {bs}, {nj} jobs, {backend}")
     other = run_inference(Y, np.ones((12, 1)), [1.0], adj, seed=43,
                           **{k: v for k, v in kw.items() if k != "seed"})
     assert not np.array_equal(other.null.max_stat, ref.null.max_stat)
+
+
+def test_seed_determinism_freedman_lane_and_f():
+    # Same promise on the Freedman-Lane path (residual copy, several product
+    # rows per resample) with an F contrast and a wider map (two feature chunks).
+    rng = np.random.default_rng(4)
+    n = 15
+    grid = Grid.from_mask(np.ones((6, 5, 4), bool), np.eye(4))
+    lev = np.repeat([0, 1, 2], 5)
+    age = rng.uniform(20, 60, n) + 5 * lev
+    X = np.c_[lev == 0, lev == 1, lev == 2, age].astype(float)
+    Y = rng.standard_normal((n, grid.n_sources, 40)).astype(np.float32)
+    Y += (0.05 * age)[:, None, None].astype(np.float32)
+    C = np.array([[1.0, -1, 0, 0], [0, 1, -1, 0]])
+    kw = dict(scheme="permutation", correction="cluster-mass", n_resamples=100, seed=7)
+    ref = run_inference(Y, X, C, grid.adjacency("face"), batch_size=64, **kw)
+    assert ref.extra["freedman_lane"] and ref.kind == "F"
+    for bs, nj, backend in [(1, 1, "threads"), (9, 2, "threads"), (33, 2, "loky")]:
+        r = run_inference(Y, X, C, grid.adjacency("face"), batch_size=bs, n_jobs=nj,
+                          backend=backend, **kw)
+        _assert_same_null(r, ref, f"batch {bs}, {nj} jobs, {backend}")
 
 
 def test_freedman_lane_observed_equals_statsmodels_and_is_calibrated():
