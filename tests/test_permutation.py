@@ -40,6 +40,16 @@ def _max_cluster_mass(tvol, thr):
     return best
 
 
+def _max_cluster_extent(tvol, thr):
+    """Largest number of points of any supra-threshold component, either sign."""
+    best = 0
+    for sign in (1, -1):
+        lab, n = ndimage.label(sign * tvol > thr, STRUCT4)   # scipy.ndimage reference labelling
+        if n:
+            best = max(best, int(np.bincount(lab.ravel())[1:].max()))
+    return best
+
+
 def test_exact_sign_flip_max_stat_and_cluster_mass_equal_brute_force():
     grid, Y = _small_problem()
     n = Y.shape[0]
@@ -86,6 +96,40 @@ def test_exact_sign_flip_max_stat_and_cluster_mass_equal_brute_force():
         assert sel.sum() == row.extent
         assert r.statistic[sel].sum() == pytest.approx(row.mass, rel=1e-6)
     assert np.all(r.p_corrected[r.cluster_labels == 0] == 1.0)
+
+
+def test_exact_sign_flip_cluster_extent_equals_brute_force():
+    # Cluster extent (number of space x time points of a component; Maris &
+    # Oostenveld 2007) over all 2**7 = 128 sign vectors, labelled with
+    # scipy.ndimage.label in 4D; p = share of maxima >= the observed extent,
+    # the identity included (Phipson & Smyth 2010).
+    grid, Y = _small_problem(effect=1.2, seed=1)
+    n = Y.shape[0]
+    adj = grid.adjacency("face")
+    thr = stats.t.isf(0.05 / 2, n - 1)
+    y64 = Y.astype(np.float64)
+    max_ext = np.array([_max_cluster_extent(grid.to_volume(_t1(np.array(s)[:, None, None] * y64)),
+                                            thr)
+                        for s in itertools.product([1, -1], repeat=n)])
+    r = run_inference(Y, np.ones((n, 1)), [1.0], adj, scheme="sign-flip",
+                      correction="cluster-extent", n_resamples=128, seed=0, forming_p=0.05)
+    assert r.exact
+    tvol = grid.to_volume(_t1(y64))
+    ref_p = np.ones(tvol.shape)
+    sizes = []
+    for sign in (1, -1):
+        lab, k = ndimage.label(sign * tvol > thr, STRUCT4)
+        for c in range(1, k + 1):
+            ext = int((lab == c).sum())
+            sizes.append(ext)
+            ref_p[lab == c] = np.mean(max_ext >= ext)
+    # the check needs clusters of different sizes and p-values strictly
+    # between the smallest possible (1/128) and 1
+    assert len(set(sizes)) > 1 and np.any((ref_p > 1 / 128) & (ref_p < 1))
+    np.testing.assert_allclose(grid.to_volume(r.p_corrected), ref_p)
+    np.testing.assert_array_equal(np.sort(np.maximum(r.null.max_pos, -r.null.max_neg)),
+                                  np.sort(max_ext))
+    assert sorted(r.clusters.extent) == sorted(sizes)
 
 
 @pytest.mark.parametrize("offset", [0.0, 3.0, 500.0])   # 500: large mean, residual-copy path
@@ -322,20 +366,46 @@ def test_blocks_and_validation():
         run_inference(Y, X, [0, 1.0], sparse.csr_matrix((3, 3)))
 
 
+def _tfce_reference(tvol, steps, E=0.5, H=2.0):
+    """TFCE from its definition (Smith & Nichols 2009, NeuroImage 44:83-98,
+    E = 0.5, H = 2 as recommended there): at heights h_k = k dh, k = 1..steps,
+    dh = max|t| / steps, each point of a component of {t >= h_k} (labelled
+    with scipy.ndimage.label, 4D face neighbours) gets e^E h_k^H dh; the
+    negative side likewise on -t, with the sign carried back."""
+    dh = np.abs(tvol).max() / steps
+    out = np.zeros_like(tvol)
+    for sign in (1, -1):
+        x = sign * tvol
+        for k in range(1, steps + 1):
+            lab, _ = ndimage.label(x >= k * dh * (1 - 1e-12), STRUCT4)
+            size = np.bincount(lab.ravel()).astype(float)
+            size[0] = 0.0
+            out += sign * size[lab] ** E * (k * dh) ** H * dh
+    return out
+
+
 def test_exact_sign_flip_tfce_equals_brute_force():
-    from groupsrc.tfce import tfce   # checked against a per-level ndimage reference in test_tfce
+    # All 2**6 = 64 sign vectors; the TFCE maps of the reference come from the
+    # per-height ndimage definition above, not from groupsrc.tfce.
     grid, Y = _small_problem(n=6, seed=2)
     adj = grid.adjacency("face")
     y64 = Y.astype(np.float64)
-    t_obs = _t1(y64)
-    maxima = [np.abs(tfce(_t1(np.array(s)[:, None, None] * y64), adj, steps=50)).max()
-              for s in itertools.product([1, -1], repeat=6)]          # all 2**6 sign vectors
-    obs = np.abs(tfce(t_obs, adj, steps=50))
-    ref = (np.array(maxima)[None, None] >= obs[..., None] * (1 - 1e-9)).mean(-1)
+    steps = 50
+    maxima = np.array([np.abs(_tfce_reference(grid.to_volume(
+        _t1(np.array(s)[:, None, None] * y64)), steps)).max()
+        for s in itertools.product([1, -1], repeat=6)])
+    obs = np.abs(_tfce_reference(grid.to_volume(_t1(y64)), steps))
+    ref = (maxima[None, None, None, None] >= obs[..., None] * (1 - 1e-6)).mean(-1)
     r = run_inference(Y, np.ones((6, 1)), [1.0], adj, scheme="sign-flip", correction="tfce",
                       n_resamples=64, seed=0, tfce_steps=50)
     assert r.exact
-    np.testing.assert_allclose(r.p_corrected, ref)
+    assert np.any((ref > 1 / 64) & (ref < 1))     # a check with room to fail
+    np.testing.assert_allclose(grid.to_volume(r.p_corrected), ref)
+    np.testing.assert_allclose(np.sort(np.maximum(r.null.max_pos, -r.null.max_neg)),
+                               np.sort(maxima), rtol=1e-5)
+    np.testing.assert_allclose(grid.to_volume(r.extra["tfce_observed"]),
+                               _tfce_reference(grid.to_volume(_t1(y64)), steps),
+                               rtol=1e-5, atol=1e-6 * obs.max())
 
 
 @pytest.mark.parametrize("correction", ["cluster-mass", "cluster-extent", "tfce"])
