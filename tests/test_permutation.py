@@ -1,4 +1,16 @@
-"""The inference engine against brute force, scipy and statsmodels."""
+"""The inference engine against brute force, scipy and statsmodels.
+
+Conventions checked here and their sources:
+* FWER-corrected p from the maximum statistic over all features, one
+  maximum per rearrangement (common practice; Maris & Oostenveld 2007, J
+  Neurosci Methods 164:177-190, for cluster mass and extent over space x time);
+* p = (b + 1) / (m + 1): the identity counted among the rearrangements
+  (Phipson & Smyth 2010, Stat Appl Genet Mol Biol 9:39); with every
+  rearrangement enumerated, p is the share of all of them reaching the
+  observed value (exact test);
+* numbers of distinct rearrangements: 2^n sign vectors, C(a + b, a) two-group
+  relabellings, products of k! over blocks (combinatorics, common practice).
+"""
 
 import itertools
 
@@ -26,7 +38,8 @@ def _small_problem(n=7, shape=(4, 3, 2), T=5, effect=0.8, seed=0):
 
 
 def _t1(y):
-    """One-sample t along axis 0, written from the textbook formula."""
+    """One-sample t along axis 0: mean / (sd / sqrt(n)), the textbook formula
+    (Student 1908; common practice)."""
     n = y.shape[0]
     return y.mean(0) / (y.std(0, ddof=1) / np.sqrt(n))
 
@@ -56,7 +69,9 @@ def test_exact_sign_flip_max_stat_and_cluster_mass_equal_brute_force():
     adj = grid.adjacency("face")
     X = np.ones((n, 1))
     thr = stats.t.isf(0.05 / 2, n - 1)
-    # brute force: all 2**7 = 128 sign vectors, plain float64 numpy + ndimage
+    # brute force: all 2**7 = 128 sign vectors (combinatorics), plain float64
+    # numpy + ndimage; p = share of the 128 maxima reaching the observed value,
+    # identity included (Phipson & Smyth 2010)
     y64 = Y.astype(np.float64)
     t_obs = _t1(y64)
     max_t, max_mass = [], []
@@ -87,6 +102,8 @@ def test_exact_sign_flip_max_stat_and_cluster_mass_equal_brute_force():
     assert len(r.clusters) > 0
     np.testing.assert_allclose(grid.to_volume(r.p_corrected), ref_p)
     # labels: 1..K in table order, sorted by p then |mass| descending
+    # (groupsrc's own documented table layout, not an outside fact); extent and
+    # mass per label are their definitions (Maris & Oostenveld 2007)
     tab = r.clusters
     assert list(tab.cluster) == list(range(1, len(tab) + 1))
     key = list(zip(tab.p_corrected, -tab.mass.abs()))
@@ -142,8 +159,9 @@ def test_exact_two_sample_permutation_equals_combinations(offset):
     X = np.zeros((8, 2)); X[:4, 0] = 1; X[4:, 1] = 1
     r = run_inference(Y, X, [1.0, -1.0], grid.adjacency("face"), scheme="permutation",
                       correction="max-stat", n_resamples=1000, seed=2)
-    assert r.exact and r.n_resamples == 70          # C(8, 4) distinct relabellings
-    # brute force over the 70 group-1 member sets with scipy.stats.ttest_ind
+    assert r.exact and r.n_resamples == 70          # C(8, 4) relabellings (combinatorics)
+    # brute force over the 70 group-1 member sets with scipy.stats.ttest_ind;
+    # p = share of the 70 maxima, identity included (Phipson & Smyth 2010)
     y = Y.astype(float)
     maxima = []
     for g1 in itertools.combinations(range(8), 4):
@@ -185,7 +203,7 @@ def test_single_feature_two_sample_equals_scipy_permutation_test(tails, alt):
     ref = stats.permutation_test((a, b), lambda u, v: stats.ttest_ind(u, v).statistic,
                                  permutation_type="independent", n_resamples=np.inf,
                                  alternative=alt)
-    assert r.exact and r.n_resamples == 126    # C(9, 4)
+    assert r.exact and r.n_resamples == 126    # C(9, 4) (combinatorics)
     assert r.p_corrected[0, 0] == pytest.approx(ref.pvalue, abs=1e-12)
 
 
@@ -196,8 +214,8 @@ def test_student_sleep_data():
     r = run_inference(d[:, None, None].astype(np.float32), np.ones((10, 1)), [1.0],
                       sparse.csr_matrix((1, 1)), scheme="sign-flip",
                       correction="max-stat", n_resamples=5000, seed=1)
-    assert r.exact and r.n_resamples == 1024
-    assert r.df == (9,)
+    assert r.exact and r.n_resamples == 1024    # 2**10 sign vectors (combinatorics)
+    assert r.df == (9,)                          # n - 1 (Student 1908)
     assert r.statistic[0, 0] == pytest.approx(4.06, abs=0.01)      # t about 4.06 (from memory)
     assert r.p_uncorrected[0, 0] == pytest.approx(0.00283, abs=2e-5)  # two-sided, from memory
     ref = stats.permutation_test((d,), lambda a: stats.ttest_1samp(a, 0).statistic,
@@ -279,8 +297,9 @@ def test_freedman_lane_observed_equals_statsmodels_and_is_calibrated():
         assert r.statistic[j, 0] == pytest.approx(ref.tvalue[0, 0], rel=1e-5)
         assert r.estimate[j, 0] == pytest.approx(ref.effect[0], rel=1e-5)
     # short calibration: no group effect, strong age effect; single feature,
-    # 200 datasets x 100 resamples; 95% binomial interval for 200 draws at 0.05 is [4, 17]
-    # (scipy.stats.binom.interval)
+    # 200 datasets x 100 resamples.  Freedman-Lane holds the nominal level
+    # closely (Winkler et al. 2014, NeuroImage 92:381-397), so rejections at 0.05 are about
+    # Binomial(200, 0.05): 95% interval [4, 17] (scipy.stats.binom.interval)
     lo, hi = stats.binom.interval(0.95, 200, 0.05)
     hits = 0
     for k in range(200):
@@ -339,7 +358,9 @@ def test_f_contrast_cluster_path():
     C = np.array([[1.0, 0, -1], [0, 1, -1]])
     r = run_inference(Y, X, C, grid.adjacency("face"), scheme="permutation",
                       correction="cluster-mass", n_resamples=200, seed=0)
+    # df: q = 2 contrast rows of rank 2, n - rank(X) = 18 - 3 (as statsmodels' df_num / df_denom)
     assert r.kind == "F" and r.df == (2, 15)
+    # cluster-forming threshold: upper 0.05 point of F(2, 15) (scipy.stats.f)
     assert r.threshold == pytest.approx(stats.f.isf(0.05, 2, 15))
     ref = sm.OLS(Y[:, 0, 3].astype(float), X).fit().f_test(C)    # statsmodels F
     assert r.statistic[0, 3] == pytest.approx(float(np.squeeze(ref.fvalue)), rel=1e-5)
@@ -356,7 +377,9 @@ def test_blocks_and_validation():
     r = run_inference(Y, X, [0, 1.0], sparse.csr_matrix((2, 2)), scheme="permutation",
                       correction="max-stat", n_resamples=10_000, seed=0,
                       blocks=[0, 0, 0, 0, 1, 1, 1, 1])
-    assert r.exact and r.n_resamples == 24 * 24      # 4! * 4! within-block orders
+    # 4! * 4! within-block orders (combinatorics; exchangeability blocks,
+    # Winkler et al. 2015, NeuroImage 123:253-268)
+    assert r.exact and r.n_resamples == 24 * 24
     with pytest.raises(ValueError, match="correction"):
         run_inference(Y, X, [0, 1.0], sparse.csr_matrix((2, 2)), correction="bonferroni")
     with pytest.raises(ValueError, match="NaN"):
