@@ -89,6 +89,8 @@ from .clusters import check_adjacency, cluster_scores, components, signed_cluste
 from .fdr import fdr_bh
 from .resampling import null_p_values, rearrangements
 from .results import InferenceResult
+from .tfce import E_DEFAULT, H_DEFAULT, STEPS_DEFAULT
+from .tfce import check_parameters as check_tfce_parameters
 from .tfce import tfce as tfce_map, tfce_stack
 
 CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
@@ -116,8 +118,23 @@ _CLUSTER_COLUMNS = ["cluster", "sign", "mass", "extent", "n_sources", "n_samples
 # validation
 # ----------------------------------------------------------------------------
 
+def _check_seed(seed):
+    """None or a non-negative integer (the seed of numpy's default generator)."""
+    if seed is None:
+        return
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
+        raise ValueError(f"seed must be a non-negative integer or None, got {seed!r} "
+                         f"-> give a whole number such as 20261201")
+    if seed < 0:
+        raise ValueError(f"seed must be a non-negative integer or None, got {seed} "
+                         f"-> drop the minus sign or pick another whole number >= 0")
+
+
 def _validate(Y, X, contrast, adjacency, scheme, correction, n_resamples, forming_p,
-              tails, alpha, blocks, batch_size, n_jobs, nuisance):
+              tails, alpha, blocks, batch_size, n_jobs, nuisance, seed=None,
+              tfce_params=(E_DEFAULT, H_DEFAULT, STEPS_DEFAULT, None)):
+    _check_seed(seed)
+    check_tfce_parameters(*tfce_params)
     Y = np.asarray(Y)
     if Y.ndim != 3:
         raise ValueError(f"Y must be (n, n_sources, n_times), got shape {Y.shape}")
@@ -630,7 +647,7 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         resample.
     n_resamples : requested number of rearrangements, identity included
         (fewer are used when all distinct ones fit: exact test).
-    seed : int or None
+    seed : non-negative int, or None (a fresh seed, recorded in ``extra``)
     forming_p : cluster-forming p; two-sided for ``tails="two"``
         (threshold ``t.isf(forming_p / 2, df)``), one-sided otherwise, upper
         tail for F.
@@ -648,7 +665,8 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         joblib process workers.
     progress : False, True (tqdm bar) or a callable ``f(done, total)``.
     tfce_e, tfce_h, tfce_steps, tfce_dh : TFCE parameters (see
-        :mod:`groupsrc.tfce`).
+        :mod:`groupsrc.tfce`); exponents must be finite and positive.
+        Invalid parameters raise ValueError before any work is done.
 
     Returns
     -------
@@ -656,7 +674,8 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
     """
     Y, X, adjacency, blocks = _validate(Y, X, contrast, adjacency, scheme, correction,
                                         n_resamples, forming_p, tails, alpha, blocks,
-                                        batch_size, n_jobs, nuisance)
+                                        batch_size, n_jobs, nuisance, seed,
+                                        (tfce_e, tfce_h, tfce_steps, tfce_dh))
     n, S, T = Y.shape
     shape = (S, T)
     C = np.asarray(contrast, dtype=np.float64)
