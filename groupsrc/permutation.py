@@ -657,10 +657,13 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
     nuisance : None/"auto" -> Freedman-Lane whenever the design has columns
         outside the contrast's space; False -> rearrange the raw data.
     blocks : (n,) exchangeability blocks (permutations stay within blocks).
-    batch_size : resamples per batch (default from a ~300 MB budget).
+    batch_size : resamples per batch (default: a multiple of ``RES_BLOCK``
+        that fits ``MEMORY_BUDGET``).  It changes memory and speed only,
+        never the result.
     n_jobs : number of workers (-1: all cores).  ``backend="threads"``
-        (default): products in the calling thread, labelling of each batch's
-        maps on a thread pool, pipelined with the next batch's products.
+        (default): products in the calling thread (one BLAS thread),
+        labelling of each batch's maps on a thread pool, pipelined with the
+        next batch's products.
         ``backend="loky"`` (or another joblib backend): whole batches on
         joblib process workers.
     progress : False, True (tqdm bar) or a callable ``f(done, total)``.
@@ -783,9 +786,9 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         for a, b in batches:
             collect(*eng.run_batch(a, b))
     elif backend == "threads":
-        # Pipelined: the products for batch i run in this thread (BLAS is
-        # multi-threaded already, and concurrent BLAS calls from several
-        # threads contend) while worker threads label batch i - 1's maps.
+        # Pipelined: the products for batch i run in this thread (on one
+        # BLAS thread, see stat_maps) while worker threads label batch
+        # i - 1's maps.
         # Two map buffers alternate; a buffer is refilled only after the
         # labelling that reads it has finished.
         from concurrent.futures import ThreadPoolExecutor
