@@ -32,17 +32,28 @@ Method
   source adjacency plus adjacent samples; TFCE per Smith & Nichols 2009;
   FDR per Benjamini & Hochberg 1995 (on the parametric p-values, no
   resampling).
-* Reproducibility: all rearrangements are generated from the seed before any
-  work starts, and each resample's statistic is computed independently of
-  the batch it falls in, so results do not depend on ``batch_size`` or
-  ``n_jobs``.
+* Reproducibility (bit for bit): all rearrangements are generated from the
+  seed before any work starts, and each resample's arithmetic is the same
+  whatever batch or worker it falls in, so the null and the p-values do not
+  depend on ``batch_size``, ``n_jobs`` or ``backend``.  The rule that makes
+  this hold: BLAS may round a product element differently depending on the
+  product's shape and on its number of threads, so every product has one
+  fixed shape, ``(RES_BLOCK r, n) @ (n, fc)`` with ``fc = min(FEATURE_CHUNK,
+  n_features)``; resample ``i`` always occupies row block ``i //
+  RES_BLOCK`` at row ``i % RES_BLOCK`` (rows of absent resamples are zero),
+  feature ``j`` always lies in chunk ``j // fc`` (the last chunk is
+  zero-padded), and BLAS runs on one thread during the products
+  (threadpoolctl).  Everything after the products is element-wise IEEE
+  arithmetic, maxima and per-map labelling, which do not depend on the
+  batch.  Any new code path must keep this rule; the test
+  ``test_seed_determinism_across_batches_and_jobs`` checks it exactly.
 * Ties: resampled statistics are float32; a resampled value within a relative
   2e-5 of the observed one counts as reaching it (``resampling.RTOL``).
 * Memory: besides the caller's data, at most one float32 copy of the
   reduced-model residuals (skipped when the nuisance space is invariant and
   the data are not dominated by their nuisance fit), plus about
   ``MEMORY_BUDGET`` bytes of resampled maps for the cluster / TFCE
-  corrections.
+  corrections (but at least ``RES_BLOCK`` maps per worker buffer).
 * F statistics are upper-tailed whatever ``tails`` says; cluster tables for
   F have sign +1.  ``null.max_pos`` / ``max_neg`` are the largest positive
   and most negative score (cluster mass, signed extent, TFCE or statistic)
@@ -78,6 +89,8 @@ from .clusters import check_adjacency, cluster_scores, components, signed_cluste
 from .fdr import fdr_bh
 from .resampling import null_p_values, rearrangements
 from .results import InferenceResult
+from .tfce import E_DEFAULT, H_DEFAULT, STEPS_DEFAULT
+from .tfce import check_parameters as check_tfce_parameters
 from .tfce import tfce as tfce_map, tfce_stack
 
 CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
@@ -88,8 +101,13 @@ TAILS = ("two", "greater", "less")
 #: together); the engine also keeps one float32 copy of the data (reduced-model
 #: residuals) next to the caller's array
 MEMORY_BUDGET = 128e6
-#: target size (bytes) of one GEMM output block, kept near cache size
-_BLOCK_BYTES = 2 ** 21
+#: resamples per product block: every product has (RES_BLOCK r) rows, resample
+#: ``i`` always sits in block ``i // RES_BLOCK`` at row ``i % RES_BLOCK``
+RES_BLOCK = 16
+#: features per product block (fewer only when the map itself is smaller);
+#: feature ``j`` always sits in chunk ``j // FEATURE_CHUNK``, the last chunk is
+#: zero-padded to the full width
+FEATURE_CHUNK = 4096
 #: maps smaller than this many features are labelled several at a time
 _STACK_FEATURES = 100_000
 _CLUSTER_COLUMNS = ["cluster", "sign", "mass", "extent", "n_sources", "n_samples",
@@ -100,8 +118,23 @@ _CLUSTER_COLUMNS = ["cluster", "sign", "mass", "extent", "n_sources", "n_samples
 # validation
 # ----------------------------------------------------------------------------
 
+def _check_seed(seed):
+    """None or a non-negative integer (the seed of numpy's default generator)."""
+    if seed is None:
+        return
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, (int, np.integer)):
+        raise ValueError(f"seed must be a non-negative integer or None, got {seed!r} "
+                         f"-> give a whole number such as 20261201")
+    if seed < 0:
+        raise ValueError(f"seed must be a non-negative integer or None, got {seed} "
+                         f"-> drop the minus sign or pick another whole number >= 0")
+
+
 def _validate(Y, X, contrast, adjacency, scheme, correction, n_resamples, forming_p,
-              tails, alpha, blocks, batch_size, n_jobs, nuisance):
+              tails, alpha, blocks, batch_size, n_jobs, nuisance, seed=None,
+              tfce_params=(E_DEFAULT, H_DEFAULT, STEPS_DEFAULT, None)):
+    _check_seed(seed)
+    check_tfce_parameters(*tfce_params)
     Y = np.asarray(Y)
     if Y.ndim != 3:
         raise ValueError(f"Y must be (n, n_sources, n_times), got shape {Y.shape}")
@@ -219,29 +252,69 @@ class _Engine:
             G = self.Q[inv]                                                 # (B, n, r)
         return np.ascontiguousarray(G.transpose(0, 2, 1)).reshape(B * r, n)
 
+    def block_rows(self, k):
+        """The (RES_BLOCK r, n) product matrix of resample block ``k``.
+
+        Rows past the last resample are zero (padding): a product row depends
+        only on its own row of G, so padding never changes a real resample.
+        """
+        n, r = self.Q.shape
+        m = self.rearr.n_resamples
+        a, b = k * RES_BLOCK, min(m, (k + 1) * RES_BLOCK)
+        G = np.zeros((RES_BLOCK * r, n), np.float32)
+        G[:(b - a) * r] = self.gemm_rows(self.rearr.matrix[a:b])
+        return G
+
+    def feature_chunks(self):
+        """Fixed feature chunks ``(a, b)`` and the common product width."""
+        F = self.R.shape[1]
+        fc = min(FEATURE_CHUNK, F)
+        return [(a, min(F, a + fc)) for a in range(0, F, fc)], fc
+
     def stat_maps(self, lo, hi, out=None):
         """Statistics for resamples lo..hi-1: (B, F) float32 maps (or None) and
-        per-resample max / min of the statistic."""
-        rows = self.rearr.matrix[lo:hi]
-        B = rows.shape[0]
-        G = self.gemm_rows(rows)
+        per-resample max / min of the statistic.
+
+        Every product is ``G_k @ R_c`` with fixed shapes ``(RES_BLOCK r, n) @
+        (n, fc)``: resample ``i`` in row block ``k = i // RES_BLOCK``, feature
+        chunks at fixed offsets (last one zero-padded), BLAS held to one
+        thread.  A resample's statistic therefore never depends on the batch
+        it falls in, nor on the worker that computes it.
+        """
+        B = hi - lo
         r = self.Q.shape[1]
+        n = self.R.shape[0]
         F = self.R.shape[1]
-        fc = max(256, int(_BLOCK_BYTES // (4 * B * r)))
+        ks = range(lo // RES_BLOCK, (hi - 1) // RES_BLOCK + 1)
         if self.needs_maps:
             out = self._buffer(B, F) if out is None else out[:B]
         else:
             out = None
         mx = np.full(B, -np.inf)
         mn = np.full(B, np.inf)
-        for a in range(0, F, fc):
-            b = min(F, a + fc)
-            U = (G @ self.R[:, a:b]).reshape(B, r, b - a)
-            st = _stat_from_u(U, self.rr[a:b], self.kind, self.df, self.q,
-                              out=None if out is None else out[:, a:b])
-            if out is None:
-                np.maximum(mx, st.max(axis=1), out=mx)
-                np.minimum(mn, st.min(axis=1), out=mn)
+        chunks, fc = self.feature_chunks()
+        with _one_blas_thread():
+            Gs = [self.block_rows(k) for k in ks]
+            pad = None
+            for a, b in chunks:
+                Rc = self.R[:, a:b]
+                if b - a < fc:                      # last chunk: zero-padded copy
+                    pad = np.zeros((n, fc), np.float32) if pad is None else pad
+                    pad[:, :b - a] = Rc
+                    pad[:, b - a:] = 0.0
+                    Rc = pad
+                for k, G in zip(ks, Gs):
+                    i0 = max(lo, k * RES_BLOCK)
+                    i1 = min(hi, (k + 1) * RES_BLOCK)
+                    U = (G @ Rc).reshape(RES_BLOCK, r, fc)
+                    U = U[i0 - k * RES_BLOCK:i1 - k * RES_BLOCK, :, :b - a]
+                    st = _stat_from_u(U, self.rr[a:b], self.kind, self.df, self.q,
+                                      out=None if out is None else out[i0 - lo:i1 - lo, a:b])
+                    if out is None:
+                        np.maximum(mx[i0 - lo:i1 - lo], st.max(axis=1),
+                                   out=mx[i0 - lo:i1 - lo])
+                        np.minimum(mn[i0 - lo:i1 - lo], st.min(axis=1),
+                                   out=mn[i0 - lo:i1 - lo])
         return out, mx, mn
 
     def score_map(self, st):
@@ -333,6 +406,23 @@ class _Engine:
         return [(a, min(B, a + step)) for a in range(0, B, step)]
 
 
+_BLAS_CONTROLLER = None
+
+
+def _one_blas_thread():
+    """Context that holds BLAS to one thread (threadpoolctl).
+
+    OpenBLAS splits a product differently for different thread counts, and
+    the split changes float32 rounding; one thread everywhere (calling
+    thread, thread pool, process workers) keeps the products bit-identical.
+    """
+    global _BLAS_CONTROLLER
+    if _BLAS_CONTROLLER is None:
+        from threadpoolctl import ThreadpoolController
+        _BLAS_CONTROLLER = ThreadpoolController()
+    return _BLAS_CONTROLLER.limit(limits=1, user_api="blas")
+
+
 def _signs(kind, tails):
     if kind == "F" or tails == "greater":
         return (1,)
@@ -392,10 +482,11 @@ def _parametric_p(stat, kind, tails, df):
 
 
 def _auto_batch(n_res, F, r, needs_maps, n_jobs):
-    if needs_maps:
-        per = max(1, n_jobs)
-        return int(max(1, min(n_res, MEMORY_BUDGET / per // (4.0 * F))))
-    return int(max(1, min(n_res, 256)))
+    """Default batch: a whole number of product blocks (at least one) that
+    fits the map budget, so that no product row is padding except at the end."""
+    fit = MEMORY_BUDGET / max(1, n_jobs) // (4.0 * F) if needs_maps else 256
+    B = max(RES_BLOCK, int(fit) // RES_BLOCK * RES_BLOCK)
+    return int(max(1, min(n_res, B)))
 
 
 def _progress_wrap(progress, total):
@@ -556,7 +647,7 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         resample.
     n_resamples : requested number of rearrangements, identity included
         (fewer are used when all distinct ones fit: exact test).
-    seed : int or None
+    seed : non-negative int, or None (a fresh seed, recorded in ``extra``)
     forming_p : cluster-forming p; two-sided for ``tails="two"``
         (threshold ``t.isf(forming_p / 2, df)``), one-sided otherwise, upper
         tail for F.
@@ -566,15 +657,19 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
     nuisance : None/"auto" -> Freedman-Lane whenever the design has columns
         outside the contrast's space; False -> rearrange the raw data.
     blocks : (n,) exchangeability blocks (permutations stay within blocks).
-    batch_size : resamples per batch (default from a ~300 MB budget).
+    batch_size : resamples per batch (default: a multiple of ``RES_BLOCK``
+        that fits ``MEMORY_BUDGET``).  It changes memory and speed only,
+        never the result.
     n_jobs : number of workers (-1: all cores).  ``backend="threads"``
-        (default): products in the calling thread, labelling of each batch's
-        maps on a thread pool, pipelined with the next batch's products.
+        (default): products in the calling thread (one BLAS thread),
+        labelling of each batch's maps on a thread pool, pipelined with the
+        next batch's products.
         ``backend="loky"`` (or another joblib backend): whole batches on
         joblib process workers.
     progress : False, True (tqdm bar) or a callable ``f(done, total)``.
     tfce_e, tfce_h, tfce_steps, tfce_dh : TFCE parameters (see
-        :mod:`groupsrc.tfce`).
+        :mod:`groupsrc.tfce`); exponents must be finite and positive.
+        Invalid parameters raise ValueError before any work is done.
 
     Returns
     -------
@@ -582,7 +677,8 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
     """
     Y, X, adjacency, blocks = _validate(Y, X, contrast, adjacency, scheme, correction,
                                         n_resamples, forming_p, tails, alpha, blocks,
-                                        batch_size, n_jobs, nuisance)
+                                        batch_size, n_jobs, nuisance, seed,
+                                        (tfce_e, tfce_h, tfce_steps, tfce_dh))
     n, S, T = Y.shape
     shape = (S, T)
     C = np.asarray(contrast, dtype=np.float64)
@@ -690,9 +786,9 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         for a, b in batches:
             collect(*eng.run_batch(a, b))
     elif backend == "threads":
-        # Pipelined: the products for batch i run in this thread (BLAS is
-        # multi-threaded already, and concurrent BLAS calls from several
-        # threads contend) while worker threads label batch i - 1's maps.
+        # Pipelined: the products for batch i run in this thread (on one
+        # BLAS thread, see stat_maps) while worker threads label batch
+        # i - 1's maps.
         # Two map buffers alternate; a buffer is refilled only after the
         # labelling that reads it has finished.
         from concurrent.futures import ThreadPoolExecutor

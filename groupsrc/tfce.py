@@ -34,6 +34,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
@@ -45,14 +47,37 @@ H_DEFAULT = 2.0
 STEPS_DEFAULT = 100
 
 
-def _check(E, H, steps, dh):
-    if not (E > 0 and H > 0):
-        raise ValueError(f"TFCE exponents must be positive, got E={E}, H={H}")
+def _positive_number(value):
+    try:
+        value = float(value)
+    except (TypeError, ValueError):
+        return False
+    return math.isfinite(value) and value > 0
+
+
+def check_parameters(E, H, steps, dh):
+    """Raise ValueError naming the first invalid TFCE parameter.
+
+    E and H must be finite and positive (Smith & Nichols 2009 recommend
+    E = 0.5, H = 2); ``steps`` a positive integer when ``dh`` is None;
+    ``dh`` finite and positive when given.
+    """
+    if not _positive_number(E):
+        raise ValueError(f"TFCE extent exponent E must be a positive number, got {E!r} "
+                         f"-> use e.g. E = {E_DEFAULT} (Smith & Nichols 2009)")
+    if not _positive_number(H):
+        raise ValueError(f"TFCE height exponent H must be a positive number, got {H!r} "
+                         f"-> use e.g. H = {H_DEFAULT} (Smith & Nichols 2009)")
     if dh is None:
-        if steps is None or int(steps) < 1:
-            raise ValueError(f"steps must be a positive integer, got {steps}")
-    elif not dh > 0:
-        raise ValueError(f"dh must be positive, got {dh}")
+        if (isinstance(steps, bool) or not isinstance(steps, (int, np.integer))
+                or steps < 1):
+            raise ValueError(f"TFCE steps must be a positive integer, got {steps!r} "
+                             f"-> use e.g. steps = {STEPS_DEFAULT}")
+    elif not _positive_number(dh):
+        raise ValueError(f"TFCE height step dh must be a positive number, got {dh!r} "
+                         f"-> give a positive step or leave dh unset to use steps")
+
+
 
 
 def _tfce_positive(x, adjacency, E, H, dh):
@@ -103,7 +128,7 @@ def tfce_stack(maps, adjacency_stack, *, E=E_DEFAULT, H=H_DEFAULT, steps=STEPS_D
     n_times), identical in definition to calling :func:`tfce` per map; one
     labelling serves all maps, which matters for small grids.
     """
-    _check(E, H, steps, dh)
+    check_parameters(E, H, steps, dh)
     x = np.asarray(maps, dtype=np.float64)
     g, S, T = x.shape
     x = np.where(np.isfinite(x), x, 0.0)
@@ -142,7 +167,7 @@ def tfce(stat, adjacency, *, E=E_DEFAULT, H=H_DEFAULT, steps=STEPS_DEFAULT, dh=N
     -------
     (n_sources, n_times) float64 array, signed like ``stat``.
     """
-    _check(E, H, steps, dh)
+    check_parameters(E, H, steps, dh)
     x = np.asarray(stat, dtype=np.float64)
     if x.ndim != 2:
         raise ValueError(f"stat must be (n_sources, n_times), got shape {x.shape}")

@@ -118,6 +118,8 @@ def test_far_field_is_a_magnetic_dipole():
 
 
 def test_lead_field_columns_are_unit_moment_fields(sensors):
+    # a lead-field column is the sensor reading (field projected on the sensor
+    # normal) of a unit dipole along one axis (definition; common practice)
     pos, ori = sensors
     r0 = np.array([[0.01, 0.02, 0.05], [0.0, -0.03, 0.04]])
     L = lead_field(r0, pos, ori)
@@ -132,12 +134,15 @@ def test_lead_field_columns_are_unit_moment_fields(sensors):
 
 
 def test_points_inside_the_conductor_are_refused(sensors):
+    # Sarvas (1987)'s formula holds outside the conductor only
     pos, ori = sensors
     with pytest.raises(ValueError, match="outside"):
         lead_field([[0.0, 0.0, 0.12]], pos, ori)
 
 
 def test_helmet_is_an_even_radial_cap():
+    # the demo's own sensor layout as documented in groupsrc.simulate.forward
+    # (radius, lowest height, radial magnetometers); no outside value
     pos, ori = helmet_sensors(128, 0.11, -0.02)
     assert pos.shape == (128, 3)
     np.testing.assert_allclose(np.linalg.norm(pos, axis=1), 0.11)
@@ -149,6 +154,8 @@ def test_helmet_is_an_even_radial_cap():
 
 
 def test_tangential_basis_is_orthonormal_and_tangential():
+    # orthonormal and perpendicular to the radius (geometry fact); the
+    # tangential plane is where a sphere's external field lives (Sarvas 1987)
     rng = np.random.default_rng(4)
     r0 = np.vstack([_random_inside(rng, 10), [[0.0, 0.0, 0.05]], [[0.0, 0.0, 0.0]]])
     E = tangential_basis(r0)

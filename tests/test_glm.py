@@ -14,8 +14,8 @@ def test_one_sample_matches_scipy():
     r = glm.t_contrast(Y, np.ones((12, 1)), [1.0])
     ref = stats.ttest_1samp(Y.astype(float), 0.0, axis=0)  # scipy.stats reference
     np.testing.assert_allclose(r.t, ref.statistic, rtol=1e-5)
-    assert r.df == 11
-    np.testing.assert_allclose(r.estimate, Y.astype(float).mean(0), rtol=1e-5)
+    assert r.df == 11                                       # n - 1 (scipy's df)
+    np.testing.assert_allclose(r.estimate, Y.astype(float).mean(0), rtol=1e-5)  # the mean
 
 
 def test_paired_matches_scipy():
@@ -36,8 +36,9 @@ def test_two_sample_matches_scipy():
     r = glm.t_contrast(Y, X, [1.0, -1.0])
     ref = stats.ttest_ind(g1, g2, axis=0)  # scipy.stats pooled-variance two-sample t
     np.testing.assert_allclose(r.t, ref.statistic, rtol=1e-5)
-    assert r.df == 14
-    # Cohen's d with pooled sd (textbook definition) times Hedges J = 1 - 3/(4 df - 1)
+    assert r.df == 14                                       # n1 + n2 - 2 (pooled t)
+    # Cohen's d: difference over the pooled sd (common practice), times Hedges'
+    # J = 1 - 3/(4 df - 1) (Hedges 1981, J Educ Stat 6:107-128)
     sp = np.sqrt(((8 * g1.var(0, ddof=1)) + 6 * g2.var(0, ddof=1)) / 14)
     d = (g1.mean(0) - g2.mean(0)) / sp * (1 - 3 / (4 * 14 - 1))
     np.testing.assert_allclose(glm.cohens_d(r.estimate, r.sigma, r.df), d, rtol=1e-5)
@@ -72,7 +73,8 @@ def test_f_three_level_factor_matches_statsmodels():
         ref = sm.OLS(Y[:, j], X).fit().f_test(C)  # statsmodels F test reference
         np.testing.assert_allclose(r.F[j], float(np.squeeze(ref.fvalue)), rtol=1e-4)
         assert (r.df1, r.df2) == (int(ref.df_num), int(ref.df_denom))
-    # partial eta^2 = F df1 / (F df1 + df2) (textbook identity with SS_eff / (SS_eff + SS_res))
+    # partial eta^2 = SS_eff / (SS_eff + SS_res) (its definition, common practice),
+    # with SS from statsmodels fits of the full and the reduced model
     eta = glm.partial_eta_squared(r.F, r.df1, r.df2)
     full = sm.OLS(Y[:, 0], X).fit()
     red = sm.OLS(Y[:, 0], X[:, [0, 3, 4]]).fit()
@@ -81,16 +83,28 @@ def test_f_three_level_factor_matches_statsmodels():
 
 
 def test_rank_deficient_redundant_contrast_rows():
+    # The third row is the sum of the first two, so the hypothesis is the
+    # same as with the first two rows alone: q = rank 2 numerator df.
     X, rng = _design(5)
-    Y = rng.standard_normal((30, 3))
+    Y = X @ rng.standard_normal((5, 3)) + rng.standard_normal((30, 3))
     C = np.array([[0, 1.0, 0, 0, 0], [0, 0, 1.0, 0, 0], [0, 1.0, 1.0, 0, 0]])
     r = glm.f_contrast(Y, X, C)
-    ref = glm.f_contrast(Y, X, C[:2])
-    assert r.df1 == 2
-    np.testing.assert_allclose(r.F, ref.F, rtol=1e-10)
+    assert (r.df1, r.df2) == (2, 25)
+    for j in range(3):
+        full = sm.OLS(Y[:, j], X).fit()
+        ref = full.f_test(C[:2])            # statsmodels F test, non-redundant rows
+        np.testing.assert_allclose(r.F[j], float(np.squeeze(ref.fvalue)), rtol=1e-10)
+        assert (r.df1, r.df2) == (int(ref.df_num), int(ref.df_denom))
+        # the same F as the nested-model comparison without the two level
+        # dummies (statsmodels compare_f_test; extra-sum-of-squares F, common practice)
+        nested = full.compare_f_test(sm.OLS(Y[:, j], X[:, [0, 3, 4]]).fit())
+        np.testing.assert_allclose(r.F[j], nested[0], rtol=1e-10)
+        assert nested[2] == 2
 
 
 def test_rejects_non_estimable_and_no_df():
+    # c = [1, -1] on two identical columns is not a combination of the
+    # design's rows (estimability, common practice of linear models)
     X = np.c_[np.ones(6), np.ones(6)]
     with pytest.raises(ValueError, match="estimable"):
         glm.t_contrast(np.zeros((6, 2)), X, [1.0, -1.0])

@@ -11,7 +11,8 @@ corrected p <= 0.05.  Under exchangeability the rejection probability is 0.05
 independent datasets is Binomial(n_datasets, 0.05) and must fall in its
 central 95% interval (scipy.stats.binom.interval).
 
-Quick version (default suite): 100 datasets x 100 resamples; the 95% interval
+Quick version (default suite, cluster mass, cluster extent, TFCE and max-stat):
+100 datasets x 100 resamples; the 95% interval
 for Binomial(100, 0.05) is [1, 10] -- wide, it catches gross miscalibration
 only.  Long version:  pytest -m slow tests/test_null_calibration.py
 (400 datasets x 200 resamples on the 8x8x8 x 20 grid for every correction;
@@ -50,7 +51,7 @@ def _rejections(correction, n_datasets, n_resamples, seed, **grid):
     return hits
 
 
-@pytest.mark.parametrize("correction", ["cluster-mass", "tfce", "max-stat"])
+@pytest.mark.parametrize("correction", ["cluster-mass", "cluster-extent", "tfce", "max-stat"])
 def test_fwer_quick(correction):
     lo, hi = stats.binom.interval(0.95, 100, ALPHA)   # scipy.stats binomial interval
     small = {"shape": (6, 6, 6), "n_times": 12} if correction == "tfce" else {}
