@@ -25,6 +25,35 @@ def tree_hashes(root):
             for p in sorted(root.rglob("*")) if p.is_file()}
 
 
+def assert_refused(analysis, capsys, fragments, out=None):
+    """`check` (and `run` when ``out`` is given) exit 1 naming every fragment.
+
+    The acceptance rule for bad input: exit code 1, no traceback, the culprit
+    named, every file of the cohort folder byte-identical afterwards, and no
+    results folder written.  ``cli.main`` lets any exception other than
+    InputError through, so a traceback also fails the test.
+    """
+    root = analysis.parent
+    before = tree_hashes(root)
+    commands = [["check", str(analysis)]]
+    if out is not None:
+        commands.append(["run", str(analysis), "--out", str(out)])
+    texts = []
+    for argv in commands:
+        rc = main(argv)
+        cap = capsys.readouterr()
+        text = cap.out + cap.err
+        assert rc == 1, f"{argv[0]} exited {rc}:\n{text}"
+        assert "Traceback" not in text, text
+        for fragment in fragments:
+            assert fragment in text, f"{argv[0]}: {fragment!r} not in:\n{text}"
+        assert tree_hashes(root) == before, f"{argv[0]} changed an input file"
+        texts.append(text)
+    if out is not None:
+        assert not out.exists(), "a refused run wrote a results folder"
+    return texts[0]
+
+
 def test_clean_cohort_exits_0(tiny_cohort, capsys):
     rc, text = run_check(tiny_cohort, capsys)
     assert rc == 0, text
