@@ -39,6 +39,7 @@ import numpy as np
 import pandas as pd
 from formulaic import Formula, model_matrix
 
+from .glm import check_design
 from .problems import ProblemList, closest
 
 ID = "participant_id"
@@ -83,8 +84,8 @@ def build_design(settings, parts: pd.DataFrame, problems: ProblemList, where) ->
     rhs = settings.model.get("between") or "1"
     variables = sorted(formula_variables(rhs))
     missing = [v for v in variables if v not in parts.columns]
-    if missing:
-        return None  # reported by the table checks
+    if missing or len(parts) == 0 or parts[variables].isna().any().any():
+        return None  # reported by the table checks (missing columns, rows or values)
     try:
         Xm = model_matrix(rhs, parts, na_action="raise")
     except Exception as exc:
@@ -200,6 +201,14 @@ def plan_contrast(spec, design: Design, problems: ProblemList, where) -> Contras
         return None
     if not spec.weights and not within and scheme == "sign-flip":
         problems.add(where, "tests the grand mean of averaged maps", "give within weights")
+        return None
+    try:
+        # the engine's own check (estimable, residual df); its refusal becomes a problem here
+        check_design(design.X.to_numpy(), w)
+    except ValueError as exc:
+        problems.add(where, f"cannot be tested on this design: {exc}",
+                     "simplify [model] between or the contrast (see the design columns "
+                     "that groupsrc check prints)")
         return None
     return ContrastPlan(spec.name, spec.description or desc, within, w, kind, scheme)
 
