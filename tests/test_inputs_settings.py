@@ -249,3 +249,14 @@ def test_values_settings_accept_the_engine_accepts(tmp_path, key, value):
     assert f"[inference] {key}" not in _settings_problems(tmp_path, key, repr(value))
     param = next(p for p, s in ENGINE_PARAMETERS.items() if s == key)
     _engine(**{param: value})
+
+
+def test_within_contrast_naming_an_unknown_condition(cohort_copy, tmp_path, capsys):
+    body = cohort_copy.read_text().replace("within = { rare = 1, frequent = -1 }\n[[contrasts]]\n"
+                                           'name = "group_by_tone"',
+                                           "within = { rare = 1, oddball = -1 }\n[[contrasts]]\n"
+                                           'name = "group_by_tone"')
+    cohort_copy.write_text(body)
+    assert_refused(cohort_copy, capsys, ["contrast 'rare_minus_frequent' within",
+                                         "condition 'oddball' does not occur in maps.tsv"],
+                   out=tmp_path / "out")
