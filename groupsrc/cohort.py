@@ -402,6 +402,10 @@ def check_headers(settings, maps, mpath, problems):
             problems.add(f"{row} ({p})", f"has shape {h.shape} with an empty axis",
                          "write the map again with its data")
             continue
+        if not np.all(np.isfinite(h.affine)):
+            problems.add(f"{row} ({p})", "the voxel-to-world affine (sform/qform) holds NaN "
+                         "or infinite values", "write the map with a valid template affine")
+            continue
         headers[i] = h
         rows.append((i, row, p, h))
     if not rows:
@@ -442,6 +446,14 @@ def map_path(mpath: Path, rel: str) -> Path:
     return p if p.is_absolute() else (mpath.parent / p)
 
 
+def _real(path: Path) -> Path:
+    """The path with '..' and symbolic links resolved (as given when that fails, e.g. a loop)."""
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError):
+        return path.absolute()
+
+
 def _describe(maps, line, within):
     """'participant 'sub-01' condition 'rare'' for one maps row."""
     text = f"participant '{maps.at[line, ID]}'"
@@ -462,7 +474,7 @@ def check_same_files(settings, maps, mpath, digests, problems):
     resolved = {}
     for line, rel in maps["path"].items():
         if rel not in MISSING:
-            resolved.setdefault(map_path(mpath, rel).resolve(), []).append(line)
+            resolved.setdefault(_real(map_path(mpath, rel)), []).append(line)
     for real, lines in resolved.items():
         if len(lines) > 1:
             problems.add(f"{mpath} rows {_rows(lines)}",
@@ -474,7 +486,7 @@ def check_same_files(settings, maps, mpath, digests, problems):
     for line, digest in digests.items():
         by_digest.setdefault(digest, []).append(line)
     for digest, lines in by_digest.items():
-        files = {map_path(mpath, maps.at[ln, "path"]).resolve() for ln in lines}
+        files = {_real(map_path(mpath, maps.at[ln, "path"])) for ln in lines}
         if len(files) > 1:
             problems.add(f"{mpath} rows {_rows(lines)}",
                          "files " + ", ".join(maps.at[ln, "path"] for ln in lines)

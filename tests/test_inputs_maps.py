@@ -171,3 +171,26 @@ def test_copied_file_for_two_participants(cohort_copy, tmp_path, capsys):
     assert_refused(cohort_copy, capsys,
                    ["maps.tsv rows 4, 14", "identical content", m.loc[2, "path"],
                     m.loc[12, "path"]], out=tmp_path / "out")
+
+
+def test_symlink_loop_as_map_path(cohort_copy, capsys):
+    m = _maps(cohort_copy)
+    a, b = cohort_copy.parent / "maps" / "loop_a.nii.gz", cohort_copy.parent / "maps" / "loop_b.nii.gz"
+    os.symlink(b, a)
+    os.symlink(a, b)
+    m.loc[3, "path"] = "maps/loop_a.nii.gz"
+    _save_maps(cohort_copy, m)
+    assert_refused(cohort_copy, capsys, ["maps.tsv row 5", "map file not found"])
+
+
+def test_map_with_a_non_finite_affine(cohort_copy, capsys):
+    path = cohort_copy.parent / _maps(cohort_copy).loc[7, "path"]
+    img = nib.load(str(path))
+    aff = img.affine.copy()
+    aff[1, 3] = np.nan
+    out = nib.Nifti1Image(np.asanyarray(img.dataobj), aff, img.header)
+    out.set_sform(aff, code=2)
+    out.set_qform(None, code=0)
+    nib.save(out, str(path))
+    assert np.isnan(nib.load(str(path)).affine[1, 3])   # nibabel reads the NaN back
+    assert_refused(cohort_copy, capsys, ["maps.tsv row 9", "affine", "NaN"])

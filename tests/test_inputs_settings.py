@@ -260,3 +260,16 @@ def test_within_contrast_naming_an_unknown_condition(cohort_copy, tmp_path, caps
     assert_refused(cohort_copy, capsys, ["contrast 'rare_minus_frequent' within",
                                          "condition 'oddball' does not occur in maps.tsv"],
                    out=tmp_path / "out")
+
+
+@pytest.mark.parametrize("between,fragments", [
+    ("scale(age) + group", ["contrast 'rare_minus_frequent'", "cannot be computed with the formula",
+                            "scale() or center() are not needed"]),
+    ("np.exp(age * 100) + group", ["[model] between", "gives NaN or infinite values in np.exp"]),
+    ("age / 0", ["[model] between", "cannot be built"]),
+])
+def test_formula_the_design_cannot_use(cohort_copy, tmp_path, capsys, between, fragments):
+    cohort_copy.write_text(cohort_copy.read_text().replace('between = "group + age"',
+                                                           f'between = "{between}"'))
+    text = assert_refused(cohort_copy, capsys, fragments, out=tmp_path / "out")
+    assert "\x1b[" not in text   # no terminal colour codes from the formula library
