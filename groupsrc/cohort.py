@@ -56,8 +56,8 @@ MISSING = ("", "n/a")
 LOOKALIKES = frozenset({"na", "n/a", "n.a.", "n.a", "nan", "-nan", "null", "none", "nil", ".",
                         "-", "--", "?", "missing", "#n/a", "#na", "inf", "-inf", "+inf",
                         "infinity", "-infinity", "+infinity"})
-_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
-_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+")
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?", re.ASCII)
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+", re.ASCII)
 
 
 def read_table(path: Path, problems: ProblemList, label: str) -> pd.DataFrame | None:

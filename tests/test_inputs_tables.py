@@ -240,3 +240,10 @@ def test_half_numeric_column_is_numeric(cohort_copy, capsys):
     _save(p, cohort_copy.parent / "participants.tsv")
     assert_refused(cohort_copy, capsys, [f"participants.tsv row {r} column 'age': 'unknown' is "
                                          "not a number" for r in (2, 4, 6, 8)])
+
+
+def test_non_ascii_digits_are_not_numbers(cohort_copy, capsys):
+    # Arabic-Indic three: a digit to Unicode, not a number in a table (common practice)
+    _set_cell(cohort_copy, "participants", 1, "age", "\u0663\u0663")
+    assert_refused(cohort_copy, capsys, ["participants.tsv row 3 column 'age'",
+                                         "is not a number"])
