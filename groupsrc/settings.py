@@ -20,6 +20,7 @@ else:  # pragma: no cover
 
 from .problems import InputError, Problem, ProblemList, closest
 
+
 class TextFileError(ValueError):
     """A text input that cannot be read as UTF-8; ``what`` and ``fix`` go into a Problem."""
 
@@ -123,6 +124,9 @@ SCHEMA = {
 
 #: Largest seed + 1: seeds are stored as signed 64-bit integers (TOML 1.0 integers).
 SEED_LIMIT = 2 ** 63
+#: Most rearrangements accepted: the engine holds the whole set in memory (one row of
+#: n indices per rearrangement), and p-values are resolved to 1 / resamples.
+MAX_RESAMPLES = 1_000_000
 
 
 def _finite(v) -> bool:
@@ -145,7 +149,8 @@ VALUE_RULES = {
                               "e.g. sampling_interval = 0.004 for 250 Hz"),
     },
     "inference": {
-        "resamples": (lambda v: v >= 1, "must be at least 1",
+        "resamples": (lambda v: 1 <= v <= MAX_RESAMPLES,
+                      f"must be from 1 to {MAX_RESAMPLES:,}",
                       "use e.g. 5000 (fewer gives coarse p-values)"),
         "seed": (lambda v: 0 <= v < SEED_LIMIT,
                  "must be a whole number from 0 to 2^63 - 1",

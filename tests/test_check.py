@@ -227,7 +227,7 @@ def test_settings_problems_collected_together(tiny_cohort, tmp_path, capsys):
     a.write_text(text)
     rc, out = run_check(a, capsys)
     assert rc == 1
-    for frag in ["did you mean 'cluster-mass'?", "resamples", "must be at least 1",
+    for frag in ["did you mean 'cluster-mass'?", "resamples", "must be from 1 to 1,000,000",
                  "contrast 'bad name!'", "says nothing to test"]:
         assert frag in out, out
 

@@ -76,7 +76,8 @@ def test_time_window_outside_the_data_is_refused(cohort_copy, tmp_path, capsys):
 
 
 @pytest.mark.parametrize("key,value", [("forming_p", "nan"), ("alpha", "1.0"),
-                                       ("resamples", "0"), ("tfce_steps", "3")])
+                                       ("resamples", "0"), ("resamples", "1000000001"),
+                                       ("tfce_steps", "3")])
 def test_other_inference_values_are_refused(cohort_copy, tmp_path, capsys, key, value):
     _inference(cohort_copy, key, value)
     assert_refused(cohort_copy, capsys, [f"[inference] {key}"], out=tmp_path / "out")
@@ -191,7 +192,7 @@ ENGINE_BAD = {
 }
 
 #: Boundary values settings accepts; the engine must accept them too.
-ENGINE_GOOD = {"seed": [0, 2 ** 63 - 1], "resamples": [1], "tfce_steps": [10],
+ENGINE_GOOD = {"seed": [0, 2 ** 63 - 1], "resamples": [1, 64], "tfce_steps": [10],
                "forming_p": [1e-12, 0.999], "alpha": [1e-12, 0.999],
                "tfce_e": [1e-3], "tfce_h": [1e-3]}
 
