@@ -1,11 +1,32 @@
 """Memory-mapped cache of the loaded data array.
 
-The key is a sha256 over the content hashes of every map file, the mask and
-the loading settings, so any change to any input gives a new entry.  File
-content hashes are memoised by (path, size, mtime) in a small index so a
-second run neither decodes NIfTI nor re-hashes unchanged files.  Entries are
-written to a temporary name and renamed, so an interrupted load leaves no
-half-written entry.
+The key of an entry is a sha256 over the content hashes of every map file
+and the mask (and a format version), so any change to any input gives a new
+entry.  Entries are written to a temporary name and renamed, so an
+interrupted load leaves no half-written entry.
+
+Content hashes (sha256 of the whole file) are memoised in
+``file_hashes.json`` so that a second run need not read every file again.
+The rule for reusing a memoised hash -- it is reused only when the file's
+*fingerprint* is unchanged:
+
+* resolved path, size, modification time (ns), inode number, and the
+  inode change time ``st_ctime`` (ns).  Writing to a file, truncating it or
+  setting its times marks ``st_ctime`` with the current time (POSIX
+  ``write``, ``ftruncate``, ``utimensat``), and no ordinary program can set
+  it back, so a file rewritten with the same size and a restored
+  modification time still gets a new fingerprint; a file replaced by
+  renaming gets a new inode;
+* the sha256 of the file's first and last 64 KiB, which hold the NIfTI
+  header and, for ``.nii.gz``, the gzip trailer with the CRC-32 of all the
+  uncompressed data (RFC 1952) -- a guard for file systems whose change
+  times are coarse or unreliable;
+* a hash taken while the file was changed less than ``RACY_SECONDS`` ago is
+  not memoised (the file could change again within one tick of the
+  file-system clock without changing its times).
+
+Anything else is hashed in full again.  The cache is an optimisation: when
+it cannot be written, loading still succeeds.
 """
 
 from __future__ import annotations
@@ -13,6 +34,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import time
 from pathlib import Path
 
 import numpy as np
@@ -39,25 +61,56 @@ def sha256_file(path: Path, chunk: int = 1 << 20) -> str:
     return h.hexdigest()
 
 
+#: bytes hashed at each end of a file for its fingerprint
+SAMPLE_BYTES = 1 << 16
+#: a file changed more recently than this (seconds) is hashed but not memoised
+RACY_SECONDS = 2.0
+
+
+def _stat_part(st) -> str:
+    return f"{st.st_size}|{st.st_mtime_ns}|{st.st_ctime_ns}|{st.st_ino}"
+
+
+def _sample_part(path: Path, size: int) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        h.update(fh.read(SAMPLE_BYTES))
+        if size > SAMPLE_BYTES:
+            fh.seek(max(SAMPLE_BYTES, size - SAMPLE_BYTES))
+            h.update(fh.read(SAMPLE_BYTES))
+    return h.hexdigest()[:32]
+
+
+def fingerprint(path: Path, st=None) -> str:
+    """Cheap identity of a file's current content (see the module docstring)."""
+    st = st if st is not None else os.stat(path)
+    return f"{_stat_part(st)}|{_sample_part(path, st.st_size)}"
+
+
 class HashIndex:
-    """Memo of file content hashes keyed by (absolute path, size, mtime_ns)."""
+    """Memo of file content hashes: resolved path -> (fingerprint, sha256)."""
 
     def __init__(self, cache_dir: Path):
         self.path = Path(cache_dir) / "file_hashes.json"
         try:
-            self.data = json.loads(self.path.read_text())
-        except (OSError, ValueError):
+            data = json.loads(self.path.read_text())
+            # entries of another layout (older versions) are dropped
+            self.data = {k: v for k, v in data.items() if isinstance(v, list)}
+        except (OSError, ValueError, AttributeError):
             self.data = {}
         self.dirty = False
 
     def sha256(self, path: Path) -> str:
         path = Path(path).resolve()
-        st = path.stat()
-        key = f"{path}|{st.st_size}|{st.st_mtime_ns}"
-        digest = self.data.get(key)
-        if digest is None:
-            digest = sha256_file(path)
-            self.data[key] = digest
+        st = os.stat(path)
+        fp = fingerprint(path, st)
+        entry = self.data.get(str(path))
+        if isinstance(entry, list) and len(entry) == 2 and entry[0] == fp:
+            return entry[1]
+        digest = sha256_file(path)
+        changed = max(st.st_mtime_ns, st.st_ctime_ns) / 1e9
+        if time.time() - changed >= RACY_SECONDS and fingerprint(path) == fp:
+            self.data[str(path)] = [fp, digest]
             self.dirty = True
         return digest
 

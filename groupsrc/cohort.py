@@ -10,6 +10,10 @@ Nothing downstream opens a file again.
 
 from __future__ import annotations
 
+import csv
+import io
+import math
+import re
 import sys
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -19,9 +23,10 @@ import pandas as pd
 
 from . import cache as _cache
 from .grid import Grid, TimeAxis
-from .maps_io import affine_difference, read_header, read_mask, read_sources
+from .maps_io import (DecodeError, affine_difference, read_data, read_header, read_mask,
+                      read_sources)
 from .problems import InputError, ProblemList, closest
-from .settings import Settings
+from .settings import Settings, TextFileError, read_text
 
 ID = "participant_id"
 
@@ -43,40 +48,176 @@ class Cohort:
         return int(self.Y.shape[0])
 
 
+#: The documented missing-value markers: an empty cell and ``n/a`` (BIDS).
+MISSING = ("", "n/a")
+#: Cells that other programs use for "missing" or "not a number".  They are not
+#: markers here: in a model column each is a problem, never a silent number,
+#: level or dropped row (compared ignoring case).
+LOOKALIKES = frozenset({"na", "n/a", "n.a.", "n.a", "nan", "-nan", "null", "none", "nil", ".",
+                        "-", "--", "?", "missing", "#n/a", "#na", "inf", "-inf", "+inf",
+                        "infinity", "-infinity", "+infinity"})
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?", re.ASCII)
+_DECIMAL_COMMA = re.compile(r"[+-]?\d+,\d+", re.ASCII)
+
+
 def read_table(path: Path, problems: ProblemList, label: str) -> pd.DataFrame | None:
-    """Read a TSV with every column as text (types are decided later)."""
+    """Read a TSV with every cell as text (types are decided later).
+
+    Conventions: UTF-8 (a byte-order mark is accepted, see
+    :func:`groupsrc.settings.read_text`), tab-separated, a header row, double
+    quotes as in CSV.  Cells and names are stripped of surrounding spaces.
+    Blank lines are skipped.  The index of the returned frame is the row
+    number a spreadsheet shows (the header is row 1), so problems can name it.
+    Returns None (with problems added) when the table cannot be used.
+    """
     if path is None:
         return None
-    if not path.exists():
+    try:
+        text = read_text(path)
+    except FileNotFoundError:
         problems.add(path, f"{label} table not found",
                      "check the path in the analysis file (relative to the analysis file)")
         return None
-    try:
-        df = pd.read_csv(path, sep="\t", dtype=str, keep_default_na=False)
-    except Exception as exc:
-        problems.add(path, f"cannot be read as a tab-separated table ({exc})",
-                     "save it as TSV with a header row")
+    except TextFileError as exc:
+        problems.add(path, exc.what, exc.fix)
         return None
-    df.columns = [c.strip() for c in df.columns]
-    if len(df.columns) == 1 and "," in df.columns[0]:
+    n_before = len(problems)
+    rows = _tsv_rows(text, path, problems)
+    if rows is None:
+        return None
+    if not rows:
+        problems.add(path, "is empty", "save the table with a header row and one row per entry")
+        return None
+    (_, header), body = rows[0], rows[1:]
+    if len(header) == 1 and "," in header[0]:
         problems.add(path, "looks comma-separated, not tab-separated", "save it as TSV")
         return None
-    return df
+    header = _header(header, body, path, problems)
+    data, index = [], []
+    for line, cells in body:
+        cells = _fit_row(cells, len(header), header, f"{path} row {line}", problems)
+        if cells is not None:
+            data.append(cells)
+            index.append(line)
+    if len(problems) > n_before:
+        return None
+    if not data:
+        # returned empty, so that the header's columns are still checked
+        problems.add(path, "has a header but no data rows",
+                     f"add one row per {'participant' if label == 'participants' else 'entry'}")
+    return pd.DataFrame(data, columns=header, index=pd.Index(index, name="row"), dtype=str)
 
 
-def _numeric_columns(df: pd.DataFrame) -> pd.DataFrame:
-    """Convert columns whose every non-empty value parses as a number."""
+def _tsv_rows(text, path, problems):
+    """[(row number, stripped cells)] without blank rows, or None on a quoting error."""
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter="\t", strict=True)
+    rows = []
+    try:
+        for cells in reader:
+            cells = [c.strip() for c in cells]
+            if any(cells):
+                rows.append((reader.line_num, cells))
+    except csv.Error as exc:
+        problems.add(f"{path} row {reader.line_num}", f"cannot be read ({exc})",
+                     "check the double quotes on this row (a quoted cell must end with a quote)")
+        return None
+    return rows
+
+
+def _header(header, body, path, problems):
+    """Column names; unnamed trailing columns that are empty everywhere are dropped."""
+    while header and not header[-1] and all(
+            len(cells) < len(header) or not cells[len(header) - 1] for _, cells in body):
+        header = header[:-1]
+    for j, name in enumerate(header):
+        if not name:
+            problems.add(f"{path} row 1 column {j + 1}", "column has no name",
+                         "give every column a name in the header row")
+    for name in sorted({n for n in header if n and header.count(n) > 1}):
+        cols = ", ".join(str(j + 1) for j, n in enumerate(header) if n == name)
+        problems.add(f"{path} row 1", f"column name '{name}' appears more than once "
+                     f"(columns {cols})", "give each column its own name")
+    return header
+
+
+def _fit_row(cells, n, header, where, problems):
+    """The row's cells padded to the header; extra empty cells are dropped."""
+    if len(cells) > n and not any(cells[n:]):
+        cells = cells[:n]
+    if len(cells) != n:
+        problems.add(where, f"has {len(cells)} cells but the header has {n} "
+                     f"({', '.join(header)})",
+                     "give every row one tab-separated cell per column "
+                     "(n/a or an empty cell for a missing value)")
+        return None
+    return cells
+
+
+def _rows(index) -> str:
+    return ", ".join(str(int(i)) for i in index)
+
+
+def _cell_kind(value: str) -> str:
+    if value in MISSING:
+        return "missing"
+    if _NUMBER.fullmatch(value):
+        return "number" if math.isfinite(float(value)) else "text"
+    if _DECIMAL_COMMA.fullmatch(value):
+        return "comma"
+    if value.casefold() in LOOKALIKES:
+        return "lookalike"
+    return "text"
+
+
+def _typed_columns(df: pd.DataFrame, checked, path, problems) -> pd.DataFrame:
+    """Numbers for mostly numeric columns, text otherwise; problems for ``checked`` columns.
+
+    A column is numeric when its cells that look like numbers (decimal
+    point or decimal comma) are at least as many as its other text cells;
+    the documented markers and the look-alikes in ``LOOKALIKES`` count for
+    neither side.  In a checked (model) column every cell that is not a
+    number of a numeric column, every look-alike marker and every missing
+    value is a problem naming the row, column and value.  Missing cells
+    become NaN.
+    """
     out = df.copy()
     for col in out.columns:
         if col == ID:
             continue
-        vals = out[col].replace({"": np.nan, "n/a": np.nan, "NA": np.nan})
-        num = pd.to_numeric(vals, errors="coerce")
-        if num.notna().sum() == vals.notna().sum() and vals.notna().any():
-            out[col] = num
+        kinds = out[col].map(_cell_kind)
+        n_num = int(kinds.isin(["number", "comma"]).sum())
+        numeric = n_num > 0 and n_num >= int((kinds == "text").sum())
+        if col in checked:
+            _cell_problems(out[col], kinds, numeric, col, path, problems)
+        if numeric:
+            out[col] = pd.to_numeric(out[col].where(kinds == "number"), errors="coerce")
         else:
-            out[col] = vals
+            # look-alikes are reported (model columns); they never count as a level there
+            gone = ["missing", "lookalike"] if col in checked else ["missing"]
+            out[col] = out[col].where(~kinds.isin(gone))
     return out
+
+
+def _cell_problems(values, kinds, numeric, col, path, problems):
+    for row, kind in kinds.items():
+        v = values[row]
+        where = f"{path} row {row} column '{col}'"
+        if kind == "missing":
+            problems.add(where, "missing value",
+                         "fill it in, or remove the participant from both tables "
+                         "(a model column cannot have missing values)")
+        elif kind == "lookalike":
+            problems.add(where, (f"'{v}' is not a number" if numeric else
+                                 f"'{v}' looks like a missing-value marker")
+                         + "; the only missing-value markers are n/a and an empty cell",
+                         "write the real value (a model column cannot have missing values; "
+                         "otherwise remove the participant from both tables)")
+        elif numeric and kind == "comma":
+            problems.add(where, f"'{v}' uses a decimal comma",
+                         f"write {v.replace(',', '.')} (decimal point)")
+        elif numeric and kind == "text":
+            problems.add(where, f"'{v}' is not a number, but the column is numeric",
+                         "write a number with a decimal point (e.g. 23.5)")
 
 
 def model_columns(settings: Settings) -> list:
@@ -98,99 +239,119 @@ def model_columns(settings: Settings) -> list:
 
 
 def check_tables(settings: Settings, problems: ProblemList):
-    """Read and cross-check both tables. Returns (participants, maps) or Nones."""
+    """Read and cross-check both tables. Returns (participants, maps, ppath, mpath).
+
+    The tables come back with spreadsheet row numbers as their index; a
+    table that cannot be used comes back as None (its problems added).
+    """
     ppath = settings.resolve(settings.cohort.get("participants"))
     mpath = settings.resolve(settings.cohort.get("maps"))
     parts = read_table(ppath, problems, "participants") if ppath else None
     maps = read_table(mpath, problems, "maps") if mpath else None
-    within = settings.model.get("within")
-
     if parts is not None:
-        if ID not in parts.columns:
-            problems.add(ppath, f"no '{ID}' column",
-                         f"name the participant column '{ID}' (BIDS); "
-                         + (closest(ID, parts.columns) or f"columns are: {', '.join(parts.columns)}"))
-            parts = None
-    if parts is not None:
-        dup = parts[ID][parts[ID].duplicated(keep=False)]
-        for pid in sorted(set(dup)):
-            rows = [str(i + 2) for i in np.nonzero((parts[ID] == pid).to_numpy())[0]]
-            problems.add(f"{ppath} rows {', '.join(rows)}", f"participant '{pid}' listed more than once",
-                         "keep one row per participant")
-        empty = parts.index[parts[ID].str.strip() == ""]
-        for i in empty:
-            problems.add(f"{ppath} row {i + 2}", f"empty {ID}", "fill it in or delete the row")
-        for col in model_columns(settings):
-            if col not in parts.columns:
-                problems.add(f"{ppath} column '{col}'",
-                             "named by the model but missing from the participants table",
-                             closest(col, parts.columns) or f"add the column; present: {', '.join(parts.columns)}")
-            else:
-                miss = parts.index[parts[col].isin(["", "n/a", "NA"])]
-                for i in miss:
-                    problems.add(f"{ppath} row {i + 2} column '{col}'",
-                                 f"missing value for participant '{parts.at[i, ID]}'",
-                                 "fill it in or remove the participant from both tables")
-
+        parts = _check_participants(settings, parts, ppath, problems)
     if maps is not None:
-        need = [ID, "path"] + ([within] if within else [])
-        for col in need:
-            if col not in maps.columns:
-                problems.add(f"{mpath} column '{col}'", "required column missing",
-                             closest(col, maps.columns) or f"present: {', '.join(maps.columns)}")
-        if all(c in maps.columns for c in need):
-            key = [ID] + ([within] if within else []) + (["session"] if "session" in maps.columns else [])
-            dup = maps.duplicated(subset=key, keep=False)
-            if dup.any():
-                for _, grp in maps[dup].groupby(key, sort=False):
-                    rows = ", ".join(str(i + 2) for i in grp.index)
-                    what = ", ".join(f"{k}={grp.iloc[0][k]!r}" for k in key)
-                    problems.add(f"{mpath} rows {rows}", f"duplicate map for ({what})",
-                                 "keep one row per participant, condition and session"
-                                 + ("" if "session" in maps.columns else
-                                    ", or add a 'session' column"))
-        else:
-            maps = None
-
+        maps = _check_maps(settings, maps, mpath, problems)
     if parts is not None and maps is not None:
-        in_p, in_m = set(parts[ID]), set(maps[ID])
-        for pid in sorted(in_m - in_p):
-            rows = ", ".join(str(i + 2) for i in np.nonzero((maps[ID] == pid).to_numpy())[0])
-            problems.add(f"{mpath} rows {rows}", f"participant '{pid}' is not in {ppath.name}",
-                         f"add a row for '{pid}' to {ppath.name} or remove these maps")
-        for pid in sorted(in_p - in_m):
-            row = int(np.nonzero((parts[ID] == pid).to_numpy())[0][0]) + 2
-            problems.add(f"{ppath} row {row}", f"participant '{pid}' has no maps in {mpath.name}",
-                         f"add their maps to {mpath.name} or remove the row")
-        if within and within in maps.columns:
-            conds = set(maps[within])
-            for c in settings.contrasts:
-                for level in (c.within or {}):
-                    if level not in conds:
-                        problems.add(f"{settings.path} contrast '{c.name}' within",
-                                     f"condition '{level}' does not occur in {mpath.name} column '{within}'",
-                                     closest(level, conds) or f"conditions are: {', '.join(sorted(conds))}")
-            # every participant should have every condition
-            levels = sorted(conds)
-            have = maps.groupby(ID)[within].apply(set)
-            for pid, got in have.items():
-                lack = [lv for lv in levels if lv not in got]
-                if lack:
-                    problems.add(f"{mpath} participant '{pid}'",
-                                 f"no map for condition(s) {', '.join(lack)}",
-                                 "add the maps, or remove the participant (the summary-statistic "
-                                 "approach needs every condition per participant)")
+        _cross_check(settings, parts, maps, ppath, mpath, problems)
     if parts is not None:
-        parts = _numeric_columns(parts)
         _check_levels(settings, parts, ppath, problems)
     return parts, maps, ppath, mpath
 
 
+def _check_participants(settings, parts, ppath, problems):
+    if ID not in parts.columns:
+        problems.add(ppath, f"no '{ID}' column",
+                     f"name the participant column '{ID}' (BIDS); "
+                     + (closest(ID, parts.columns) or f"columns are: {', '.join(parts.columns)}"))
+        return None
+    ids = parts[ID]
+    for row in parts.index[ids.isin(MISSING)]:
+        problems.add(f"{ppath} row {row}", f"empty {ID}", "fill it in or delete the row")
+    named = ids[~ids.isin(MISSING)]
+    for pid in sorted(set(named[named.duplicated()])):
+        problems.add(f"{ppath} rows {_rows(parts.index[ids == pid])}",
+                     f"participant '{pid}' listed more than once", "keep one row per participant")
+    cols = model_columns(settings)
+    for col in cols:
+        if col not in parts.columns:
+            problems.add(f"{ppath} column '{col}'",
+                         "named by the model but missing from the participants table",
+                         closest(col, parts.columns) or f"add the column; present: {', '.join(parts.columns)}")
+    if parts.empty:
+        return None
+    return _typed_columns(parts, [c for c in cols if c in parts.columns], ppath, problems)
+
+
+def _check_maps(settings, maps, mpath, problems):
+    within = settings.model.get("within")
+    need = [ID, "path"] + ([within] if within else [])
+    for col in need:
+        if col not in maps.columns:
+            problems.add(f"{mpath} column '{col}'", "required column missing",
+                         closest(col, maps.columns) or f"present: {', '.join(maps.columns)}")
+    if maps.empty or not all(c in maps.columns for c in need):
+        return None
+    key = [ID] + ([within] if within else []) + (["session"] if "session" in maps.columns else [])
+    for col in key:
+        for row in maps.index[maps[col].isin(MISSING)]:
+            problems.add(f"{mpath} row {row} column '{col}'", "missing value",
+                         "fill it in or delete the row")
+    complete = ~maps[key].isin(MISSING).any(axis=1)
+    dup = maps.duplicated(subset=key, keep=False) & complete
+    if dup.any():
+        for _, grp in maps[dup].groupby(key, sort=False):
+            what = ", ".join(f"{k}={grp.iloc[0][k]!r}" for k in key)
+            problems.add(f"{mpath} rows {_rows(grp.index)}", f"duplicate map for ({what})",
+                         "keep one row per participant, condition and session"
+                         + ("" if "session" in maps.columns else ", or add a 'session' column"))
+    return maps
+
+
+def _cross_check(settings, parts, maps, ppath, mpath, problems):
+    within = settings.model.get("within")
+    in_p = set(parts[ID]) - set(MISSING)
+    in_m = set(maps[ID]) - set(MISSING)
+    for pid in sorted(in_m - in_p):
+        problems.add(f"{mpath} rows {_rows(maps.index[maps[ID] == pid])}",
+                     f"participant '{pid}' is not in {ppath.name}",
+                     f"add a row for '{pid}' to {ppath.name} or remove these maps")
+    for pid in sorted(in_p - in_m):
+        problems.add(f"{ppath} row {_rows(parts.index[parts[ID] == pid][:1])}",
+                     f"participant '{pid}' has no maps in {mpath.name}",
+                     f"add their maps to {mpath.name} or remove the row")
+    if not within:
+        return
+    conds = set(maps[within]) - set(MISSING)
+    for c in settings.contrasts:
+        for level in (c.within or {}):
+            if level not in conds:
+                problems.add(f"{settings.path} contrast '{c.name}' within",
+                             f"condition '{level}' does not occur in {mpath.name} column '{within}'",
+                             closest(level, conds) or f"conditions are: {', '.join(sorted(conds))}")
+    # every participant should have every condition
+    levels = sorted(conds)
+    have = maps[maps[ID].isin(in_m)].groupby(ID)[within].apply(set)
+    for pid, got in have.items():
+        lack = [lv for lv in levels if lv not in got]
+        if lack:
+            problems.add(f"{mpath} participant '{pid}'",
+                         f"no map for condition(s) {', '.join(lack)}",
+                         "add the maps, or remove the participant (the summary-statistic "
+                         "approach needs every condition per participant)")
+
+
 def _check_levels(settings, parts, ppath, problems):
-    from .design import factor_columns
+    from .design import factor_columns, formula_variables
     present = [c for c in model_columns(settings) if c in parts.columns]
+    between = formula_variables(settings.model.get("between") or "1")
     for col in factor_columns(settings, parts, present):
         counts = parts[col].value_counts()
+        if col in between and len(counts) == 1:
+            problems.add(f"{ppath} column '{col}'",
+                         f"factor '{col}' has a single level ('{counts.index[0]}') for every "
+                         "participant, so the model cannot estimate it (it would be dropped)",
+                         f"remove {col} from [model] between, or check the table")
         for level, n in counts.items():
             if n < 2:
                 problems.add(f"{ppath} column '{col}'",
@@ -200,7 +361,7 @@ def _check_levels(settings, parts, ppath, problems):
         if c.compare:
             for fac, levels in c.compare.items():
                 if fac in parts.columns:
-                    have = set(parts[fac].astype(str))
+                    have = set(parts[fac].dropna().astype(str))
                     for lv in levels:
                         if str(lv) not in have:
                             problems.add(f"{settings.path} contrast '{c.name}' compare.{fac}",
@@ -218,13 +379,12 @@ def check_headers(settings, maps, mpath, problems):
     ref = None
     shape_bad, affine_bad, time_bad = [], [], []
     rows = []
-    for i, rel in enumerate(maps["path"]):
-        row = f"{mpath} row {i + 2}"
-        if not rel.strip():
+    for i, (line, rel) in enumerate(maps["path"].items()):
+        row = f"{mpath} row {line}"
+        if rel in MISSING:
             problems.add(row, "empty path", "give the map file, relative to the maps table")
             continue
-        p = Path(rel)
-        p = p if p.is_absolute() else (mpath.parent / p)
+        p = map_path(mpath, rel)
         try:
             h = read_header(p)
         except FileNotFoundError:
@@ -237,6 +397,14 @@ def check_headers(settings, maps, mpath, problems):
         if len(h.shape) != 4:
             problems.add(f"{row} ({p})", f"is {len(h.shape)}D with shape {h.shape}; a 4D map "
                          "(x, y, z, time) is expected", "save every map with time as the 4th axis")
+            continue
+        if min(h.shape) < 1:
+            problems.add(f"{row} ({p})", f"has shape {h.shape} with an empty axis",
+                         "write the map again with its data")
+            continue
+        if not np.all(np.isfinite(h.affine)):
+            problems.add(f"{row} ({p})", "the voxel-to-world affine (sform/qform) holds NaN "
+                         "or infinite values", "write the map with a valid template affine")
             continue
         headers[i] = h
         rows.append((i, row, p, h))
@@ -272,6 +440,62 @@ def check_headers(settings, maps, mpath, problems):
     return headers, ref
 
 
+def map_path(mpath: Path, rel: str) -> Path:
+    """A maps-table path: relative to the folder of the maps table."""
+    p = Path(rel).expanduser()
+    return p if p.is_absolute() else (mpath.parent / p)
+
+
+def _real(path: Path) -> Path:
+    """The path with '..' and symbolic links resolved (as given when that fails, e.g. a loop)."""
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError):
+        return path.absolute()
+
+
+def _describe(maps, line, within):
+    """'participant 'sub-01' condition 'rare'' for one maps row."""
+    text = f"participant '{maps.at[line, ID]}'"
+    for col in ([within] if within else []) + (["session"] if "session" in maps.columns else []):
+        text += f" {col} '{maps.at[line, col]}'"
+    return text
+
+
+def check_same_files(settings, maps, mpath, digests, problems):
+    """Two rows that name one file (same resolved path, or same content) are a problem.
+
+    Paths are compared after resolving '..' and symbolic links; contents by
+    the sha256 in ``digests`` (maps row -> hex digest, for readable files).
+    Used twice, the same map gives a zero within-participant contrast or a
+    copied participant -- a wrong answer, never an error, so it is refused.
+    """
+    within = settings.model.get("within")
+    resolved = {}
+    for line, rel in maps["path"].items():
+        if rel not in MISSING:
+            resolved.setdefault(_real(map_path(mpath, rel)), []).append(line)
+    for real, lines in resolved.items():
+        if len(lines) > 1:
+            problems.add(f"{mpath} rows {_rows(lines)}",
+                         f"the same file {real} is used for "
+                         + "; ".join(_describe(maps, ln, within) for ln in lines),
+                         "give each map its own file (the same file twice gives a zero "
+                         "contrast or a copied participant)")
+    by_digest = {}
+    for line, digest in digests.items():
+        by_digest.setdefault(digest, []).append(line)
+    for digest, lines in by_digest.items():
+        files = {_real(map_path(mpath, maps.at[ln, "path"])) for ln in lines}
+        if len(files) > 1:
+            problems.add(f"{mpath} rows {_rows(lines)}",
+                         "files " + ", ".join(maps.at[ln, "path"] for ln in lines)
+                         + f" have identical content (sha256 {digest[:12]}...), used for "
+                         + "; ".join(_describe(maps, ln, within) for ln in lines),
+                         "give each map its own data; a copied file gives a zero contrast "
+                         "or a copied participant")
+
+
 def _time_of(settings, header):
     t = header.time_axis
     t0 = settings.cohort.get("time_start")
@@ -289,51 +513,40 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
     if maps is not None:
         headers, ref = check_headers(settings, maps, mpath, problems)
     if ref is None:
-        if maps is not None and not problems:
-            problems.add(mpath, "no readable map", "")
+        if maps is not None:
+            check_same_files(settings, maps, mpath, {}, problems)
+            if not problems:
+                problems.add(mpath, "no readable map", "")
         raise InputError(problems)
     time_axis = _time_of(settings, ref)
-    if time_axis.dt <= 0:
-        problems.add(ref.path, "sampling interval (pixdim[4]) is 0 or negative",
-                     "set it in the file or give sampling_interval under [cohort]")
-
+    if not (math.isfinite(time_axis.dt) and time_axis.dt > 0):
+        problems.add(ref.path, f"sampling interval (pixdim[4]) is {time_axis.dt}, not a "
+                     "positive number", "set it in the file or give sampling_interval under [cohort]")
+    if not math.isfinite(time_axis.t0):
+        problems.add(ref.path, f"first sample time (toffset) is {time_axis.t0}",
+                     "set it in the file or give time_start under [cohort]")
     mask_path = settings.resolve(settings.cohort.get("mask"))
-    mask = None
-    if mask_path is not None:
-        try:
-            mask, maff = read_mask(mask_path)
-            if mask.shape != ref.shape[:3]:
-                problems.add(mask_path, f"mask shape {mask.shape} differs from the maps' "
-                             f"{ref.shape[:3]}", "use a mask on the maps' template grid")
-                mask = None
-            elif not np.allclose(maff, ref.affine, atol=1e-3):
-                problems.add(mask_path, f"mask affine differs from the maps: "
-                             f"{affine_difference(maff, ref.affine)}",
-                             "use a mask on the maps' template grid")
-                mask = None
-            elif not mask.any():
-                problems.add(mask_path, "mask is empty", "mark the sources with nonzero values")
-                mask = None
-        except FileNotFoundError:
-            problems.add(mask_path, "mask file not found", "check the path, or leave mask out")
-        except ValueError as exc:
-            problems.add(mask_path, str(exc), "give a 3D NIfTI mask")
+    mask = _read_mask(mask_path, ref, problems)
     atlas = _read_atlas(settings, ref, problems)
-    if problems:
-        # still count NaN/Inf in the maps that match the template, so that every
-        # problem is listed in one pass
-        good = [i for i, h in enumerate(headers) if h is not None and h.shape == ref.shape
-                and np.allclose(h.affine, ref.affine, atol=1e-3)]
-        _, _, bad = _decode([headers[i] for i in good], ref, mask, progress)
-        for j, n in bad.items():
-            i = good[j]
-            _nonfinite_problem(problems, mpath, i, headers[i].path, n)
-        raise InputError(problems)
 
     cache_dir = settings.resolve(settings.cohort.get("cache")) or _cache.default_cache_dir()
     index = _cache.HashIndex(cache_dir)
+    digests = {maps.index[i]: index.sha256(h.path) for i, h in enumerate(headers) if h is not None}
+    check_same_files(settings, maps, mpath, digests, problems)
+    if problems:
+        # still decode the maps that match the template, so that NaN/Inf values and
+        # damaged files are listed in the same pass
+        good = [i for i, h in enumerate(headers) if h is not None and h.shape == ref.shape
+                and np.allclose(h.affine, ref.affine, atol=1e-3)]
+        _, _, bad, broken = _decode([headers[i] for i in good], ref, mask, progress)
+        _decode_problems(problems, maps, mpath, [headers[i] for i in good],
+                         {good[j]: v for j, v in bad.items()},
+                         {good[j]: v for j, v in broken.items()})
+        index.save()
+        raise InputError(problems)
+
     map_paths = [h.path for h in headers]
-    inputs = {str(p): index.sha256(p) for p in map_paths}
+    inputs = {str(h.path): digests[maps.index[i]] for i, h in enumerate(headers)}
     if mask_path is not None:
         inputs[str(mask_path)] = index.sha256(mask_path)
     for p in (ppath, mpath, settings.path):
@@ -348,18 +561,16 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         grid_mask = np.zeros(ref.shape[:3], bool)
         grid_mask.reshape(-1)[np.asarray(meta["flat_index"], dtype=np.int64)] = True
         grid = Grid.from_mask(grid_mask, ref.affine)
-        bad = meta.get("nonfinite", {})
+        bad, broken = {int(k): v for k, v in meta.get("nonfinite", {}).items()}, {}
         cache_hit = True
     else:
-        Y, grid, bad = _decode(headers, ref, mask, progress)
+        Y, grid, bad, broken = _decode(headers, ref, mask, progress)
         cache_hit = False
-        if not bad:
+        if not bad and not broken:
             Y = _cache.store(cache_dir, key, Y,
                              {"flat_index": grid.flat_index.tolist(), "nonfinite": {}})
-    for i, n in sorted(bad.items(), key=lambda kv: int(kv[0])):
-        i = int(i)
-        _nonfinite_problem(problems, mpath, i, map_paths[i], n)
-    if grid.n_sources == 0:
+    _decode_problems(problems, maps, mpath, headers, bad, broken)
+    if grid.n_sources == 0 and not broken:
         problems.add(mpath, "no source is finite in every map", "give a mask")
     if problems:
         raise InputError(problems)
@@ -367,12 +578,52 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         for key in ("atlas", "atlas_labels"):
             p = settings.resolve(settings.cohort[key])
             inputs[str(p)] = index.sha256(p)
-    return Cohort(participants=parts.set_index(ID, drop=False), maps=maps, grid=grid,
-                  time_axis=time_axis, Y=Y, inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+    return Cohort(participants=parts.set_index(ID, drop=False),
+                  maps=maps.reset_index(drop=True), grid=grid, time_axis=time_axis, Y=Y,
+                  inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+
+
+def _read_mask(mask_path, ref, problems):
+    """The optional mask as a boolean volume on the template grid, or None."""
+    if mask_path is None:
+        return None
+    try:
+        mask, maff = read_mask(mask_path)
+    except FileNotFoundError:
+        problems.add(mask_path, "mask file not found", "check the path, or leave mask out")
+        return None
+    except DecodeError as exc:
+        problems.add(mask_path, str(exc), exc.fix)
+        return None
+    except ValueError as exc:
+        problems.add(mask_path, str(exc), "give a 3D NIfTI mask")
+        return None
+    if mask.shape != ref.shape[:3]:
+        problems.add(mask_path, f"mask shape {mask.shape} differs from the maps' "
+                     f"{ref.shape[:3]}", "use a mask on the maps' template grid")
+    elif not np.allclose(maff, ref.affine, atol=1e-3):
+        problems.add(mask_path, f"mask affine differs from the maps: "
+                     f"{affine_difference(maff, ref.affine)}",
+                     "use a mask on the maps' template grid")
+    elif not mask.any():
+        problems.add(mask_path, "mask is empty", "mark the sources with nonzero values")
+    else:
+        return mask
+    return None
+
+
+def _decode_problems(problems, maps, mpath, headers, bad, broken):
+    """Problems for maps with NaN/Inf values (``bad``) or damaged data (``broken``)."""
+    for i in sorted(set(bad) | set(broken)):
+        line, path = maps.index[i], headers[i].path
+        if i in broken:
+            problems.add(f"{mpath} row {line} ({path})", broken[i], DecodeError.fix)
+        else:
+            _nonfinite_problem(problems, mpath, line, path, bad[i])
 
 
 def _nonfinite_problem(problems, mpath, row, path, n):
-    problems.add(f"{mpath} row {row + 2} ({path})", f"{n} NaN/Inf value(s) inside the mask",
+    problems.add(f"{mpath} row {row} ({path})", f"{n} NaN/Inf value(s) inside the mask",
                  "fix the inverse solution for this map, or give a mask that excludes "
                  "those sources")
 
@@ -387,7 +638,7 @@ def _read_atlas(settings, ref, problems):
     labels = None
     try:
         h = read_header(ipath)
-        data = np.asanyarray(h.image.dataobj)
+        data = read_data(h)
         if data.ndim == 4 and data.shape[3] == 1:
             data = data[..., 0]
         if data.shape != ref.shape[:3]:
@@ -403,6 +654,8 @@ def _read_atlas(settings, ref, problems):
             labels = np.round(data).astype(np.int32)
     except FileNotFoundError:
         problems.add(ipath, "atlas file not found", "check the path")
+    except DecodeError as exc:
+        problems.add(ipath, str(exc), exc.fix)
     except ValueError as exc:
         problems.add(ipath, str(exc), "give a 3D NIfTI label image")
     table = read_table(lpath, problems, "atlas labels")
@@ -413,11 +666,13 @@ def _read_atlas(settings, ref, problems):
             problems.add(lpath, f"missing column(s) {', '.join(miss)}",
                          "the lookup table needs columns 'index' and 'name'")
         else:
-            idx = pd.to_numeric(table["index"], errors="coerce")
-            for i in np.nonzero(idx.isna().to_numpy())[0]:
-                problems.add(f"{lpath} row {i + 2}", f"index {table['index'][i]!r} is not an integer",
+            integer = table["index"].str.fullmatch(r"[+-]?\d+")
+            for row in table.index[~integer]:
+                problems.add(f"{lpath} row {row}",
+                             f"index {table.at[row, 'index']!r} is not an integer",
                              "give the label's integer value")
-            names = {int(k): str(v) for k, v in zip(idx, table["name"]) if not pd.isna(k)}
+            names = {int(k): str(v) for k, v in zip(table["index"][integer],
+                                                     table["name"][integer])}
     if labels is not None and names is not None:
         unknown = sorted(set(np.unique(labels).tolist()) - set(names) - {0})
         if unknown:
@@ -429,15 +684,22 @@ def _read_atlas(settings, ref, problems):
 
 
 def _decode(headers, ref, mask, progress):
+    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}."""
     from tqdm.auto import tqdm
     if progress is None:
         progress = sys.stderr.isatty()
     n_t = ref.shape[3]
+    broken = {}
     if mask is None:
         # default mask: sources finite (and not constantly zero) in every map
         mask = np.ones(ref.shape[:3], bool)
-        for h in tqdm(headers, desc="scanning maps", unit="map", disable=not progress):
-            data = np.asanyarray(h.image.dataobj, dtype=np.float32)
+        for i, h in enumerate(tqdm(headers, desc="scanning maps", unit="map",
+                                   disable=not progress)):
+            try:
+                data = read_data(h, np.float32)
+            except DecodeError as exc:
+                broken[i] = str(exc)
+                continue
             mask &= np.isfinite(data).all(axis=3)
             mask &= ~(data == 0).all(axis=3)
     grid = Grid.from_mask(mask, ref.affine)
@@ -445,11 +707,17 @@ def _decode(headers, ref, mask, progress):
     flat = grid.flat_index
     bad = {}
     for i, h in enumerate(tqdm(headers, desc="loading maps", unit="map", disable=not progress)):
-        read_sources(h, flat, Y[i])
+        if i in broken:
+            continue
+        try:
+            read_sources(h, flat, Y[i])
+        except DecodeError as exc:
+            broken[i] = str(exc)
+            continue
         nonfinite = int((~np.isfinite(Y[i])).sum())
         if nonfinite:
             bad[i] = nonfinite
-    return Y, grid, bad
+    return Y, grid, bad, broken
 
 
 def summary(cohort: Cohort, settings: Settings) -> dict:

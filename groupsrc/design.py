@@ -39,6 +39,7 @@ import numpy as np
 import pandas as pd
 from formulaic import Formula, model_matrix
 
+from .glm import check_design
 from .problems import ProblemList, closest
 
 ID = "participant_id"
@@ -83,17 +84,23 @@ def build_design(settings, parts: pd.DataFrame, problems: ProblemList, where) ->
     rhs = settings.model.get("between") or "1"
     variables = sorted(formula_variables(rhs))
     missing = [v for v in variables if v not in parts.columns]
-    if missing:
-        return None  # reported by the table checks
+    if missing or len(parts) == 0 or parts[variables].isna().any().any():
+        return None  # reported by the table checks (missing columns, rows or values)
     try:
         Xm = model_matrix(rhs, parts, na_action="raise")
-    except Exception as exc:
+        X = pd.DataFrame(np.asarray(Xm, dtype=float), columns=list(Xm.columns),
+                         index=parts[ID].tolist())
+    except Exception as exc:  # formulaic reports user formula errors with several types
         problems.add(f"{settings.path} [model] between",
-                     f"formula '{rhs}' cannot be built: {exc}",
+                     f"formula '{rhs}' cannot be built: {_plain(exc)}",
                      "write a Wilkinson right-hand side such as \"group + age\"")
         return None
-    X = pd.DataFrame(np.asarray(Xm, dtype=float), columns=list(Xm.columns),
-                     index=parts[ID].tolist())
+    nonfinite = [c for c in X.columns if not np.all(np.isfinite(X[c].to_numpy()))]
+    if nonfinite:
+        problems.add(f"{settings.path} [model] between",
+                     f"formula '{rhs}' gives NaN or infinite values in {', '.join(nonfinite)}",
+                     "check the transformation (e.g. a log of a non-positive value)")
+        return None
     factors = {}
     for col in factor_columns(settings, parts, variables):
         if col in variables:
@@ -144,7 +151,25 @@ class ContrastPlan:
     scheme: str              # "sign-flip" or "permutation"
 
 
+def _plain(exc) -> str:
+    """An exception message without terminal colour codes or position marks."""
+    text = re.sub(r"\x1b\[[0-9;]*m|[\u29da\u29db]", "", str(exc))
+    return re.sub(r"\s+", " ", text).strip()
+
+
 def plan_contrast(spec, design: Design, problems: ProblemList, where) -> ContrastPlan | None:
+    """The contrast's weights and resampling scheme, or None with problems added."""
+    try:
+        return _plan_contrast(spec, design, problems, where)
+    except Exception as exc:  # formulaic evaluating the user's formula on the reference grid
+        problems.add(where, f"cannot be computed with the formula in [model] between "
+                     f"({_plain(exc)})",
+                     "use plain columns, C(...) and interactions in between; scale() or "
+                     "center() are not needed, contrasts are taken at the covariates' means")
+        return None
+
+
+def _plan_contrast(spec, design: Design, problems: ProblemList, where) -> ContrastPlan | None:
     cols = list(design.X.columns)
     within = spec.within
     if spec.weights:
@@ -200,6 +225,14 @@ def plan_contrast(spec, design: Design, problems: ProblemList, where) -> Contras
         return None
     if not spec.weights and not within and scheme == "sign-flip":
         problems.add(where, "tests the grand mean of averaged maps", "give within weights")
+        return None
+    try:
+        # the engine's own check (estimable, residual df); its refusal becomes a problem here
+        check_design(design.X.to_numpy(), w)
+    except ValueError as exc:
+        problems.add(where, f"cannot be tested on this design: {exc}",
+                     "simplify [model] between or the contrast (see the design columns "
+                     "that groupsrc check prints)")
         return None
     return ContrastPlan(spec.name, spec.description or desc, within, w, kind, scheme)
 

@@ -20,6 +20,59 @@ else:  # pragma: no cover
 
 from .problems import InputError, Problem, ProblemList, closest
 
+
+class TextFileError(ValueError):
+    """A text input that cannot be read as UTF-8; ``what`` and ``fix`` go into a Problem."""
+
+    def __init__(self, what, fix):
+        super().__init__(what)
+        self.what, self.fix = what, fix
+
+
+_SAVE_UTF8 = ("save it as UTF-8 (in a spreadsheet or editor: 'Save as', text, "
+              "character set / encoding UTF-8)")
+_WIDE_BOMS = {b"\xff\xfe\x00\x00": "UTF-32", b"\x00\x00\xfe\xff": "UTF-32",
+              b"\xff\xfe": "UTF-16", b"\xfe\xff": "UTF-16"}
+
+
+def read_text(path) -> str:
+    """Read a text input (analysis file or table) as UTF-8.
+
+    Convention: text inputs are UTF-8 (TOML 1.0 requires it; BIDS requires
+    it for TSV files).  A UTF-8 byte-order mark, which some spreadsheets
+    and editors write, is accepted and dropped.  UTF-16/UTF-32 (with a
+    byte-order mark, or recognised by NUL bytes) and anything else that is
+    not valid UTF-8 (e.g. Latin-1 / Windows-1252) raise
+    :class:`TextFileError` naming the line and byte.  Raises
+    FileNotFoundError when the file does not exist.
+    """
+    path = Path(path)
+    if path.is_dir():
+        raise TextFileError("is a folder, not a file", "give the path of the file itself")
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise
+    except OSError as exc:
+        raise TextFileError(f"cannot be read ({exc.strerror or exc})",
+                            "check that the file is readable") from None
+    if raw.startswith(b"\xef\xbb\xbf"):
+        raw = raw[3:]
+    for bom, name in _WIDE_BOMS.items():
+        if raw.startswith(bom):
+            raise TextFileError(f"is saved as {name}, not UTF-8", _SAVE_UTF8)
+    if b"\x00" in raw:
+        line = raw[:raw.index(b"\x00")].count(b"\n") + 1
+        raise TextFileError(f"line {line} holds NUL bytes: the file is UTF-16 without a "
+                            "byte-order mark, or not a text file", _SAVE_UTF8)
+    try:
+        return raw.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        line = raw[:exc.start].count(b"\n") + 1
+        raise TextFileError(f"line {line} is not valid UTF-8 (byte 0x{raw[exc.start]:02X}; "
+                            "the file is probably Latin-1 / Windows-1252)", _SAVE_UTF8) from None
+
+
 CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
 TAILS = ("two", "greater", "less")
 NEIGHBORS = ("face", "edge", "vertex")
@@ -65,6 +118,54 @@ SCHEMA = {
         "tfce_e": ((int, float), 0.5, "TFCE extent exponent E"),
         "tfce_h": ((int, float), 2.0, "TFCE height exponent H"),
         "tfce_steps": (int, 100, "TFCE number of height steps"),
+    },
+}
+
+
+#: Largest seed + 1: seeds are stored as signed 64-bit integers (TOML 1.0 integers).
+SEED_LIMIT = 2 ** 63
+#: Most rearrangements accepted: the engine holds the whole set in memory (one row of
+#: n indices per rearrangement), and p-values are resolved to 1 / resamples.
+MAX_RESAMPLES = 1_000_000
+
+
+def _finite(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _window_ok(v) -> bool:
+    return len(v) == 2 and all(_finite(x) for x in v) and v[0] < v[1]
+
+
+#: Value rules applied after the type check: key -> (test, what is required, how to fix).
+#: Every value the engine (permutation, tfce, resampling) would refuse is refused here
+#: first, so that ``check`` accepts nothing that ``run`` rejects; a bad value is
+#: reported and replaced by its default so that checking can go on.
+VALUE_RULES = {
+    "cohort": {
+        "time_start": (_finite, "must be a finite number of seconds", "e.g. time_start = -0.1"),
+        "sampling_interval": (lambda v: _finite(v) and v > 0,
+                              "must be a positive number of seconds",
+                              "e.g. sampling_interval = 0.004 for 250 Hz"),
+    },
+    "inference": {
+        "resamples": (lambda v: 1 <= v <= MAX_RESAMPLES,
+                      f"must be from 1 to {MAX_RESAMPLES:,}",
+                      "use e.g. 5000 (fewer gives coarse p-values)"),
+        "seed": (lambda v: 0 <= v < SEED_LIMIT,
+                 "must be a whole number from 0 to 2^63 - 1",
+                 "use a non-negative integer such as 20261201"),
+        "forming_p": (lambda v: _finite(v) and 0 < v < 1, "must be between 0 and 1",
+                      "give a p-value such as 0.001"),
+        "alpha": (lambda v: _finite(v) and 0 < v < 1, "must be between 0 and 1",
+                  "give a level such as 0.05"),
+        "time_window": (_window_ok, "expected [start, stop], two numbers of seconds with "
+                        "start < stop", "e.g. time_window = [0.0, 0.6]"),
+        "tfce_e": (lambda v: _finite(v) and v > 0, "TFCE exponent E must be a positive number",
+                   "use the usual 0.5 (Smith & Nichols 2009)"),
+        "tfce_h": (lambda v: _finite(v) and v > 0, "TFCE exponent H must be a positive number",
+                   "use the usual 2 (Smith & Nichols 2009)"),
+        "tfce_steps": (lambda v: v >= 10, "must be at least 10", "use 100"),
     },
 }
 
@@ -168,11 +269,11 @@ def read_settings(path):
     problems = ProblemList()
     where = str(path)
     try:
-        text = path.read_text(encoding="utf-8")
+        text = read_text(path)
     except FileNotFoundError:
         raise InputError([Problem(where, "analysis file not found", "check the path")])
-    except OSError as exc:
-        raise InputError([Problem(where, f"cannot read the analysis file ({exc})", "")])
+    except TextFileError as exc:
+        raise InputError([Problem(where, exc.what, exc.fix)])
     try:
         raw = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
@@ -180,11 +281,6 @@ def read_settings(path):
                              "fix the syntax at the line and column given")])
     settings = settings_from_dict(raw, path, problems)
     return settings, problems
-
-
-def Problem(where, what, fix):
-    from .problems import Problem
-    return Problem(where, what, fix)
 
 
 def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings:
@@ -217,32 +313,18 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
     _check_choice(inference, "correction", CORRECTIONS, where, problems)
     _check_choice(inference, "tails", TAILS, where, problems)
     _check_choice(inference, "neighbors", NEIGHBORS, where, problems)
-    if isinstance(inference.get("resamples"), int) and inference["resamples"] < 1:
-        problems.add(f"{where} [inference] resamples", "must be at least 1",
-                     "use e.g. 5000 (fewer gives coarse p-values)")
-    for key in ("forming_p", "alpha"):
-        v = inference.get(key)
-        if isinstance(v, (int, float)) and not (0 < v < 1):
-            problems.add(f"{where} [inference] {key}", f"must be between 0 and 1, got {v}",
-                         "give a p-value such as 0.001 or 0.05")
+    for section, values in (("cohort", cohort), ("inference", inference)):
+        for key, (ok, what, fix) in VALUE_RULES[section].items():
+            v = values.get(key)
+            if v is not None and not ok(v):
+                problems.add(f"{where} [{section}] {key}", f"{what}, got {v!r}", fix)
+                values[key] = SCHEMA[section][key][1]  # go on with the default
     tw = inference.get("time_window")
     if tw is not None:
-        if (len(tw) != 2 or not all(isinstance(x, (int, float)) and not isinstance(x, bool)
-                                    for x in tw) or not tw[0] < tw[1]):
-            problems.add(f"{where} [inference] time_window",
-                         f"expected [start, stop] in seconds with start < stop, got {tw!r}",
-                         "e.g. time_window = [0.0, 0.6]")
-        else:
-            inference["time_window"] = [float(tw[0]), float(tw[1])]
+        inference["time_window"] = [float(tw[0]), float(tw[1])]
     if (cohort.get("atlas") is None) != (cohort.get("atlas_labels") is None):
         problems.add(f"{where} [cohort]", "'atlas' and 'atlas_labels' go together",
                      "give both the atlas image and its lookup table, or neither")
-    dt = cohort.get("sampling_interval")
-    if isinstance(dt, (int, float)) and dt <= 0:
-        problems.add(f"{where} [cohort] sampling_interval", "must be positive (seconds)",
-                     "e.g. sampling_interval = 0.004 for 250 Hz")
-    if inference.get("tfce_steps") is not None and inference["tfce_steps"] < 10:
-        problems.add(f"{where} [inference] tfce_steps", "must be at least 10", "use 100")
 
     contrasts = []
     raw_contrasts = raw.get("contrasts", [])
@@ -253,74 +335,119 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
     if not raw_contrasts:
         problems.add(f"{where}", "no contrasts defined",
                      "add at least one [[contrasts]] block with a name and within / compare / slope / weights")
-    names = set()
+    names = {}
     for i, rc in enumerate(raw_contrasts):
-        cwhere = f"{where} [[contrasts]] #{i + 1}"
-        if not isinstance(rc, dict):
-            problems.add(cwhere, "must be a table", "")
-            continue
-        c = _section(rc, "contrasts", cwhere, problems)
-        name = c.get("name")
-        if not name:
-            problems.add(cwhere, "missing 'name'", "add name = \"my_contrast\"")
-            name = f"contrast_{i + 1}"
-        else:
-            cwhere = f"{where} contrast '{name}'"
-            ok = all(ch.isalnum() or ch in "_-" for ch in name)
-            if not ok:
-                problems.add(cwhere, "name may hold only letters, digits, '_' and '-'",
-                             "it becomes a folder name in the results")
-            if name in names:
-                problems.add(cwhere, "duplicate contrast name", "give each contrast its own name")
-            names.add(name)
-        if not any(c.get(k) for k in ("within", "compare", "slope", "weights")):
-            problems.add(cwhere, "says nothing to test",
-                         "give within = {...}, compare = {...}, slope = \"column\" or weights = {...}")
-        if c.get("weights") and (c.get("compare") or c.get("slope")):
-            problems.add(cwhere, "'weights' cannot be combined with 'compare' or 'slope'",
-                         "use weights alone (raw coefficients) or the named forms")
-        if c.get("compare") and c.get("slope"):
-            problems.add(cwhere, "'compare' and 'slope' cannot be combined",
-                         "write two contrasts")
-        for key in ("within", "weights"):
-            d = c.get(key)
-            if d:
-                bad = [k for k, v in d.items()
-                       if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v)]
-                if bad:
-                    problems.add(f"{cwhere} {key}", f"weights must be numbers: {', '.join(bad)}",
-                                 "e.g. {rare = 1, frequent = -1}")
-        if c.get("within") and abs(sum(v for v in c["within"].values()
-                                       if isinstance(v, (int, float)))) > 1e-9:
-            problems.add(f"{cwhere} within", "weights over conditions must sum to 0",
-                         "a within contrast compares conditions, e.g. {rare = 1, frequent = -1}; "
-                         "to average conditions leave 'within' out")
-        cmp_ = c.get("compare")
-        if cmp_:
-            if len(cmp_) != 1:
-                problems.add(f"{cwhere} compare", "name exactly one factor",
-                             "e.g. compare = {group = [\"patient\", \"control\"]}")
-            for fac, levels in cmp_.items():
-                if (not isinstance(levels, list) or len(levels) < 2
-                        or not all(isinstance(x, (str, int)) for x in levels)):
-                    problems.add(f"{cwhere} compare.{fac}", "needs a list of at least two levels",
-                                 "e.g. [\"patient\", \"control\"]")
-                elif len(set(map(str, levels))) != len(levels):
-                    problems.add(f"{cwhere} compare.{fac}", "a level is listed twice", "")
-        if c.get("within") and not model.get("within"):
-            problems.add(cwhere, "has within weights but [model] within is not set",
-                         "add within = \"condition\" under [model]")
-        contrasts.append(ContrastSpec(name=name, description=c.get("description") or "",
-                                      within=c.get("within"), compare=c.get("compare"),
-                                      slope=c.get("slope"), weights=c.get("weights")))
+        spec = _contrast(rc, i, where, model, names, problems)
+        if spec is not None:
+            contrasts.append(spec)
     return Settings(path=Path(path), title=top.get("title", SCHEMA[""]["title"][1]),
                     cohort=cohort, model=model, contrasts=contrasts, inference=inference,
                     raw=raw)
+
+
+#: Names Windows reserves for devices; a results folder cannot carry them.
+_RESERVED = {"con", "prn", "aux", "nul"} | {f"{p}{i}" for p in ("com", "lpt") for i in range(1, 10)}
+
+
+def _contrast(rc, i, where, model, names, problems):
+    """One [[contrasts]] block -> ContrastSpec, or None when its content is unusable.
+
+    A contrast whose content has a problem is reported and left out of the
+    returned settings, so that later checks never see malformed weights.
+    """
+    cwhere = f"{where} [[contrasts]] #{i + 1}"
+    if not isinstance(rc, dict):
+        problems.add(cwhere, "must be a table", "write each contrast as a [[contrasts]] block")
+        return None
+    n_before = len(problems)
+    c = _section(rc, "contrasts", cwhere, problems)
+    type_ok = len(problems) == n_before
+    name = c.get("name")
+    if not name:
+        problems.add(cwhere, "missing 'name'", "add name = \"my_contrast\"")
+        name = f"contrast_{i + 1}"
+    else:
+        cwhere = f"{where} contrast '{name}'"
+        _check_name(name, cwhere, names, problems)
+    n_before = len(problems)
+    _check_contrast_content(c, cwhere, model, problems)
+    if len(problems) > n_before or not type_ok:
+        return None
+    return ContrastSpec(name=name, description=c.get("description") or "",
+                        within=c.get("within"), compare=c.get("compare"),
+                        slope=c.get("slope"), weights=c.get("weights"))
+
+
+def _check_name(name, cwhere, names, problems):
+    """Contrast names become results folders: portable, and distinct ignoring case."""
+    if not all(ch.isalnum() or ch in "_-" for ch in name):
+        problems.add(cwhere, "name may hold only letters, digits, '_' and '-'",
+                     "it becomes a folder name in the results")
+    if name.casefold() in _RESERVED:
+        problems.add(cwhere, f"'{name}' is a reserved device name on Windows",
+                     "choose another name (it becomes a folder name in the results)")
+    key = name.casefold()
+    if key in names:
+        other = names[key]
+        if other == name:
+            problems.add(cwhere, "duplicate contrast name", "give each contrast its own name")
+        else:
+            problems.add(cwhere, f"name differs from contrast '{other}' only by upper/lower "
+                         "case; on case-insensitive file systems (Windows, macOS) both would "
+                         "write the same results folder", "rename one of them")
+    else:
+        names[key] = name
+
+
+def _check_contrast_content(c, cwhere, model, problems):
+    if not any(c.get(k) for k in ("within", "compare", "slope", "weights")):
+        problems.add(cwhere, "says nothing to test",
+                     "give within = {...}, compare = {...}, slope = \"column\" or weights = {...}")
+    if c.get("weights") and (c.get("compare") or c.get("slope")):
+        problems.add(cwhere, "'weights' cannot be combined with 'compare' or 'slope'",
+                     "use weights alone (raw coefficients) or the named forms")
+    if c.get("compare") and c.get("slope"):
+        problems.add(cwhere, "'compare' and 'slope' cannot be combined", "write two contrasts")
+    for key in ("within", "weights"):
+        d = c.get(key)
+        if d:
+            bad = [k for k, v in d.items() if not _finite(v)]
+            if bad:
+                problems.add(f"{cwhere} {key}",
+                             f"weights must be numbers: {', '.join(f'{k} = {d[k]!r}' for k in bad)}",
+                             "e.g. {rare = 1, frequent = -1}")
+            elif key == "within" and not any(d.values()):
+                problems.add(f"{cwhere} within", "weights over conditions are all zero",
+                             "e.g. {rare = 1, frequent = -1}")
+            elif key == "within" and abs(sum(d.values())) > 1e-9:
+                problems.add(f"{cwhere} within", "weights over conditions must sum to 0",
+                             "a within contrast compares conditions, e.g. {rare = 1, frequent = -1}; "
+                             "to average conditions leave 'within' out")
+    if c.get("slope") is not None and not c["slope"].strip():
+        problems.add(f"{cwhere} slope", "is empty", "name a numeric participants column")
+    cmp_ = c.get("compare")
+    if cmp_:
+        if len(cmp_) != 1:
+            problems.add(f"{cwhere} compare", "name exactly one factor",
+                         "e.g. compare = {group = [\"patient\", \"control\"]}")
+        for fac, levels in cmp_.items():
+            if (not isinstance(levels, list) or len(levels) < 2
+                    or not all(isinstance(x, (str, int)) and not isinstance(x, bool)
+                               for x in levels)):
+                problems.add(f"{cwhere} compare.{fac}", "needs a list of at least two levels",
+                             "e.g. [\"patient\", \"control\"]")
+            elif len(set(map(str, levels))) != len(levels):
+                problems.add(f"{cwhere} compare.{fac}", "a level is listed twice",
+                             "list each level once")
+    if c.get("within") and not model.get("within"):
+        problems.add(cwhere, "has within weights but [model] within is not set",
+                     "add within = \"condition\" under [model]")
 
 
 def _check_choice(d, key, choices, where, problems):
     v = d.get(key)
     if v is not None and v not in choices:
         hint = closest(str(v), choices)
-        problems.add(f"{where} {key}", f"'{v}' is not one of {', '.join(choices)}",
+        problems.add(f"{where} [inference] {key}", f"'{v}' is not one of {', '.join(choices)}",
                      hint or f"choose one of {', '.join(choices)}")
+        d[key] = SCHEMA["inference"][key][1]  # go on with the default
