@@ -64,10 +64,13 @@ SEED_MAX = 2 ** 63 - 1
 
 def _check_options(args, parser):
     """Command-line values: a bad one is a usage error (exit 2) with a message."""
+    from .settings import MAX_RESAMPLES
     for name in ("resamples", "workers"):
         v = getattr(args, name, None)
         if v is not None and v < 1:
             parser.error(f"--{name} must be at least 1, got {v}")
+    if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
+        parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
     seed = getattr(args, "seed", None)
     if seed is not None and not 0 <= seed <= SEED_MAX:
         parser.error(f"--seed must be a whole number from 0 to {SEED_MAX}, got {seed}")

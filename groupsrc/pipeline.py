@@ -74,6 +74,9 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
             plan = plan_contrast(spec, design, problems, f"{settings.path} contrast '{spec.name}'")
             if plan is not None:
                 plans.append(plan)
+    if design is None and not problems:
+        problems.add(where, "the design could not be built",
+                     "check the formula and the columns it names")
     tw = settings.inference.get("time_window")
     tindex = cohort.time_axis.window(*(tw or (None, None)))
     if tindex.size == 0:
@@ -81,9 +84,35 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
         problems.add(f"{settings.path} [inference] time_window",
                      f"{tw} holds no sample; the maps run from {t[0]:.4g} s to {t[-1]:.4g} s",
                      "choose a window inside that range")
+    if not problems:
+        _check_reduced_range(cohort, plans, settings, problems)
     if problems:
         raise InputError(problems)
     return Prepared(settings, cohort, design, plans, tindex, summary(cohort, settings))
+
+
+#: largest magnitude the reduced maps may reach: the resampling squares float32
+#: values, and float32 overflows above about 3.4e38
+_REDUCED_LIMIT = 1e18
+
+
+def _check_reduced_range(cohort, plans, settings, problems):
+    """A contrast whose within-participant weights would push the maps out of range."""
+    if cohort.n_maps == 0 or not plans:
+        return
+    top = 0.0
+    step = max(1, int(2e7 // max(1, cohort.Y.shape[2] * cohort.n_maps)))
+    for a in range(0, cohort.Y.shape[1], step):
+        top = max(top, float(np.abs(cohort.Y[:, a:a + step]).max()))
+    for plan in plans:
+        weight = sum(abs(float(v)) for v in (plan.within or {"all": 1.0}).values())
+        if top * weight > _REDUCED_LIMIT:
+            problems.add(f"{settings.path} contrast '{plan.name}'",
+                         f"the maps reach {top:.3g} and the within weights sum to {weight:g} "
+                         "in magnitude: the reduced maps would exceed the range the statistics "
+                         "can square in single precision",
+                         "rescale the maps (e.g. to nA m or to a unitless score) or use "
+                         "smaller within weights such as 1 and -1")
 
 
 def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None):

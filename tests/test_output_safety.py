@@ -298,3 +298,27 @@ def test_bad_seed_option_is_a_usage_error(results, seed, capsys):
     assert exc.value.code == 2
     err = capsys.readouterr().err
     assert "--seed must be a whole number" in err and "Traceback" not in err
+
+
+def test_maps_too_large_for_the_contrast_are_refused_by_check(results, tmp_path, capsys):
+    """Values whose reduced maps would overflow single precision when squared are a
+    problem for check, not a crash in run (float32 range about 3.4e38: IEEE 754)."""
+    import nibabel as nib
+    import numpy as np
+    import pandas as pd
+    a = copy_cohort(results[0], tmp_path / "c")
+    rel = pd.read_csv(a.parent / "maps.tsv", sep="\t")["path"][0]
+    img = nib.load(str(a.parent / rel))
+    data = np.asarray(img.dataobj) * np.float32(1e30)
+    nib.save(nib.Nifti1Image(data.astype(np.float32), img.affine, img.header), str(a.parent / rel))
+    before = tree_hashes(a.parent)
+    rc, text = run_cli(["check", a], capsys)
+    assert rc == 1 and "rescale the maps" in text and "rare_minus_frequent" in text
+    assert tree_hashes(a.parent) == before
+
+
+def test_resamples_option_has_the_settings_bound(results, capsys):
+    from groupsrc.settings import MAX_RESAMPLES
+    with pytest.raises(SystemExit) as exc:
+        main(["run", str(results[0]), "--resamples", str(MAX_RESAMPLES + 1)])
+    assert exc.value.code == 2 and "--resamples must be at most" in capsys.readouterr().err
