@@ -77,7 +77,6 @@ Examples
 
 from __future__ import annotations
 
-import math
 
 import numpy as np
 import pandas as pd

@@ -15,7 +15,6 @@ Conventions checked here and their sources:
 import itertools
 
 import numpy as np
-import pandas as pd
 import pytest
 import statsmodels.api as sm
 from scipy import ndimage, sparse, stats
