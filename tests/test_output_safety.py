@@ -60,7 +60,7 @@ def test_overwrite_refuses_the_maps_folder(results, tmp_path, capsys):
     rc, text = run_cli(["run", a, "--out", a.parent / "maps", "--overwrite"], capsys)
     assert rc == 1
     assert str((a.parent / "maps").resolve()) in text
-    assert "would be or contain input(s)" in text
+    assert "input file(s) of this analysis" in text
     assert tree_hashes(a.parent) == before
 
 
@@ -81,7 +81,7 @@ def test_overwrite_refuses_dot_inside_the_data_folder(results, tmp_path, capsys,
     before = tree_hashes(a.parent)
     monkeypatch.chdir(a.parent)
     rc, text = run_cli(["run", "analysis.toml", "--out", ".", "--overwrite"], capsys)
-    assert rc == 1 and "would be or contain input(s)" in text
+    assert rc == 1 and "input file(s) of this analysis" in text
     assert tree_hashes(a.parent) == before
 
 

@@ -169,10 +169,11 @@ def check_target(out, *, overwrite: bool, inputs=(), problems: ProblemList | Non
         elif out.is_relative_to(p):
             hits_around.append(p)
     if hits_in:
-        shown = ", ".join(str(p) for p in hits_in[:_LIST_AT_MOST])
-        more = f" and {len(hits_in) - _LIST_AT_MOST} more" if len(hits_in) > _LIST_AT_MOST else ""
-        problems.add(where, f"the results folder would be or contain input(s) of this "
-                     f"analysis: {shown}{more}",
+        shown = ", ".join("(the folder itself)" if p == out else p.relative_to(out).as_posix()
+                          for p in hits_in[:3])
+        more = f", and {len(hits_in) - 3} more" if len(hits_in) > 3 else ""
+        problems.add(where, f"the results folder would be or contain {len(hits_in)} input "
+                     f"file(s) of this analysis ({shown}{more})",
                      f"choose an {option} folder that holds none of the inputs, e.g. a new "
                      "folder 'results' beside the analysis file")
     for p in hits_around[:_LIST_AT_MOST]:

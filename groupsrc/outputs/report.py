@@ -227,7 +227,7 @@ def table_view(frame: pd.DataFrame | None, columns=None, docs=None, highlight=No
     if frame is None or len(frame) == 0:
         return {"columns": [], "rows": [], "more": 0}
     cols = [c for c in (columns or frame.columns) if c in frame.columns]
-    text = {c: frame[c].dtype == object for c in cols}
+    text = {c: not pd.api.types.is_numeric_dtype(frame[c]) for c in cols}
     rows = [{"sig": bool(highlight(r)) if highlight is not None else False,
              "cells": [{"text": _cell(r[c]), "left": text[c]} for c in cols]}
             for _, r in frame.head(max_rows).iterrows()]
