@@ -15,7 +15,7 @@ import time
 from pathlib import Path
 
 from . import __version__
-from .problems import InputError, ProblemList
+from .inputs.problems import InputError, ProblemList
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -64,7 +64,7 @@ SEED_MAX = 2 ** 63 - 1
 
 def _check_options(args, parser):
     """Command-line values: a bad one is a usage error (exit 2) with a message."""
-    from .settings import MAX_RESAMPLES
+    from .inputs.settings import MAX_RESAMPLES
     for name in ("resamples", "workers"):
         v = getattr(args, name, None)
         if v is not None and v < 1:
@@ -167,7 +167,7 @@ def _dispatch(args, argv) -> int:
 
 def cmd_check(analysis: Path, as_json=False) -> int:
     from .pipeline import prepare
-    from .settings import read_settings
+    from .inputs.settings import read_settings
     settings, problems = read_settings(analysis)
     prep = prepare(settings, prior=problems)
     s = prep.summary

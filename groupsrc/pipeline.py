@@ -1,7 +1,7 @@
 """The pipeline: load + validate -> reduce -> model -> resample -> correct -> write.
 
 Data flow one way: :func:`prepare` is the only stage that touches input
-files (through :func:`groupsrc.cohort.load_cohort`); :func:`analyse` works on
+files (through :func:`groupsrc.inputs.cohort.load_cohort`); :func:`analyse` works on
 arrays and tables only; :func:`groupsrc.outputs.write_results` is the only
 stage that writes.
 """
@@ -19,11 +19,11 @@ import numpy as np
 import pandas as pd
 
 from . import __version__
-from .cohort import Cohort, load_cohort, summary
-from .design import Design, build_design, plan_contrast, reduction_matrix
-from .problems import InputError, ProblemList
-from .results import AnalysisResult, ContrastResult
-from .settings import Settings, parse_settings
+from .inputs.cohort import Cohort, load_cohort, summary
+from .inputs.design import Design, build_design, plan_contrast, reduction_matrix
+from .inputs.problems import InputError, ProblemList
+from .stats.results import AnalysisResult, ContrastResult
+from .inputs.settings import Settings, parse_settings
 
 log = logging.getLogger("groupsrc")
 
@@ -57,7 +57,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     except InputError as exc:
         problems.extend(exc.problems)
         # still check the design, so that its problems are reported in the same pass
-        from .cohort import check_tables
+        from .inputs.cohort import check_tables
         parts = check_tables(settings, ProblemList())[0]
         if parts is not None:
             design = build_design(settings, parts, problems, f"{settings.path} [model] between")
@@ -117,7 +117,7 @@ def _check_reduced_range(cohort, plans, settings, problems):
 
 def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None):
     """Stages 2-5 on arrays: returns an AnalysisResult."""
-    from .permutation import run_inference
+    from .stats.inference import run_inference
 
     s, cohort, design = prep.settings, prep.cohort, prep.design
     inf = dict(s.inference)

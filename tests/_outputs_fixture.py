@@ -15,8 +15,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage, stats
 
-from groupsrc.grid import Grid, TimeAxis
-from groupsrc.results import AnalysisResult, ContrastResult, InferenceResult
+from groupsrc.sources.volume import Grid, TimeAxis
+from groupsrc.stats.results import AnalysisResult, ContrastResult, InferenceResult
 
 SHAPE = (11, 13, 9)
 VOXEL_MM = 5.0

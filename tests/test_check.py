@@ -240,7 +240,7 @@ def test_second_check_reuses_the_cache(tiny_cohort, capsys):
 
 def test_cache_invalidated_when_a_map_changes(tiny_cohort, capsys):
     from groupsrc.pipeline import prepare
-    from groupsrc.settings import parse_settings
+    from groupsrc.inputs.settings import parse_settings
     s = parse_settings(tiny_cohort)
     first = np.array(prepare(s).cohort.Y)
     p = tiny_cohort.parent / _maps(tiny_cohort).loc[0, "path"]

@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from groupsrc.clusters import cluster_scores, label_clusters
-from groupsrc.grid import CONNECTIVITY, Grid
+from groupsrc.stats.clusters import cluster_scores, label_clusters
+from groupsrc.sources.volume import CONNECTIVITY, Grid
 
 
 def _same_partition(a, b):

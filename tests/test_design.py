@@ -11,9 +11,9 @@ import pandas as pd
 import pytest
 import statsmodels.formula.api as smf
 
-from groupsrc.design import build_design, plan_contrast, reduction_matrix
-from groupsrc.problems import ProblemList
-from groupsrc.settings import ContrastSpec
+from groupsrc.inputs.design import build_design, plan_contrast, reduction_matrix
+from groupsrc.inputs.problems import ProblemList
+from groupsrc.inputs.settings import ContrastSpec
 
 
 class _S:  # the two attributes design.py reads from Settings

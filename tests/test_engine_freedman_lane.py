@@ -23,7 +23,7 @@ import numpy as np
 import statsmodels.api as sm
 from scipy import sparse
 
-from groupsrc.permutation import run_inference
+from groupsrc.stats.inference import run_inference
 
 
 def _refit_max_t(Ystar, X, c):

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import sparse
 
-from groupsrc.permutation import run_inference
+from groupsrc.stats.inference import run_inference
 
 
 def _call(**kw):

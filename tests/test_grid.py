@@ -6,7 +6,7 @@ import pytest
 from nibabel.affines import apply_affine
 from scipy import ndimage
 
-from groupsrc.grid import Grid, TimeAxis
+from groupsrc.sources.volume import Grid, TimeAxis
 
 
 def oblique_affine():

@@ -15,8 +15,8 @@ import pandas as pd
 import pytest
 
 from conftest import copy_cohort
-from groupsrc import cache
-from groupsrc.cache import HashIndex, sha256_file
+from groupsrc.inputs import cache
+from groupsrc.inputs.cache import HashIndex, sha256_file
 
 BIG = 3 * cache.SAMPLE_BYTES     # the middle third lies outside the sampled ends
 
@@ -83,7 +83,7 @@ def test_unchanged_file_reuses_the_memo(tmp_path, settled, monkeypatch):
 
 def test_stale_cache_is_never_served_end_to_end(tiny_cohort, tmp_path, settled):
     from groupsrc.pipeline import prepare
-    from groupsrc.settings import parse_settings
+    from groupsrc.inputs.settings import parse_settings
     a = copy_cohort(tiny_cohort, tmp_path / "copy")
     maps = pd.read_csv(a.parent / "maps.tsv", sep="\t", dtype=str)
     src = a.parent / maps.loc[0, "path"]

@@ -135,7 +135,7 @@ VALUES = st.recursive(SCALARS, lambda inner: st.one_of(
                                  HealthCheck.too_slow])
 @given(data=st.data())
 def test_random_settings_values_never_crash_or_touch_inputs(cohort, capsys, data):
-    from groupsrc.settings import SCHEMA
+    from groupsrc.inputs.settings import SCHEMA
     analysis, _ = cohort
     original = analysis.read_text()
     doc = tomllib.loads(original)

@@ -16,9 +16,9 @@ import pytest
 from scipy import sparse
 
 from conftest import copy_cohort
-from groupsrc import permutation
+from groupsrc.stats import inference as permutation
 from groupsrc.cli import main
-from groupsrc.settings import SCHEMA, VALUE_RULES, read_settings
+from groupsrc.inputs.settings import SCHEMA, VALUE_RULES, read_settings
 from test_check import assert_refused, run_check
 
 

@@ -24,8 +24,8 @@ import numpy as np
 import pytest
 from scipy import ndimage, stats
 
-from groupsrc.grid import Grid
-from groupsrc.permutation import run_inference
+from groupsrc.sources.volume import Grid
+from groupsrc.stats.inference import run_inference
 
 ALPHA = 0.05
 SHAPE, T, N = (8, 8, 8), 20, 16

@@ -87,7 +87,7 @@ def test_overwrite_refuses_dot_inside_the_data_folder(results, tmp_path, capsys,
 
 def test_out_may_not_sit_inside_an_input(results, tmp_path, capsys):
     # an input given as a folder path in the maps table: results may not go inside it
-    from groupsrc.problems import InputError
+    from groupsrc.inputs.problems import InputError
     inside = tmp_path / "data" / "sub"
     with pytest.raises(InputError, match="sit inside the input"):
         fo.check_target(inside, overwrite=False, inputs=[tmp_path / "data"])
@@ -318,7 +318,7 @@ def test_maps_too_large_for_the_contrast_are_refused_by_check(results, tmp_path,
 
 
 def test_resamples_option_has_the_settings_bound(results, capsys):
-    from groupsrc.settings import MAX_RESAMPLES
+    from groupsrc.inputs.settings import MAX_RESAMPLES
     with pytest.raises(SystemExit) as exc:
         main(["run", str(results[0]), "--resamples", str(MAX_RESAMPLES + 1)])
     assert exc.value.code == 2 and "--resamples must be at most" in capsys.readouterr().err

@@ -20,8 +20,8 @@ import statsmodels.api as sm
 from scipy import ndimage, sparse, stats
 from statsmodels.stats.multitest import multipletests
 
-from groupsrc.grid import Grid
-from groupsrc.permutation import run_inference
+from groupsrc.sources.volume import Grid
+from groupsrc.stats.inference import run_inference
 
 STRUCT4 = ndimage.generate_binary_structure(4, 1)
 
@@ -408,7 +408,7 @@ def _tfce_reference(tvol, steps, E=0.5, H=2.0):
 
 def test_exact_sign_flip_tfce_equals_brute_force():
     # All 2**6 = 64 sign vectors; the TFCE maps of the reference come from the
-    # per-height ndimage definition above, not from groupsrc.tfce.
+    # per-height ndimage definition above, not from groupsrc.stats.tfce.
     grid, Y = _small_problem(n=6, seed=2)
     adj = grid.adjacency("face")
     y64 = Y.astype(np.float64)
@@ -432,14 +432,14 @@ def test_exact_sign_flip_tfce_equals_brute_force():
 
 @pytest.mark.parametrize("correction", ["cluster-mass", "cluster-extent", "tfce"])
 def test_map_by_map_and_stacked_labelling_agree(correction, monkeypatch):
-    import groupsrc.permutation as engine
+    import groupsrc.stats.inference as engine
     grid, Y = _small_problem(n=10, seed=6)
     kw = dict(scheme="sign-flip", correction=correction, n_resamples=60, seed=3)
     stacked = run_inference(Y, np.ones((10, 1)), [1.0], grid.adjacency("face"), **kw)
     monkeypatch.setattr(engine, "_STACK_FEATURES", 1)
     single = run_inference(Y, np.ones((10, 1)), [1.0], grid.adjacency("face"), **kw)
     # labelling several maps at once must not change a single bit (the
-    # reproducibility rule in groupsrc.permutation)
+    # reproducibility rule in groupsrc.stats.inference)
     for col in ("max_stat", "max_pos", "max_neg"):
         np.testing.assert_array_equal(stacked.null[col], single.null[col])
     np.testing.assert_array_equal(stacked.p_corrected, single.p_corrected)

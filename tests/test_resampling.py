@@ -12,7 +12,7 @@ import math
 import numpy as np
 import pytest
 
-from groupsrc import resampling as rs
+from groupsrc.stats import resampling as rs
 
 
 def test_sign_flip_exact_enumeration():

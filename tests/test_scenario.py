@@ -15,8 +15,8 @@ import pandas as pd
 import pytest
 
 from groupsrc.cli import main
-from groupsrc.grid import TimeAxis
-from groupsrc.problems import InputError
+from groupsrc.sources.volume import TimeAxis
+from groupsrc.inputs.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
 from groupsrc.simulate import scenario as sc
 

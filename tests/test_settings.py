@@ -4,8 +4,8 @@ from pathlib import Path
 
 import pytest
 
-from groupsrc.problems import InputError
-from groupsrc.settings import SCHEMA, parse_settings, read_settings
+from groupsrc.inputs.problems import InputError
+from groupsrc.inputs.settings import SCHEMA, parse_settings, read_settings
 
 ROOT = Path(__file__).resolve().parents[1]
 TEMPLATES = sorted((ROOT / "analysis_templates").glob("*.toml"))

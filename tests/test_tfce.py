@@ -1,7 +1,7 @@
 """TFCE against its defining sum (Smith & Nichols 2009, NeuroImage 44:83-98).
 
 TFCE(v) = integral over h of e(h)^E h^H dh, taken as the right-endpoint sum
-over heights h_k = k dh (the discretisation documented in groupsrc.tfce); a
+over heights h_k = k dh (the discretisation documented in groupsrc.stats.tfce); a
 flat cluster of height h and extent e has the closed form e^E h^(H+1) / (H+1)
 for the integral (analytic, from the definition).
 """
@@ -10,8 +10,8 @@ import numpy as np
 import pytest
 from scipy import ndimage, sparse
 
-from groupsrc.grid import Grid
-from groupsrc.tfce import tfce
+from groupsrc.sources.volume import Grid
+from groupsrc.stats.tfce import tfce
 
 
 def _chain(n):

@@ -3,7 +3,7 @@
 Public API
 ----------
 write_results(analysis, out_dir, run_record)
-    Write a whole results folder from an :class:`~groupsrc.results.AnalysisResult`.
+    Write a whole results folder from an :class:`~groupsrc.stats.results.AnalysisResult`.
 build_report(results_dir) -> Path
     Rebuild figures, methods.md and report.html from a saved folder.
 """

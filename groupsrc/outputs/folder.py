@@ -48,7 +48,7 @@ from contextlib import contextmanager
 from pathlib import Path
 
 from ..atomic import folder_mode
-from ..problems import InputError, ProblemList
+from ..inputs.problems import InputError, ProblemList
 
 RUN_RECORD = "run.json"
 STAGING = "groupsrc-staging"

@@ -4,7 +4,7 @@ Everything that knows what a results folder holds -- file names, which files
 the report needs, how to read them back -- lives here, so the writer and the
 report both depend on this module and not on each other
 (``writer -> report -> layout``).  Reading errors become
-:class:`~groupsrc.problems.InputError` problems naming the file.
+:class:`~groupsrc.inputs.problems.InputError` problems naming the file.
 """
 
 from __future__ import annotations
@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..grid import Grid
-from ..problems import InputError, Problem, ProblemList
+from ..sources.volume import Grid
+from ..inputs.problems import InputError, Problem, ProblemList
 
 RUN_RECORD = "run.json"
 #: BIDS derivatives description (BIDS specification, "Derivatives": dataset_description.json)

@@ -24,7 +24,7 @@ from __future__ import annotations
 import nibabel as nib
 import numpy as np
 
-from ..grid import Grid, TimeAxis
+from ..sources.volume import Grid, TimeAxis
 
 # nifti1.h intent codes
 INTENT_NONE = 0

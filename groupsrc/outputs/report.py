@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from ..grid import Grid
+from ..sources.volume import Grid
 from . import figures
 from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,

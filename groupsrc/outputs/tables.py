@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
-from ..grid import Grid, TimeAxis
+from ..sources.volume import Grid, TimeAxis
 
 #: column documentation: {table file: {column: "meaning (unit)"}}
 COLUMNS = {

@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..results import AnalysisResult, ContrastResult
+from ..stats.results import AnalysisResult, ContrastResult
 from . import nifti, tables
 from .files import jsonable, save_nifti, write_json, write_tsv
 from .layout import (ALL_CLUSTERS, DATASET_DESCRIPTION, MASK_FILE, RUN_RECORD,

@@ -49,7 +49,7 @@ import pandas as pd
 from scipy.signal import lfilter
 
 from ..atomic import write_bytes
-from ..grid import Grid, TimeAxis
+from ..sources.volume import Grid, TimeAxis
 from .forward import helmet_sensors, lead_field
 from .inverse import InverseOperator, minimum_norm
 
@@ -515,7 +515,7 @@ def check_cohort_target(out: Path, problems, option: str = "the cohort folder") 
 
 
 def _check_target(out: Path) -> None:
-    from ..problems import InputError, ProblemList
+    from ..inputs.problems import InputError, ProblemList
     problems = ProblemList()
     check_cohort_target(out, problems)
     if problems:

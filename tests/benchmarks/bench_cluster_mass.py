@@ -19,8 +19,8 @@ import time
 import numpy as np
 from scipy import ndimage, stats
 
-from groupsrc.grid import Grid
-from groupsrc.permutation import run_inference
+from groupsrc.sources.volume import Grid
+from groupsrc.stats.inference import run_inference
 
 
 def workload(seed=0):

@@ -2,12 +2,12 @@
 
 :func:`run_inference` takes per-participant maps ``Y`` (n, n_sources,
 n_times), a design ``X`` (n, p) and a contrast, and returns an
-:class:`~groupsrc.results.InferenceResult`.
+:class:`~groupsrc.stats.results.InferenceResult`.
 
 Method
 ------
 * Statistic: OLS t (contrast vector) or F (contrast matrix), see
-  :mod:`groupsrc.glm`.
+  :mod:`groupsrc.stats.glm`.
 * Nuisance: the design is split by the contrast into the tested space and the
   nuisance space ``Z = {X b : C b = 0}`` (Winkler et al. 2014, NeuroImage
   92:381-397, Appendix A).  Freedman-Lane: the residuals of ``Y`` on ``Z`` are
@@ -667,7 +667,7 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip",
         joblib process workers.
     progress : False, True (tqdm bar) or a callable ``f(done, total)``.
     tfce_e, tfce_h, tfce_steps, tfce_dh : TFCE parameters (see
-        :mod:`groupsrc.tfce`); exponents must be finite and positive.
+        :mod:`groupsrc.stats.tfce`); exponents must be finite and positive.
         Invalid parameters raise ValueError before any work is done.
 
     Returns

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .grid import Grid, TimeAxis
+from ..sources.volume import Grid, TimeAxis
 
 
 @dataclass

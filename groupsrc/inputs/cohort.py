@@ -2,9 +2,9 @@
 
 :func:`load_cohort` is the input edge of the pipeline.  It reads the
 participants and maps tables, inspects every map header, builds the template
-:class:`~groupsrc.grid.Grid` and :class:`~groupsrc.grid.TimeAxis`, decodes the
+:class:`~groupsrc.sources.volume.Grid` and :class:`~groupsrc.sources.volume.TimeAxis`, decodes the
 maps into one float32 array (through the memory-mapped cache) and reports
-every problem it finds at once as an :class:`~groupsrc.problems.InputError`.
+every problem it finds at once as an :class:`~groupsrc.inputs.problems.InputError`.
 Nothing downstream opens a file again.
 """
 
@@ -22,8 +22,8 @@ import numpy as np
 import pandas as pd
 
 from . import cache as _cache
-from .grid import Grid, TimeAxis
-from .maps_io import (DecodeError, affine_difference, read_data, read_header, read_mask,
+from ..sources.volume import Grid, TimeAxis
+from ..formats.nifti import (DecodeError, affine_difference, read_data, read_header, read_mask,
                       read_sources)
 from .problems import InputError, ProblemList, closest
 from .settings import Settings, TextFileError, read_text
@@ -64,7 +64,7 @@ def read_table(path: Path, problems: ProblemList, label: str) -> pd.DataFrame | 
     """Read a TSV with every cell as text (types are decided later).
 
     Conventions: UTF-8 (a byte-order mark is accepted, see
-    :func:`groupsrc.settings.read_text`), tab-separated, a header row, double
+    :func:`groupsrc.inputs.settings.read_text`), tab-separated, a header row, double
     quotes as in CSV.  Cells and names are stripped of surrounding spaces.
     Blank lines are skipped.  The index of the returned frame is the row
     number a spreadsheet shows (the header is row 1), so problems can name it.

@@ -14,7 +14,7 @@ each map separately (observed and each resample), so every map is integrated
 with the same number of steps; a fixed ``dh`` may be given instead.  Defaults
 E = 0.5, H = 2 are the values recommended for 3D data by Smith & Nichols.
 
-Neighbourhood: the space x time graph of :mod:`groupsrc.clusters`.
+Neighbourhood: the space x time graph of :mod:`groupsrc.stats.clusters`.
 Two-sided maps are enhanced by applying the transform to the positive part
 and to the negated negative part; the result carries the statistic's sign.
 

@@ -20,7 +20,7 @@ from pathlib import Path
 import nibabel as nib
 import numpy as np
 
-from .grid import TimeAxis
+from ..sources.volume import TimeAxis
 
 
 @dataclass
