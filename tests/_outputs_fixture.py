@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage, stats
 
-from groupsrc.sources.volume import Grid, TimeAxis
+from groupsrc.sources import TimeAxis, VolumeGrid
 from groupsrc.stats.results import AnalysisResult, ContrastResult, InferenceResult
 
 SHAPE = (11, 13, 9)
@@ -65,7 +65,7 @@ def label_clusters(stat, grid, threshold):
 
 def make_analysis(seed=7, with_atlas=True) -> AnalysisResult:
     rng = np.random.default_rng(seed)
-    grid = Grid.from_mask(_mask(), AFFINE)
+    grid = VolumeGrid.from_mask(_mask(), AFFINE)
     taxis = TimeAxis(T0, DT, NT)
     times = taxis.times
     ids = [f"sub-{i:02d}" for i in range(1, 13)]

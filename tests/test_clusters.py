@@ -11,7 +11,7 @@ import pytest
 from scipy import ndimage
 
 from groupsrc.stats.clusters import cluster_scores, label_clusters
-from groupsrc.sources.volume import CONNECTIVITY, Grid
+from groupsrc.sources.volume import CONNECTIVITY, VolumeGrid
 
 
 def _same_partition(a, b):
@@ -25,7 +25,7 @@ def _same_partition(a, b):
 def test_volume_labels_match_ndimage(neighbors):
     rng = np.random.default_rng(0)
     shape = (9, 8, 7)
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))   # full box mask
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))   # full box mask
     vol = ndimage.gaussian_filter(rng.standard_normal(shape), 1.0) > 0.1
     supra = grid.from_volume(vol)[:, None]                    # one sample
     lab, n = label_clusters(supra, grid.adjacency(neighbors))
@@ -38,7 +38,7 @@ def test_volume_labels_match_ndimage(neighbors):
 def test_space_time_labels_match_ndimage_4d():
     rng = np.random.default_rng(1)
     shape, T = (7, 6, 5), 11
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))
     vol4 = ndimage.gaussian_filter(rng.standard_normal(shape + (T,)), 1.0) > 0.15
     supra = grid.from_volume(vol4)                            # (S, T)
     lab, n = label_clusters(supra, grid.adjacency("face"))
@@ -52,7 +52,7 @@ def test_masked_grid_breaks_clusters():
     # a voxel outside the mask separates the line: scipy.ndimage.label of the
     # in-mask voxels is the reference
     mask = np.ones((5, 1, 1), bool); mask[2] = False
-    grid = Grid.from_mask(mask, np.eye(4))
+    grid = VolumeGrid.from_mask(mask, np.eye(4))
     lab, n = label_clusters(np.ones((4, 1), bool), grid.adjacency("face"))
     ref, n_ref = ndimage.label(mask, ndimage.generate_binary_structure(3, 1))
     assert n == n_ref == 2
@@ -62,7 +62,7 @@ def test_masked_grid_breaks_clusters():
 def test_mass_and_extent_match_ndimage_sum():
     rng = np.random.default_rng(2)
     shape, T = (6, 6, 6), 8
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))
     st4 = ndimage.gaussian_filter(rng.standard_normal(shape + (T,)), 1.0) * 4
     stat = grid.from_volume(st4)
     thr = 1.0
@@ -80,6 +80,6 @@ def test_mass_and_extent_match_ndimage_sum():
 
 
 def test_empty_map():
-    grid = Grid.from_mask(np.ones((3, 3, 3), bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones((3, 3, 3), bool), np.eye(4))
     lab, n = label_clusters(np.zeros((27, 4), bool), grid.adjacency("face"))
     assert n == 0 and not lab.any()

@@ -6,7 +6,8 @@ import pytest
 from nibabel.affines import apply_affine
 from scipy import ndimage
 
-from groupsrc.sources.volume import Grid, TimeAxis
+from groupsrc.sources import TimeAxis, VolumeGrid
+from groupsrc.formats.nifti import time_axis_from_header
 
 
 def oblique_affine():
@@ -25,7 +26,7 @@ def test_world_coordinates_match_nibabel(tmp_path):
     img = nib.Nifti1Image(mask.astype(np.uint8), aff)
     nib.save(img, str(tmp_path / "m.nii.gz"))
     back = nib.load(str(tmp_path / "m.nii.gz"))
-    g = Grid.from_mask(np.asanyarray(back.dataobj) > 0, back.affine)
+    g = VolumeGrid.from_mask(np.asanyarray(back.dataobj) > 0, back.affine)
     np.testing.assert_allclose(g.coords_mm, apply_affine(aff, np.argwhere(mask)), atol=1e-4)
     np.testing.assert_allclose(g.voxel_size, [2.0, 3.0, 4.0], rtol=1e-6)
     # to_volume / from_volume round trip and C-order numbering (numpy.nonzero)
@@ -37,9 +38,9 @@ def test_world_coordinates_match_nibabel(tmp_path):
 
 @pytest.mark.parametrize("neighbors,count,conn", [("face", 6, 1), ("edge", 18, 2), ("vertex", 26, 3)])
 def test_interior_neighbour_counts(neighbors, count, conn):
-    # Grid geometry (common practice): an interior voxel has 6 / 18 / 26 neighbours;
+    # VolumeGrid geometry (common practice): an interior voxel has 6 / 18 / 26 neighbours;
     # scipy.ndimage.generate_binary_structure(3, c) holds the same offsets plus the centre.
-    g = Grid.from_mask(np.ones((5, 5, 5), bool), np.eye(4))
+    g = VolumeGrid.from_mask(np.ones((5, 5, 5), bool), np.eye(4))
     A = g.adjacency(neighbors)
     centre = int(np.ravel_multi_index((2, 2, 2), (5, 5, 5)))
     assert A[centre].nnz == count
@@ -51,7 +52,7 @@ def test_adjacency_matches_ndimage_structure():
     # scipy.ndimage: two voxels are neighbours iff their offset is in the structure element
     rng = np.random.default_rng(2)
     mask = rng.random((6, 5, 4)) > 0.3
-    g = Grid.from_mask(mask, np.eye(4))
+    g = VolumeGrid.from_mask(mask, np.eye(4))
     for name, conn in (("face", 1), ("edge", 2), ("vertex", 3)):
         st = ndimage.generate_binary_structure(3, conn)
         A = g.adjacency(name).tocoo()
@@ -76,7 +77,7 @@ def test_time_axis_units_from_nifti_header(tmp_path, unit, scale):
     nib.save(img, str(tmp_path / "t.nii"))
     hdr = nib.load(str(tmp_path / "t.nii")).header
     assert int(hdr["xyzt_units"]) & 0x38 == {"sec": 8, "msec": 16, "usec": 24}[unit]
-    ta = TimeAxis.from_header(hdr)
+    ta = time_axis_from_header(hdr)
     assert ta.n == 5
     assert ta.dt == pytest.approx(4.0 * scale)
     assert ta.t0 == pytest.approx(-100.0 * scale)

@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 from scipy import ndimage, stats
 
-from groupsrc.sources.volume import Grid
+from groupsrc.sources import VolumeGrid
 from groupsrc.stats.inference import run_inference
 
 ALPHA = 0.05
@@ -32,7 +32,7 @@ SHAPE, T, N = (8, 8, 8), 20, 16
 
 
 def _datasets(count, seed, shape=SHAPE, n_times=T):
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))
     rng = np.random.default_rng(seed)
     for _ in range(count):
         vol = rng.standard_normal((N,) + shape + (n_times,))

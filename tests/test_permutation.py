@@ -20,7 +20,7 @@ import statsmodels.api as sm
 from scipy import ndimage, sparse, stats
 from statsmodels.stats.multitest import multipletests
 
-from groupsrc.sources.volume import Grid
+from groupsrc.sources import VolumeGrid
 from groupsrc.stats.inference import run_inference
 
 STRUCT4 = ndimage.generate_binary_structure(4, 1)
@@ -28,7 +28,7 @@ STRUCT4 = ndimage.generate_binary_structure(4, 1)
 
 def _small_problem(n=7, shape=(4, 3, 2), T=5, effect=0.8, seed=0):
     rng = np.random.default_rng(seed)
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))
     vol = rng.standard_normal((n,) + shape + (T,))
     vol = ndimage.gaussian_filter(vol, (0, 0.8, 0.8, 0.8, 0.8))
     vol[:, :2, :, :, 1:4] += effect
@@ -151,7 +151,7 @@ def test_exact_sign_flip_cluster_extent_equals_brute_force():
 @pytest.mark.parametrize("offset", [0.0, 3.0, 500.0])   # 500: large mean, residual-copy path
 def test_exact_two_sample_permutation_equals_combinations(offset):
     rng = np.random.default_rng(5)
-    grid = Grid.from_mask(np.ones((3, 2, 1), bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones((3, 2, 1), bool), np.eye(4))
     Y = rng.standard_normal((8, 6, 3)).astype(np.float32)
     Y[:4] += 0.7
     Y += np.float32(offset)
@@ -262,7 +262,7 @@ def test_seed_determinism_freedman_lane_and_f():
     # rows per resample) with an F contrast and a wider map (two feature chunks).
     rng = np.random.default_rng(4)
     n = 15
-    grid = Grid.from_mask(np.ones((6, 5, 4), bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones((6, 5, 4), bool), np.eye(4))
     lev = np.repeat([0, 1, 2], 5)
     age = rng.uniform(20, 60, n) + 5 * lev
     X = np.c_[lev == 0, lev == 1, lev == 2, age].astype(float)
@@ -281,7 +281,7 @@ def test_seed_determinism_freedman_lane_and_f():
 def test_freedman_lane_observed_equals_statsmodels_and_is_calibrated():
     rng = np.random.default_rng(8)
     n = 20
-    grid = Grid.from_mask(np.ones((2, 2, 1), bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones((2, 2, 1), bool), np.eye(4))
     adj = grid.adjacency("face")
     g = np.repeat([0.0, 1.0], n // 2)
     age = rng.uniform(20, 70, n) + 10 * g                 # nuisance correlated with group
@@ -349,7 +349,7 @@ def test_fdr_and_none():
 
 def test_f_contrast_cluster_path():
     rng = np.random.default_rng(6)
-    grid = Grid.from_mask(np.ones((3, 3, 2), bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones((3, 3, 2), bool), np.eye(4))
     lev = np.repeat([0, 1, 2], 6)
     X = np.c_[lev == 0, lev == 1, lev == 2].astype(float)
     Y = rng.standard_normal((18, 18, 6)).astype(np.float32)

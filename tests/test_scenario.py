@@ -15,7 +15,8 @@ import pandas as pd
 import pytest
 
 from groupsrc.cli import main
-from groupsrc.sources.volume import TimeAxis
+from groupsrc.formats.nifti import time_axis_from_header
+from groupsrc.sources import TimeAxis
 from groupsrc.inputs.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
 from groupsrc.simulate import scenario as sc
@@ -89,7 +90,7 @@ def test_small_cohort_files_are_valid(small):
         np.testing.assert_array_equal(img.get_qform(), img.get_sform())
         assert int(hdr["sform_code"]) == 2 and int(hdr["qform_code"]) == 2
         assert hdr.get_xyzt_units() == ("mm", "sec")
-        assert TimeAxis.from_header(hdr).close_to(t)
+        assert time_axis_from_header(hdr).close_to(t)
     data = np.asanyarray(img.dataobj)
     assert np.all(np.isfinite(data)) and np.all(data[mask] >= 0) and np.all(data[~mask] == 0)
     assert data[mask].std() > 0

@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import ndimage, sparse
 
-from groupsrc.sources.volume import Grid
+from groupsrc.sources import VolumeGrid
 from groupsrc.stats.tfce import tfce
 
 
@@ -52,7 +52,7 @@ def test_matches_per_level_ndimage_reference():
     (the definition, Smith & Nichols 2009; E = 0.5, H = 2 as recommended there)."""
     rng = np.random.default_rng(0)
     shape, T = (5, 5, 4), 6
-    grid = Grid.from_mask(np.ones(shape, bool), np.eye(4))
+    grid = VolumeGrid.from_mask(np.ones(shape, bool), np.eye(4))
     v = ndimage.gaussian_filter(rng.standard_normal(shape + (T,)), 1.0) * 5
     v = np.maximum(v, 0)
     steps = 20

@@ -1,0 +1,46 @@
+"""File formats: the only place that reads or writes map files.
+
+One module per format (:mod:`.nifti` for volumes); :func:`format_for` picks
+the module that handles a path by its suffix, so a new format (GIfTI,
+CIFTI-2) is one more module in ``FORMATS``.  Each format module provides, for
+the input edge, ``read_header(path)`` (lazy, raises ValueError with a
+readable reason), ``read_data(header)`` and ``time_axis_from_header``; and,
+for results, image builders and ``save``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from . import nifti
+
+#: format modules, tried in order; each lists the file suffixes it reads
+FORMATS = (nifti,)
+
+
+def format_for(path):
+    """The format module for ``path`` (by suffix), or None when none reads it."""
+    name = Path(path).name.lower()
+    for fmt in FORMATS:
+        if any(name.endswith(s) for s in fmt.SUFFIXES):
+            return fmt
+    return None
+
+
+def known_suffixes() -> list:
+    return [s for fmt in FORMATS for s in fmt.SUFFIXES]
+
+
+def read_header(path):
+    """Open a map file lazily through its format; ValueError for an unknown type."""
+    fmt = format_for(path)
+    if fmt is None:
+        p = Path(path)
+        if not p.exists():
+            raise FileNotFoundError("file not found")
+        raise ValueError(f"is not a map file groupsrc reads (expected "
+                         f"{', '.join(known_suffixes())})")
+    return fmt.read_header(path)
+
+
+__all__ = ["FORMATS", "format_for", "known_suffixes", "read_header", "nifti"]

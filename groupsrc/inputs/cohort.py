@@ -2,7 +2,7 @@
 
 :func:`load_cohort` is the input edge of the pipeline.  It reads the
 participants and maps tables, inspects every map header, builds the template
-:class:`~groupsrc.sources.volume.Grid` and :class:`~groupsrc.sources.volume.TimeAxis`, decodes the
+:class:`~groupsrc.sources.volume.VolumeGrid` and :class:`~groupsrc.sources.volume.TimeAxis`, decodes the
 maps into one float32 array (through the memory-mapped cache) and reports
 every problem it finds at once as an :class:`~groupsrc.inputs.problems.InputError`.
 Nothing downstream opens a file again.
@@ -22,9 +22,10 @@ import numpy as np
 import pandas as pd
 
 from . import cache as _cache
-from ..sources.volume import Grid, TimeAxis
+from ..sources import TimeAxis, VolumeGrid
+from .. import formats
 from ..formats.nifti import (DecodeError, affine_difference, read_data, read_header, read_mask,
-                      read_sources)
+                             read_sources)
 from .problems import InputError, ProblemList, closest
 from .settings import Settings, TextFileError, read_text
 
@@ -35,7 +36,7 @@ ID = "participant_id"
 class Cohort:
     participants: pd.DataFrame   # index: participant_id
     maps: pd.DataFrame           # one row per map, in the row order of Y
-    grid: Grid
+    grid: VolumeGrid
     time_axis: TimeAxis
     Y: np.ndarray                # (n_maps, n_sources, n_times) float32
     inputs: dict = field(default_factory=dict)   # path -> sha256
@@ -386,7 +387,7 @@ def check_headers(settings, maps, mpath, problems):
             continue
         p = map_path(mpath, rel)
         try:
-            h = read_header(p)
+            h = formats.read_header(p)
         except FileNotFoundError:
             problems.add(f"{row} ({p})", "map file not found",
                          "paths are relative to the folder of the maps table")
@@ -560,7 +561,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         Y, meta = hit
         grid_mask = np.zeros(ref.shape[:3], bool)
         grid_mask.reshape(-1)[np.asarray(meta["flat_index"], dtype=np.int64)] = True
-        grid = Grid.from_mask(grid_mask, ref.affine)
+        grid = VolumeGrid.from_mask(grid_mask, ref.affine)
         bad, broken = {int(k): v for k, v in meta.get("nonfinite", {}).items()}, {}
         cache_hit = True
     else:
@@ -702,7 +703,7 @@ def _decode(headers, ref, mask, progress):
                 continue
             mask &= np.isfinite(data).all(axis=3)
             mask &= ~(data == 0).all(axis=3)
-    grid = Grid.from_mask(mask, ref.affine)
+    grid = VolumeGrid.from_mask(mask, ref.affine)
     Y = np.empty((len(headers), grid.n_sources, n_t), dtype=np.float32)
     flat = grid.flat_index
     bad = {}

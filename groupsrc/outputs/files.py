@@ -10,8 +10,7 @@ import numpy as np
 
 from ..atomic import atomic_path, write_text
 
-__all__ = ["atomic_path", "write_text", "write_json", "write_tsv", "save_nifti",
-           "save_figure", "jsonable"]
+__all__ = ["atomic_path", "write_text", "write_json", "write_tsv", "save_figure", "jsonable"]
 
 
 def write_json(path, obj) -> Path:
@@ -22,13 +21,6 @@ def write_tsv(path, frame) -> Path:
     """Tidy table as TSV: tab separated, header row, 'n/a' for missing values."""
     with atomic_path(path) as tmp:
         frame.to_csv(tmp, sep="\t", index=False, na_rep="n/a", float_format="%.7g")
-    return Path(path)
-
-
-def save_nifti(path, image) -> Path:
-    import nibabel as nib
-    with atomic_path(path) as tmp:
-        nib.save(image, str(tmp))
     return Path(path)
 
 

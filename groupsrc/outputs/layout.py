@@ -15,7 +15,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..sources.volume import Grid
+from ..formats import nifti
+from ..sources import VolumeGrid
 from ..inputs.problems import InputError, Problem, ProblemList
 
 RUN_RECORD = "run.json"
@@ -60,19 +61,18 @@ def read_json(path: Path) -> dict:
 
 def read_map(path: Path, dtype=np.float64):
     """(data, affine) of a NIfTI map of the results folder; a clear error when damaged."""
-    import nibabel as nib
     try:
-        img = nib.load(str(path))
-        return np.asarray(img.dataobj, dtype=dtype), img.affine
+        data, affine = nifti.read_image(path)
+        return np.asarray(data, dtype=dtype), affine
     except FileNotFoundError:
         raise _damaged(path, "missing from the results folder") from None
     except Exception as exc:   # nibabel and gzip raise many types for damaged files
         raise _damaged(path, f"cannot be read as NIfTI ({type(exc).__name__}: {exc})") from None
 
 
-def read_grid(results: Path) -> Grid:
+def read_grid(results: Path) -> VolumeGrid:
     data, affine = read_map(Path(results) / MASK_FILE)
-    return Grid.from_mask(data > 0, affine)
+    return VolumeGrid.from_mask(data > 0, affine)
 
 
 def check_results_folder(results: Path) -> None:

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from ..sources.volume import Grid
+from ..sources import VolumeGrid
 from . import figures
 from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
@@ -74,7 +74,7 @@ def _sign_text(row, kind):
     return "positive" if row["sign"] > 0 else "negative"
 
 
-def contrast_figures(results: Path, grid: Grid, summary: dict, cs: dict) -> list:
+def contrast_figures(results: Path, grid: VolumeGrid, summary: dict, cs: dict) -> list:
     """Draw one contrast's figures; return [(caption, png path)]."""
     name, kind = cs["name"], cs["kind"]
     folder = results / name

@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, stats
 
-from ..sources.volume import Grid, TimeAxis
+from ..sources import TimeAxis, VolumeGrid
 
 #: column documentation: {table file: {column: "meaning (unit)"}}
 COLUMNS = {
@@ -198,7 +198,7 @@ def _peak_of(stat, labels, k):
     return divmod(int(best), stat.shape[1])
 
 
-def cluster_table(contrast, grid: Grid, time_axis: TimeAxis, atlas=None) -> pd.DataFrame:
+def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -> pd.DataFrame:
     """clusters.tsv rows for one contrast (columns of ``COLUMNS['clusters.tsv']``)."""
     inf = contrast.inference
     cols = [c for c in COLUMNS["clusters.tsv"] if c != "atlas_label_at_peak" or atlas]
@@ -246,7 +246,7 @@ def cluster_table(contrast, grid: Grid, time_axis: TimeAxis, atlas=None) -> pd.D
     return pd.DataFrame(rows, columns=cols)
 
 
-def atlas_table(contrast, grid: Grid, atlas) -> pd.DataFrame:
+def atlas_table(contrast, grid: VolumeGrid, atlas) -> pd.DataFrame:
     """cluster_atlas.tsv: share of each cluster's sources in each atlas region."""
     cols = list(COLUMNS["cluster_atlas.tsv"])
     labels = np.asarray(contrast.inference.cluster_labels)
@@ -285,7 +285,7 @@ def local_maxima(stat, labels, adjacency) -> np.ndarray:
     return (labels > 0) & np.isfinite(a) & (a >= best)
 
 
-def peak_table(contrast, grid: Grid, time_axis: TimeAxis, adjacency, min_separation_mm=20.0,
+def peak_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, adjacency, min_separation_mm=20.0,
                max_per_cluster=10) -> pd.DataFrame:
     """peaks.tsv: local maxima of |statistic| per cluster, at least
     ``min_separation_mm`` apart in space, largest first."""

@@ -16,8 +16,9 @@ import numpy as np
 import pandas as pd
 
 from ..stats.results import AnalysisResult, ContrastResult
-from . import nifti, tables
-from .files import jsonable, save_nifti, write_json, write_tsv
+from ..formats import nifti
+from . import tables
+from .files import jsonable, write_json, write_tsv
 from .layout import (ALL_CLUSTERS, DATASET_DESCRIPTION, MASK_FILE, RUN_RECORD,
                      SUMMARY_FILE)
 
@@ -78,24 +79,24 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ad
     alpha = analysis.settings.get("inference", {}).get("alpha", 0.05)
     forming_p = analysis.settings.get("inference", {}).get("forming_p")
     folder.mkdir(parents=True, exist_ok=True)
-    save_nifti(folder / "statistic.nii.gz",
+    nifti.save(folder / "statistic.nii.gz",
                nifti.statistic_image(inf.statistic, grid, taxis, inf.kind, inf.df, c.name))
     if inf.kind == "t":
-        save_nifti(folder / "estimate.nii.gz",
+        nifti.save(folder / "estimate.nii.gz",
                    nifti.estimate_image(inf.estimate, grid, taxis, c.name, "estimate"))
-    save_nifti(folder / "std_effect.nii.gz",
+    nifti.save(folder / "std_effect.nii.gz",
                nifti.estimate_image(inf.std_effect, grid, taxis, c.name,
                                     "hedges g" if inf.kind == "t" else "partial eta2",
                                     signed=inf.kind == "t"))
-    save_nifti(folder / "p_uncorrected.nii.gz",
+    nifti.save(folder / "p_uncorrected.nii.gz",
                nifti.p_image(inf.p_uncorrected, grid, taxis, c.name, "uncorrected"))
     if inf.p_corrected is not None:
-        save_nifti(folder / "p_corrected.nii.gz",
+        nifti.save(folder / "p_corrected.nii.gz",
                    nifti.p_image(inf.p_corrected, grid, taxis, c.name, "corrected"))
-    save_nifti(folder / "clusters.nii.gz",
+    nifti.save(folder / "clusters.nii.gz",
                nifti.label_image(inf.cluster_labels, grid, taxis, c.name))
     summ = _contrast_summary(c, alpha, forming_p)
-    save_nifti(folder / "cluster_summary.nii.gz",
+    nifti.save(folder / "cluster_summary.nii.gz",
                nifti.cluster_summary_image(inf.statistic, inf.cluster_labels,
                                            summ["reported_clusters"], grid, inf.kind, c.name))
     ctab = tables.cluster_table(c, grid, taxis, atlas)
@@ -149,7 +150,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     names = [c.name for c in analysis.contrasts]
     if len(set(names)) != len(names):
         raise ValueError(f"contrast names must be unique, got {names}")
-    save_nifti(out / MASK_FILE, nifti.make_image(
+    nifti.save(out / MASK_FILE, nifti.make_image(
         np.ones(grid.n_sources, np.uint8), grid, None, dtype=np.uint8,
         intent_name="source mask", descrip="groupsrc source mask", cal=(0, 1)))
     written = [write_contrast(c, analysis, out / c.name, adjacency, atlas)

@@ -33,7 +33,6 @@ byte-identical.
 
 from __future__ import annotations
 
-import gzip
 import json
 import os
 import shutil
@@ -43,13 +42,13 @@ from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
 
-import nibabel as nib
 import numpy as np
 import pandas as pd
 from scipy.signal import lfilter
 
 from ..atomic import write_bytes
-from ..sources.volume import Grid, TimeAxis
+from ..formats import nifti
+from ..sources import TimeAxis, VolumeGrid
 from .forward import helmet_sensors, lead_field
 from .inverse import InverseOperator, minimum_norm
 
@@ -113,7 +112,7 @@ def _size(cfg: dict, size: str) -> dict:
 
 # ------------------------------------------------------------------ template
 
-def template_grid(spacing_mm: float, brain_radius_mm: float) -> Grid:
+def template_grid(spacing_mm: float, brain_radius_mm: float) -> VolumeGrid:
     """Sphere-shaped source mask on an isotropic grid, sphere centre at the origin.
 
     Voxel centres sit at odd multiples of half the spacing, so no source lies
@@ -125,7 +124,7 @@ def template_grid(spacing_mm: float, brain_radius_mm: float) -> Grid:
     mask = x ** 2 + y ** 2 + z ** 2 <= brain_radius_mm ** 2
     affine = np.diag([spacing_mm, spacing_mm, spacing_mm, 1.0])
     affine[:3, 3] = centres[0]
-    return Grid.from_mask(mask, affine)
+    return VolumeGrid.from_mask(mask, affine)
 
 
 def time_axis(cfg: dict, size: str = "default") -> TimeAxis:
@@ -480,19 +479,7 @@ def truth_masks(model: DemoModel, participants: pd.DataFrame, effects: dict | No
 
 def _nifti_gz(data, affine, dt=None, t0=None, descrip="") -> bytes:
     """A gzip-compressed NIfTI-1 image as bytes (no timestamp: reproducible)."""
-    img = nib.Nifti1Image(np.asarray(data), affine)
-    hdr = img.header
-    img.set_sform(affine, code=2)        # 2 = aligned to another file's space
-    img.set_qform(affine, code=2)
-    if np.ndim(data) == 4:
-        hdr.set_xyzt_units("mm", "sec")
-        voxel = np.sqrt((np.asarray(affine)[:3, :3] ** 2).sum(axis=0))
-        hdr.set_zooms(tuple(float(v) for v in voxel) + (float(dt),))
-        hdr["toffset"] = float(t0)
-    else:
-        hdr.set_xyzt_units("mm")
-    hdr["descrip"] = descrip[:79].encode()
-    return gzip.compress(img.to_bytes(), compresslevel=6, mtime=0)
+    return nifti.gz_bytes(nifti.grid_image(data, affine, dt, t0, descrip))
 
 
 def _write(path: Path, payload) -> None:
@@ -612,8 +599,7 @@ def demo_truth(cohort_dir) -> dict:
     info = json.loads((root / "truth" / "truth.json").read_text(encoding="utf-8"))
     masks = {}
     for name in list(EFFECTS) + ["no_effect"]:
-        img = nib.load(str(root / "truth" / f"{name}.nii.gz"))
-        masks[name] = np.asanyarray(img.dataobj) > 0
+        masks[name] = nifti.read_volume(root / "truth" / f"{name}.nii.gz") > 0
     return {"masks": masks, "info": info}
 
 

@@ -1,9 +1,11 @@
-"""Template grid and time axis.
+"""A volume grid as source space: the voxels of a mask on a template grid.
 
-A :class:`Grid` describes the common template every participant's maps are
-resampled onto: the voxel shape, the voxel-to-world affine (mm), which voxels
-are sources (the mask) and how sources neighbour each other.  A
-:class:`TimeAxis` describes the sample times of the fourth NIfTI dimension.
+A :class:`VolumeGrid` describes the common template every participant's maps
+are resampled onto: the voxel shape, the voxel-to-world affine (mm), which
+voxels are sources (the mask) and how sources neighbour each other.  It
+honours the :class:`~groupsrc.sources.base.SourceSpace` contract; its
+volume-only parts (``ijk``, ``to_volume``, ``from_volume``, ``flat_index``)
+are for the volume file formats and figures.
 
 Sources are numbered in C order of their voxel indices (``numpy.nonzero`` of
 the mask), so source ``k`` is voxel ``grid.ijk[k]`` everywhere in groupsrc.
@@ -15,7 +17,10 @@ from dataclasses import dataclass, field
 from functools import lru_cache
 
 import numpy as np
+import pandas as pd
 from scipy import sparse
+
+from .base import SourceSpace
 
 #: Connectivity names accepted in the analysis file and their neighbour counts
 #: for an interior voxel (faces 6, faces + edges 18, faces + edges + corners 26).
@@ -24,7 +29,7 @@ NEIGHBOUR_COUNT = {"face": 6, "edge": 18, "vertex": 26}
 
 
 @dataclass(frozen=True, eq=False)
-class Grid:
+class VolumeGrid(SourceSpace):
     """A volumetric template grid restricted to a source mask.
 
     Parameters
@@ -40,7 +45,7 @@ class Grid:
     --------
     >>> import numpy as np
     >>> m = np.zeros((3, 3, 3), bool); m[1, 1, :] = True
-    >>> g = Grid.from_mask(m, np.eye(4))
+    >>> g = VolumeGrid.from_mask(m, np.eye(4))
     >>> g.n_sources, g.coords_mm[0].tolist()
     (3, [1.0, 1.0, 0.0])
     """
@@ -51,7 +56,7 @@ class Grid:
     ijk: np.ndarray = field(repr=False)
 
     @classmethod
-    def from_mask(cls, mask, affine) -> "Grid":
+    def from_mask(cls, mask, affine) -> "VolumeGrid":
         mask = np.asarray(mask).astype(bool)
         if mask.ndim != 3:
             raise ValueError(f"a grid mask must be 3D, got shape {mask.shape}")
@@ -61,9 +66,21 @@ class Grid:
         ijk = np.argwhere(mask)  # C order, same as np.nonzero
         return cls(tuple(int(s) for s in mask.shape), affine, mask, ijk)
 
+    kind = "volume"
+    neighbor_kinds = tuple(CONNECTIVITY)
+
     @property
     def n_sources(self) -> int:
         return int(self.ijk.shape[0])
+
+    def labels(self) -> pd.DataFrame:
+        """Voxel indices (i, j, k) of each source in the template volume."""
+        return pd.DataFrame(self.ijk, columns=["i", "j", "k"])
+
+    def describe(self) -> dict:
+        return {"kind": self.kind, "n_sources": self.n_sources, "shape": list(self.shape),
+                "affine": self.affine.tolist(),
+                "voxel_size_mm": [float(v) for v in self.voxel_size]}
 
     @property
     def voxel_size(self) -> np.ndarray:
@@ -95,12 +112,13 @@ class Grid:
         volume = np.asarray(volume)
         return volume[tuple(self.ijk.T)]
 
-    def adjacency(self, neighbors: str = "face") -> sparse.csr_matrix:
+    def adjacency(self, neighbors: str | None = None) -> sparse.csr_matrix:
         """Symmetric source x source neighbour matrix (no self loops).
 
-        ``neighbors`` is ``"face"`` (6-connectivity), ``"edge"`` (18) or
-        ``"vertex"`` (26), the usual 3D voxel connectivities.
+        ``neighbors`` is ``"face"`` (6-connectivity, the default), ``"edge"``
+        (18) or ``"vertex"`` (26), the usual 3D voxel connectivities.
         """
+        neighbors = neighbors or "face"
         if neighbors not in CONNECTIVITY:
             raise ValueError(
                 f"neighbors must be one of {sorted(CONNECTIVITY)}, got {neighbors!r}")
@@ -130,75 +148,6 @@ def _adjacency_cached(shape, ijk_bytes, n, neighbors):
     return sparse.csr_matrix((data, (rows, cols)), shape=(n, n))
 
 
-def _adjacency(grid: Grid, neighbors: str):
+def _adjacency(grid: VolumeGrid, neighbors: str):
     ijk = np.ascontiguousarray(grid.ijk, dtype=np.int64)
     return _adjacency_cached(grid.shape, ijk.tobytes(), ijk.shape[0], neighbors)
-
-
-#: NIfTI-1 xyzt_units time codes (nifti1.h): 8 = seconds, 16 = milliseconds,
-#: 24 = microseconds; the factor converts the header value to seconds.
-NIFTI_TIME_UNITS = {8: 1.0, 16: 1e-3, 24: 1e-6}
-
-
-@dataclass(frozen=True)
-class TimeAxis:
-    """Sample times of the fourth dimension: ``t0 + dt * arange(n)`` seconds.
-
-    Examples
-    --------
-    >>> TimeAxis(-0.1, 0.01, 3).times.round(3).tolist()
-    [-0.1, -0.09, -0.08]
-    """
-
-    t0: float
-    dt: float
-    n: int
-
-    @property
-    def times(self) -> np.ndarray:
-        return self.t0 + self.dt * np.arange(self.n)
-
-    def window(self, start: float | None, stop: float | None) -> np.ndarray:
-        """Indices of samples with start <= t <= stop (half a sample tolerance)."""
-        t = self.times
-        tol = 1e-6 * max(abs(self.dt), 1e-12)
-        keep = np.ones(self.n, bool)
-        if start is not None:
-            keep &= t >= start - tol
-        if stop is not None:
-            keep &= t <= stop + tol
-        return np.nonzero(keep)[0]
-
-    def subset(self, index) -> "TimeAxis":
-        index = np.asarray(index)
-        if index.size == 0:
-            raise ValueError("empty time window")
-        if index.size > 1 and not np.all(np.diff(index) == 1):
-            raise ValueError("a time subset must be contiguous")
-        t0 = float(self.times[index[0]])
-        # drop floating-point dust such as -1e-17 s (it would print as "-0 ms")
-        t0 = round(t0 / self.dt) * self.dt if abs(t0 / self.dt - round(t0 / self.dt)) < 1e-6 else t0
-        return TimeAxis(t0 + 0.0, self.dt, int(index.size))
-
-    def close_to(self, other: "TimeAxis", rtol: float = 1e-4) -> bool:
-        scale = max(abs(self.dt), 1e-12)
-        return (self.n == other.n and abs(self.dt - other.dt) <= rtol * scale
-                and abs(self.t0 - other.t0) <= rtol * scale)
-
-    @classmethod
-    def from_header(cls, header, n: int | None = None) -> "TimeAxis":
-        """Read the time axis from a NIfTI-1/2 header.
-
-        pixdim[4] is the sampling interval and toffset the first sample time,
-        both in the time unit of xyzt_units (NIfTI-1 standard, nifti1.h).  An
-        unset time unit (0) is taken as seconds.
-        """
-        _, tunit = header.get_xyzt_units()
-        code = int(header["xyzt_units"]) & 0x38
-        factor = NIFTI_TIME_UNITS.get(code, 1.0)
-        dt = float(header["pixdim"][4]) * factor
-        t0 = float(header["toffset"]) * factor
-        if n is None:
-            shape = header.get_data_shape()
-            n = int(shape[3]) if len(shape) > 3 else 1
-        return cls(t0, dt, int(n))

@@ -11,7 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from ..sources.volume import Grid, TimeAxis
+from ..sources import TimeAxis, VolumeGrid
 
 
 @dataclass
@@ -91,7 +91,7 @@ class AnalysisResult:
     """Everything a run produced, before writing."""
 
     title: str
-    grid: Grid
+    grid: VolumeGrid
     time_axis: TimeAxis
     contrasts: list
     participants: pd.DataFrame

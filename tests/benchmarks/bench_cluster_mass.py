@@ -19,7 +19,7 @@ import time
 import numpy as np
 from scipy import ndimage, stats
 
-from groupsrc.sources.volume import Grid
+from groupsrc.sources import VolumeGrid
 from groupsrc.stats.inference import run_inference
 
 
@@ -27,7 +27,7 @@ def workload(seed=0):
     box = 30
     c = (np.indices((box, box, box)) - (box - 1) / 2.0)
     mask = (c ** 2).sum(0) <= 13.4 ** 2
-    grid = Grid.from_mask(mask, np.eye(4))
+    grid = VolumeGrid.from_mask(mask, np.eye(4))
     rng = np.random.default_rng(seed)
     n, T = 40, 125
     Y = rng.standard_normal((n, grid.n_sources, T), dtype=np.float32)
