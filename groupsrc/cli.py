@@ -196,8 +196,7 @@ def cmd_check(analysis: Path, as_json=False) -> int:
 
 def cmd_demo(args, command) -> int:
     from .outputs.folder import check_target, sweep_stale
-    from .simulate import build_demo_cohort
-    from .simulate.scenario import check_cohort_target
+    from .simulate import build_demo_cohort, check_cohort_target
     out = args.out.resolve()
     cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
     size = "small" if args.small else "default"

@@ -8,8 +8,8 @@
   participants, generators with known effects, noise, NIfTI maps and truth.
 """
 
-from .scenario import (build_demo_cohort, demo_truth, participants_table, scenario_settings,
-                       simulate, template_grid)
+from .scenario import (build_demo_cohort, check_cohort_target, demo_truth, participants_table,
+                       scenario_settings, simulate, template_grid)
 
-__all__ = ["build_demo_cohort", "demo_truth", "participants_table", "scenario_settings",
+__all__ = ["build_demo_cohort", "check_cohort_target", "demo_truth", "participants_table", "scenario_settings",
            "simulate", "template_grid"]
