@@ -117,44 +117,38 @@ def _check_reduced_range(cohort, plans, settings, problems):
 
 def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None):
     """Stages 2-5 on arrays: returns an AnalysisResult."""
-    from .stats.inference import run_inference
+    from .stats.corrections import TfceOptions
+    from .stats.inference import Execution, InferenceSpec, infer
+    from .stats.kernels import OLSKernel
+    from .stats.reduction import reduce_maps
 
     s, cohort, design = prep.settings, prep.cohort, prep.design
     inf = dict(s.inference)
-    if resamples is not None:
-        inf["resamples"] = int(resamples)
-    if seed is not None:
-        inf["seed"] = int(seed)
+    inf.update({k: int(v) for k, v in (("resamples", resamples), ("seed", seed))
+                if v is not None})
     within_col = s.model.get("within")
     conditions = sorted(map(str, cohort.maps[within_col].unique())) if within_col else []
     participants = design.participants
-    taxis = cohort.time_axis.subset(prep.time_index)
+    blocks = (cohort.participants.loc[participants, inf["blocks"]].astype(str).to_numpy()
+              if inf.get("blocks") else None)
+    tf = inf["tfce"]
+    spec = InferenceSpec(
+        correction=inf["correction"], n_resamples=inf["resamples"], seed=inf["seed"],
+        forming_p=inf["forming_p"], tails=inf["tails"], alpha=inf["alpha"], blocks=blocks,
+        tfce=TfceOptions(tf["extent_power"], tf["height_power"], tf["steps"]))
+    execution = Execution(n_jobs=workers, progress=progress or False)
     adjacency = cohort.grid.adjacency(inf["neighbors"])
-    blocks = None
-    if inf.get("blocks"):
-        blocks = cohort.participants.loc[participants, inf["blocks"]].astype(str).to_numpy()
+    samples = slice(int(prep.time_index[0]), int(prep.time_index[-1]) + 1)
     results, timings = [], {}
-    n_maps = cohort.n_maps
-    S = cohort.grid.n_sources
-    t_lo, t_hi = int(prep.time_index[0]), int(prep.time_index[-1]) + 1
     for plan in prep.plans:
         t0 = time.perf_counter()
         W = reduction_matrix(cohort.maps, participants, within_col, plan.within, conditions)
-        data = np.empty((len(participants), S, t_hi - t_lo), dtype=np.float32)
-        # chunk over sources so the memmap is streamed, float64 accumulation
-        step = max(1, int(2e7 // max(1, n_maps * (t_hi - t_lo))))
-        for a in range(0, S, step):
-            b = min(S, a + step)
-            block = np.asarray(cohort.Y[:, a:b, t_lo:t_hi], dtype=np.float64)
-            data[:, a:b, :] = np.tensordot(W, block, axes=(1, 0)).astype(np.float32)
-        inference = run_inference(
-            data, design.X.to_numpy(), plan.weights, adjacency,
-            scheme=plan.scheme, correction=inf["correction"], n_resamples=inf["resamples"],
-            seed=inf["seed"], forming_p=inf["forming_p"], tails=inf["tails"],
-            alpha=inf["alpha"], blocks=blocks, n_jobs=workers, progress=progress,
-            tfce_e=inf["tfce_e"], tfce_h=inf["tfce_h"], tfce_steps=inf["tfce_steps"])
+        data = reduce_maps(cohort.Y, W, samples)
+        kernel = OLSKernel(data.reshape(len(participants), -1), design.X.to_numpy(),
+                           plan.weights, scheme=plan.scheme)
         results.append(ContrastResult(
-            name=plan.name, description=plan.description, inference=inference, data=data,
+            name=plan.name, description=plan.description,
+            inference=infer(kernel, adjacency, spec, execution), data=data,
             participants=participants, design=design.X, weights=plan.weights,
             within=plan.within))
         timings[plan.name] = round(time.perf_counter() - t0, 3)
@@ -163,7 +157,8 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     settings_dict["check_summary"] = prep.summary
     if cohort.atlas is not None:
         settings_dict["atlas"] = cohort.atlas
-    return AnalysisResult(title=s.title, grid=cohort.grid, time_axis=taxis, contrasts=results,
+    return AnalysisResult(title=s.title, grid=cohort.grid,
+                          time_axis=cohort.time_axis.subset(prep.time_index), contrasts=results,
                           participants=cohort.participants, maps=cohort.maps,
                           settings=settings_dict, timings=timings)
 

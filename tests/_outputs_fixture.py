@@ -16,7 +16,8 @@ import pandas as pd
 from scipy import ndimage, stats
 
 from groupsrc.sources import TimeAxis, VolumeGrid
-from groupsrc.stats.results import AnalysisResult, ContrastResult, InferenceResult
+from groupsrc.stats.results import (AnalysisResult, ContrastResult, InferenceResult,
+                                    ResamplingRecord)
 
 SHAPE = (11, 13, 9)
 VOXEL_MM = 5.0
@@ -163,7 +164,13 @@ def _contrast(name, desc, kind, df, stat, est, eff, se, p, grid, data, ids, X, w
                           cluster_labels=labels, clusters=table, null=null, threshold=thr,
                           n_resamples=m, exact=False,
                           scheme="sign-flip" if kind == "t" else "permutation",
-                          correction="cluster-mass", tails="two", extra={"seed": 11})
+                          correction="cluster-mass", tails="two",
+                          cluster_rule="points beyond the cluster-forming threshold",
+                          resampling=ResamplingRecord(
+                              seed=11, kind="sign-flip" if kind == "t" else "permutation",
+                              n_resamples=m, exact=False, batch_size=m, freedman_lane=False,
+                              critical_value=float(np.quantile(null_max, 0.95,
+                                                               method="higher"))))
     return ContrastResult(name=name, description=desc, inference=inf, data=data,
                           participants=ids, design=X, weights=w,
                           within={"deviant": 1, "standard": -1})

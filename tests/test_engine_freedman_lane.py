@@ -70,7 +70,7 @@ def test_permutation_with_covariate_correlated_with_group():
     Yin, Y = _as_engine_input(0.2 * age[:, None] + rng.standard_normal((n, 3)))
     r = run_inference(Yin, X, c, sparse.csr_matrix((3, 3)), scheme="permutation",
                       correction="max-stat", n_resamples=1000, seed=0)
-    assert r.exact and r.n_resamples == 720 and r.extra["freedman_lane"]
+    assert r.exact and r.n_resamples == 720 and r.resampling.freedman_lane
 
     def orders(R):
         for perm in itertools.permutations(range(n)):
@@ -96,7 +96,7 @@ def test_sign_flip_with_covariate():
     Yin, Y = _as_engine_input(0.3 + 1.5 * cov[:, None] + rng.standard_normal((n, 3)))
     r = run_inference(Yin, X, c, sparse.csr_matrix((3, 3)), scheme="sign-flip",
                       correction="max-stat", n_resamples=1000, seed=0)
-    assert r.exact and r.n_resamples == 256 and r.extra["freedman_lane"]
+    assert r.exact and r.n_resamples == 256 and r.resampling.freedman_lane
 
     def flips(R):
         for s in itertools.product([1.0, -1.0], repeat=n):

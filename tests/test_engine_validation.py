@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from scipy import sparse
 
+from groupsrc.stats.corrections import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 
@@ -17,6 +18,8 @@ def _call(**kw):
     Y = np.random.default_rng(0).standard_normal((6, 2, 3)).astype(np.float32)
     args = dict(scheme="sign-flip", correction="tfce", n_resamples=8, seed=1)
     args.update(kw)
+    if isinstance(args.get("tfce"), dict):
+        args["tfce"] = TfceOptions(**args["tfce"])
     return run_inference(Y, np.ones((6, 1)), [1.0], sparse.csr_matrix((2, 2)), **args)
 
 
@@ -25,12 +28,15 @@ def test_valid_parameters_run():
 
 
 @pytest.mark.parametrize("kw,match", [
-    ({"tfce_e": 0.0}, "extent exponent E"), ({"tfce_e": -0.5}, "extent exponent E"),
-    ({"tfce_h": 0}, "height exponent H"), ({"tfce_h": -2.0}, "height exponent H"),
-    ({"tfce_e": float("nan")}, "extent exponent E"), ({"tfce_h": float("inf")}, "height exponent H"),
-    ({"tfce_steps": 0}, "steps"), ({"tfce_dh": -0.1}, "dh"),
+    ({"tfce": {"extent_power": 0.0}}, "extent exponent E"),
+    ({"tfce": {"extent_power": -0.5}}, "extent exponent E"),
+    ({"tfce": {"height_power": 0}}, "height exponent H"),
+    ({"tfce": {"height_power": -2.0}}, "height exponent H"),
+    ({"tfce": {"extent_power": float("nan")}}, "extent exponent E"),
+    ({"tfce": {"height_power": float("inf")}}, "height exponent H"),
+    ({"tfce": {"steps": 0}}, "steps"), ({"tfce": {"step": -0.1}}, "dh"),
     # refused even when the correction does not use them: the caller passed them
-    ({"tfce_e": -1.0, "correction": "max-stat"}, "extent exponent E"),
+    ({"tfce": {"extent_power": -1.0}, "correction": "max-stat"}, "extent exponent E"),
     ({"seed": -1}, "seed"), ({"seed": -20261201, "correction": "fdr"}, "seed"),
     ({"seed": 1.5}, "seed"), ({"seed": "7"}, "seed"), ({"seed": True}, "seed")])
 def test_invalid_parameters_raise_value_error(kw, match):
@@ -41,4 +47,4 @@ def test_invalid_parameters_raise_value_error(kw, match):
 
 def test_seed_none_draws_and_records_a_seed():
     r = _call(seed=None, n_resamples=200, scheme="sign-flip", correction="max-stat")
-    assert isinstance(r.extra["seed"], int) and r.extra["seed"] >= 0
+    assert isinstance(r.resampling.seed, int) and r.resampling.seed >= 0

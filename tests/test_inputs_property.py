@@ -149,6 +149,11 @@ def test_random_settings_values_never_crash_or_touch_inputs(cohort, capsys, data
             doc[key] = value
         elif sec == "contrasts":
             doc["contrasts"][0][key] = value
+        elif sec == "inference.tfce":
+            tfce = doc.setdefault("inference", {}).get("tfce")
+            if not isinstance(tfce, dict):
+                tfce = doc["inference"]["tfce"] = {}
+            tfce[key] = value
         else:
             doc.setdefault(sec, {})[key] = value
     try:

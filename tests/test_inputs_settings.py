@@ -8,6 +8,7 @@ calls) so that a new engine check without a matching settings check is
 noticed.
 """
 
+import dataclasses
 import inspect
 import math
 
@@ -18,7 +19,8 @@ from scipy import sparse
 from conftest import copy_cohort
 from groupsrc.stats import inference as permutation
 from groupsrc.cli import main
-from groupsrc.inputs.settings import SCHEMA, VALUE_RULES, read_settings
+from groupsrc.inputs.settings import SCHEMA, read_settings
+from groupsrc.stats.corrections import TfceOptions
 from test_check import assert_refused, run_check
 
 
@@ -52,12 +54,34 @@ def test_seed_out_of_range_is_refused_by_check_and_run(cohort_copy, tmp_path, ca
                    out=tmp_path / "out")
 
 
-@pytest.mark.parametrize("key,value", [("tfce_e", "0"), ("tfce_e", "-0.5"), ("tfce_h", "0.0"),
-                                       ("tfce_h", "-2"), ("tfce_e", "nan"), ("tfce_h", "inf")])
+def _tfce(analysis, key, value):
+    """Set a key of the [inference.tfce] table (appended at the end of the file)."""
+    body = analysis.read_text()
+    if "[inference.tfce]" not in body:
+        body += "\n[inference.tfce]\n"
+    analysis.write_text(body.replace("[inference.tfce]\n", f"[inference.tfce]\n{key} = {value}\n", 1))
+
+
+@pytest.mark.parametrize("key,value", [("extent_power", "0"), ("extent_power", "-0.5"),
+                                       ("height_power", "0.0"), ("height_power", "-2"),
+                                       ("extent_power", "nan"), ("height_power", "inf")])
 def test_non_positive_tfce_exponent_is_refused(cohort_copy, tmp_path, capsys, key, value):
     _inference(cohort_copy, "correction", '"tfce"')
-    _inference(cohort_copy, key, value)
-    assert_refused(cohort_copy, capsys, [f"[inference] {key}", "positive number"],
+    _tfce(cohort_copy, key, value)
+    assert_refused(cohort_copy, capsys, [f"[inference.tfce] {key}", "positive number"],
+                   out=tmp_path / "out")
+
+
+def test_too_few_tfce_steps_are_refused(cohort_copy, tmp_path, capsys):
+    _tfce(cohort_copy, "steps", "3")
+    assert_refused(cohort_copy, capsys, ["[inference.tfce] steps", "at least 10"],
+                   out=tmp_path / "out")
+
+
+def test_old_tfce_spellings_are_unknown_keys(cohort_copy, tmp_path, capsys):
+    # the TFCE options are the [inference.tfce] table; other spellings are unknown keys
+    _inference(cohort_copy, "tfce_steps", "100")
+    assert_refused(cohort_copy, capsys, ["key 'tfce_steps'", "unknown key", "tfce"],
                    out=tmp_path / "out")
 
 
@@ -76,8 +100,7 @@ def test_time_window_outside_the_data_is_refused(cohort_copy, tmp_path, capsys):
 
 
 @pytest.mark.parametrize("key,value", [("forming_p", "nan"), ("alpha", "1.0"),
-                                       ("resamples", "0"), ("resamples", "1000000001"),
-                                       ("tfce_steps", "3")])
+                                       ("resamples", "0"), ("resamples", "1000000001")])
 def test_other_inference_values_are_refused(cohort_copy, tmp_path, capsys, key, value):
     _inference(cohort_copy, key, value)
     assert_refused(cohort_copy, capsys, [f"[inference] {key}"], out=tmp_path / "out")
@@ -158,43 +181,50 @@ def test_analysis_file_that_is_a_folder(tmp_path, capsys):
 # walking the engine's validations
 # ---------------------------------------------------------------------------
 
-#: Every parameter of the inference engine, and who guarantees a valid value.
-#: A settings key means: the analysis file supplies it and settings.py checks it
-#: (bad values in ENGINE_BAD below).  Anything else is supplied by code, not by
-#: the user, and is named with the module that builds it.  A new engine
-#: parameter fails test_every_engine_parameter_is_accounted_for until it is
-#: placed here (and, if it comes from the analysis file, checked in settings).
+#: Every parameter of the inference engine, and who guarantees a valid value: the
+#: fields of InferenceSpec, TfceOptions and Execution and the arguments of
+#: run_inference.  A settings key ("section key") means: the analysis file supplies
+#: it and settings.py checks it (bad values in ENGINE_BAD below).  Anything else is
+#: supplied by code, not by the user, and is named with the module that builds it.
+#: A new engine parameter fails test_every_engine_parameter_is_accounted_for until
+#: it is placed here (and, if it comes from the analysis file, checked in settings).
 ENGINE_PARAMETERS = {
-    "correction": "correction", "n_resamples": "resamples", "seed": "seed",
-    "forming_p": "forming_p", "tails": "tails", "alpha": "alpha",
-    "tfce_e": "tfce_e", "tfce_h": "tfce_h", "tfce_steps": "tfce_steps",
+    "correction": "inference correction", "n_resamples": "inference resamples",
+    "seed": "inference seed", "forming_p": "inference forming_p", "tails": "inference tails",
+    "alpha": "inference alpha", "extent_power": "inference.tfce extent_power",
+    "height_power": "inference.tfce height_power", "steps": "inference.tfce steps",
+    "tfce": "code: pipeline builds TfceOptions from [inference.tfce]",
     "Y": "code: cohort (NaN/Inf in maps are problems) + design.reduction_matrix",
     "X": "code: design.build_design (rank, df checked)",
     "contrast": "code: design.plan_contrast (estimability checked)",
     "scheme": "code: design.plan_contrast",
-    "adjacency": "code: grid.adjacency from [inference] neighbors (a choice)",
+    "adjacency": "code: source space adjacency from [inference] neighbors (a choice)",
     "blocks": "code: cohort (column exists, no missing values)",
     "nuisance": "code: default", "batch_size": "code: default", "n_jobs": "code: cli --workers",
-    "progress": "code: cli", "tfce_dh": "code: default", "backend": "code: default",
+    "progress": "code: cli", "step": "code: default", "backend": "code: default",
+    "options": "code: the fields above",
 }
 
 #: Values the engine refuses, per settings key (TOML text, Python value).
 ENGINE_BAD = {
-    "correction": [('"clustermass"', "clustermass")],
-    "tails": [('"both"', "both")],
-    "resamples": [("0", 0), ("-5", -5)],
-    "seed": [("-1", -1), ('"abc"', "abc"), ("1.5", 1.5)],
-    "forming_p": [("0", 0.0), ("1", 1.0), ("1.5", 1.5), ("nan", math.nan)],
-    "alpha": [("0.0", 0.0), ("1", 1.0), ("-0.05", -0.05)],
-    "tfce_e": [("0", 0.0), ("-0.5", -0.5), ("nan", math.nan)],
-    "tfce_h": [("0", 0.0), ("-2.0", -2.0), ("nan", math.nan)],
-    "tfce_steps": [("0", 0), ("-1", -1)],
+    "inference correction": [('"clustermass"', "clustermass")],
+    "inference tails": [('"both"', "both")],
+    "inference resamples": [("0", 0), ("-5", -5)],
+    "inference seed": [("-1", -1), ('"abc"', "abc"), ("1.5", 1.5)],
+    "inference forming_p": [("0", 0.0), ("1", 1.0), ("1.5", 1.5), ("nan", math.nan)],
+    "inference alpha": [("0.0", 0.0), ("1", 1.0), ("-0.05", -0.05)],
+    "inference.tfce extent_power": [("0", 0.0), ("-0.5", -0.5), ("nan", math.nan)],
+    "inference.tfce height_power": [("0", 0.0), ("-2.0", -2.0), ("nan", math.nan)],
+    "inference.tfce steps": [("0", 0), ("-1", -1)],
 }
 
 #: Boundary values settings accepts; the engine must accept them too.
-ENGINE_GOOD = {"seed": [0, 2 ** 63 - 1], "resamples": [1, 64], "tfce_steps": [10],
-               "forming_p": [1e-12, 0.999], "alpha": [1e-12, 0.999],
-               "tfce_e": [1e-3], "tfce_h": [1e-3]}
+ENGINE_GOOD = {"inference seed": [0, 2 ** 63 - 1], "inference resamples": [1, 64],
+               "inference.tfce steps": [10], "inference forming_p": [1e-12, 0.999],
+               "inference alpha": [1e-12, 0.999], "inference.tfce extent_power": [1e-3],
+               "inference.tfce height_power": [1e-3]}
+
+TFCE_FIELDS = {f.name for f in dataclasses.fields(TfceOptions)}
 
 
 def _engine(**overrides):
@@ -202,53 +232,70 @@ def _engine(**overrides):
     rng = np.random.default_rng(0)
     Y = rng.standard_normal((6, 4, 3)).astype(np.float32)
     adjacency = sparse.diags([np.ones(3), np.ones(3)], [-1, 1], shape=(4, 4)).tocsr()
-    kwargs = dict(scheme="sign-flip", correction="tfce" if any(k.startswith("tfce")
-                                                               for k in overrides) else "max-stat",
+    tfce = {k: overrides.pop(k) for k in list(overrides) if k in TFCE_FIELDS}
+    kwargs = dict(scheme="sign-flip", correction="tfce" if tfce else "max-stat",
                   n_resamples=8, seed=1)
     kwargs.update(overrides)
+    if tfce:
+        kwargs["tfce"] = TfceOptions(**tfce)
     return permutation.run_inference(Y, np.ones((6, 1)), np.ones(1), adjacency, **kwargs)
 
 
-def _settings_problems(tmp_path, key, text):
+def _settings_problems(tmp_path, source, text):
+    section, key = source.split()
     p = tmp_path / f"walk_{key}.toml"
     p.write_text('[cohort]\nparticipants = "p.tsv"\nmaps = "m.tsv"\n[model]\nwithin = "c"\n'
                  '[[contrasts]]\nname = "x"\nwithin = {a = 1, b = -1}\n'
-                 f'[inference]\n{key} = {text}\n')
+                 f'[{section}]\n{key} = {text}\n')
     return read_settings(p)[1].format()
 
 
+def _engine_parameters():
+    names = set(inspect.signature(permutation.run_inference).parameters)
+    for cls in (permutation.InferenceSpec, permutation.Execution, TfceOptions):
+        names |= {f.name for f in dataclasses.fields(cls)}
+    return names
+
+
 def test_every_engine_parameter_is_accounted_for():
-    params = set(inspect.signature(permutation.run_inference).parameters)
+    params = _engine_parameters()
     assert params == set(ENGINE_PARAMETERS), (
         f"unclassified engine parameters: {sorted(params - set(ENGINE_PARAMETERS))}; "
         f"stale entries: {sorted(set(ENGINE_PARAMETERS) - params)}")
     for param, source in ENGINE_PARAMETERS.items():
         if not source.startswith("code:"):
-            assert source in SCHEMA["inference"], f"{param} -> unknown settings key {source}"
-            assert source in ENGINE_BAD, f"no bad value tried for [inference] {source}"
+            section, key = source.split()
+            assert key in SCHEMA[section], f"{param} -> unknown settings key {source}"
+            assert source in ENGINE_BAD, f"no bad value tried for [{section}] {key}"
 
 
 def test_every_value_rule_key_is_tried():
-    # each [inference] value rule guards an engine parameter (time_window: pipeline.prepare)
-    assert set(VALUE_RULES["inference"]) - {"time_window"} <= set(ENGINE_BAD)
+    # each checked [inference] key guards an engine parameter (time_window: pipeline.prepare)
+    checked = {f"{sec} {k}" for sec in ("inference", "inference.tfce")
+               for k, spec in SCHEMA[sec].items()
+               if spec.check is not None or spec.choices is not None}
+    assert checked - {"inference time_window", "inference neighbors"} <= set(ENGINE_BAD)
 
 
-@pytest.mark.parametrize("key,text,value",
+@pytest.mark.parametrize("source,text,value",
                          [(k, t, v) for k, vals in ENGINE_BAD.items() for t, v in vals],
                          ids=lambda x: str(x))
-def test_engine_refusal_is_caught_by_settings(tmp_path, key, text, value):
-    param = next(p for p, s in ENGINE_PARAMETERS.items() if s == key)
+def test_engine_refusal_is_caught_by_settings(tmp_path, source, text, value):
+    param = next(p for p, s in ENGINE_PARAMETERS.items() if s == source)
     with pytest.raises((ValueError, TypeError)):
         _engine(**{param: value})
-    problems = _settings_problems(tmp_path, key, text)
-    assert f"[inference] {key}" in problems, problems
+    problems = _settings_problems(tmp_path, source, text)
+    section, key = source.split()
+    assert f"[{section}] {key}" in problems, problems
 
 
-@pytest.mark.parametrize("key,value", [(k, v) for k, vals in ENGINE_GOOD.items() for v in vals],
+@pytest.mark.parametrize("source,value",
+                         [(k, v) for k, vals in ENGINE_GOOD.items() for v in vals],
                          ids=lambda x: str(x))
-def test_values_settings_accept_the_engine_accepts(tmp_path, key, value):
-    assert f"[inference] {key}" not in _settings_problems(tmp_path, key, repr(value))
-    param = next(p for p, s in ENGINE_PARAMETERS.items() if s == key)
+def test_values_settings_accept_the_engine_accepts(tmp_path, source, value):
+    section, key = source.split()
+    assert f"[{section}] {key}" not in _settings_problems(tmp_path, source, repr(value))
+    param = next(p for p, s in ENGINE_PARAMETERS.items() if s == source)
     _engine(**{param: value})
 
 

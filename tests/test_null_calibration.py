@@ -25,6 +25,7 @@ import pytest
 from scipy import ndimage, stats
 
 from groupsrc.sources import VolumeGrid
+from groupsrc.stats.corrections import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 ALPHA = 0.05
@@ -46,7 +47,7 @@ def _rejections(correction, n_datasets, n_resamples, seed, **grid):
         r = run_inference(Y, np.ones((N, 1)), [1.0], grid.adjacency("face"),
                           scheme="sign-flip", correction=correction,
                           n_resamples=n_resamples, seed=1000 + k, forming_p=0.01,
-                          tfce_steps=25)
+                          tfce=TfceOptions(steps=25))
         hits += bool(np.nanmin(r.p_corrected) <= ALPHA)
     return hits
 

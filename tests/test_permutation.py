@@ -21,6 +21,7 @@ from scipy import ndimage, sparse, stats
 from statsmodels.stats.multitest import multipletests
 
 from groupsrc.sources import VolumeGrid
+from groupsrc.stats.corrections import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 STRUCT4 = ndimage.generate_binary_structure(4, 1)
@@ -229,7 +230,7 @@ def test_student_sleep_data():
 # batches smaller, larger and not multiples of the product block, the
 # pipelined thread mode and joblib process workers ("loky")
 SPLITS = [(1, 1, "threads"), (7, 1, "threads"), (150, 1, "threads"), (1, 2, "threads"),
-          (7, 2, "threads"), (64, 2, "threads"), (7, 2, "loky"), (150, 2, "loky")]
+          (7, 2, "threads"), (64, 2, "threads"), (7, 2, "processes"), (150, 2, "processes")]
 
 
 def _assert_same_null(r, ref, what):
@@ -271,8 +272,8 @@ def test_seed_determinism_freedman_lane_and_f():
     C = np.array([[1.0, -1, 0, 0], [0, 1, -1, 0]])
     kw = dict(scheme="permutation", correction="cluster-mass", n_resamples=100, seed=7)
     ref = run_inference(Y, X, C, grid.adjacency("face"), batch_size=64, **kw)
-    assert ref.extra["freedman_lane"] and ref.kind == "F"
-    for bs, nj, backend in [(1, 1, "threads"), (9, 2, "threads"), (33, 2, "loky")]:
+    assert ref.resampling.freedman_lane and ref.kind == "F"
+    for bs, nj, backend in [(1, 1, "threads"), (9, 2, "threads"), (33, 2, "processes")]:
         r = run_inference(Y, X, C, grid.adjacency("face"), batch_size=bs, n_jobs=nj,
                           backend=backend, **kw)
         _assert_same_null(r, ref, f"batch {bs}, {nj} jobs, {backend}")
@@ -419,27 +420,27 @@ def test_exact_sign_flip_tfce_equals_brute_force():
     obs = np.abs(_tfce_reference(grid.to_volume(_t1(y64)), steps))
     ref = (maxima[None, None, None, None] >= obs[..., None] * (1 - 1e-6)).mean(-1)
     r = run_inference(Y, np.ones((6, 1)), [1.0], adj, scheme="sign-flip", correction="tfce",
-                      n_resamples=64, seed=0, tfce_steps=50)
+                      n_resamples=64, seed=0, tfce=TfceOptions(steps=50))
     assert r.exact
     assert np.any((ref > 1 / 64) & (ref < 1))     # a check with room to fail
     np.testing.assert_allclose(grid.to_volume(r.p_corrected), ref)
     np.testing.assert_allclose(np.sort(np.maximum(r.null.max_pos, -r.null.max_neg)),
                                np.sort(maxima), rtol=1e-5)
-    np.testing.assert_allclose(grid.to_volume(r.extra["tfce_observed"]),
+    np.testing.assert_allclose(grid.to_volume(r.enhanced),
                                _tfce_reference(grid.to_volume(_t1(y64)), steps),
                                rtol=1e-5, atol=1e-6 * obs.max())
 
 
 @pytest.mark.parametrize("correction", ["cluster-mass", "cluster-extent", "tfce"])
 def test_map_by_map_and_stacked_labelling_agree(correction, monkeypatch):
-    import groupsrc.stats.inference as engine
+    import groupsrc.stats.corrections as corrections
     grid, Y = _small_problem(n=10, seed=6)
     kw = dict(scheme="sign-flip", correction=correction, n_resamples=60, seed=3)
     stacked = run_inference(Y, np.ones((10, 1)), [1.0], grid.adjacency("face"), **kw)
-    monkeypatch.setattr(engine, "_STACK_FEATURES", 1)
+    monkeypatch.setattr(corrections, "STACK_FEATURES", 1)
     single = run_inference(Y, np.ones((10, 1)), [1.0], grid.adjacency("face"), **kw)
     # labelling several maps at once must not change a single bit (the
-    # reproducibility rule in groupsrc.stats.inference)
+    # reproducibility rule in groupsrc.stats.kernels)
     for col in ("max_stat", "max_pos", "max_neg"):
         np.testing.assert_array_equal(stacked.null[col], single.null[col])
     np.testing.assert_array_equal(stacked.p_corrected, single.p_corrected)

@@ -28,8 +28,11 @@ def test_defaults(tmp_path):
     p.write_text('[cohort]\nparticipants = "p.tsv"\nmaps = "m.tsv"\n'
                  '[[contrasts]]\nname = "x"\nwithin = {a = 1, b = -1}\n[model]\nwithin = "c"\n')
     s = parse_settings(p)
-    for key, (_, default, _) in SCHEMA["inference"].items():
-        assert s.inference[key] == default
+    for key, spec in SCHEMA["inference"].items():
+        if key != "tfce":
+            assert s.inference[key] == spec.default
+    for key, spec in SCHEMA["inference.tfce"].items():
+        assert s.inference["tfce"][key] == spec.default
     assert s.model["between"] == "1" and s.model["mixed"] is False
     assert s.resolve("p.tsv") == tmp_path / "p.tsv"
 

@@ -76,57 +76,12 @@ def read_text(path) -> str:
 CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
 TAILS = ("two", "greater", "less")
 NEIGHBORS = ("face", "edge", "vertex")
-
-# key: (type(s), default, description)
-SCHEMA = {
-    "": {
-        "title": (str, "Untitled analysis", "title shown in the report"),
-    },
-    "cohort": {
-        "participants": (str, None, "participants table (TSV), required"),
-        "maps": (str, None, "maps table (TSV), required"),
-        "mask": (str, None, "source mask NIfTI; default: sources finite in every map"),
-        "time_start": ((int, float), None, "first sample time (s), overrides the NIfTI header"),
-        "sampling_interval": ((int, float), None, "sampling interval (s), overrides the header"),
-        "cache": (str, None, "folder for the loading cache; default ~/.cache/groupsrc"),
-        "atlas": (str, None, "labelled atlas NIfTI on the template grid (integer labels), optional"),
-        "atlas_labels": (str, None, "TSV with columns index and name for the atlas labels"),
-    },
-    "model": {
-        "between": (str, "1", "Wilkinson right-hand side over participants columns"),
-        "within": (str, None, "maps-table column holding the condition, optional"),
-        "mixed": (bool, False, "mass-univariate mixed model (not yet available)"),
-    },
-    "contrasts": {
-        "name": (str, None, "contrast name (letters, digits, _ and -)"),
-        "description": (str, "", "free text for the report"),
-        "within": (dict, None, "weights over conditions, e.g. {rare = 1, frequent = -1}"),
-        "compare": (dict, None, "{factor = [level_a, level_b, ...]}"),
-        "slope": (str, None, "numeric participants column"),
-        "weights": (dict, None, "raw weights over design-matrix coefficient names"),
-    },
-    "inference": {
-        "correction": (str, "cluster-mass", " | ".join(CORRECTIONS)),
-        "resamples": (int, 5000, "number of rearrangements, identity included"),
-        "seed": (int, 20261201, "random seed for the rearrangements"),
-        "forming_p": ((int, float), 0.001, "cluster-forming threshold as a p-value"),
-        "alpha": ((int, float), 0.05, "family-wise (or FDR) level"),
-        "tails": (str, "two", " | ".join(TAILS)),
-        "time_window": (list, None, "[start, stop] in seconds; default: all samples"),
-        "neighbors": (str, "face", " | ".join(NEIGHBORS)),
-        "blocks": (str, None, "participants column defining exchangeability blocks"),
-        "tfce_e": ((int, float), 0.5, "TFCE extent exponent E"),
-        "tfce_h": ((int, float), 2.0, "TFCE height exponent H"),
-        "tfce_steps": (int, 100, "TFCE number of height steps"),
-    },
-}
-
-
 #: Largest seed + 1: seeds are stored as signed 64-bit integers (TOML 1.0 integers).
 SEED_LIMIT = 2 ** 63
 #: Most rearrangements accepted: the engine holds the whole set in memory (one row of
 #: n indices per rearrangement), and p-values are resolved to 1 / resamples.
 MAX_RESAMPLES = 1_000_000
+NUMBER = (int, float)
 
 
 def _finite(v) -> bool:
@@ -137,35 +92,105 @@ def _window_ok(v) -> bool:
     return len(v) == 2 and all(_finite(x) for x in v) and v[0] < v[1]
 
 
-#: Value rules applied after the type check: key -> (test, what is required, how to fix).
-#: Every value the engine (permutation, tfce, resampling) would refuse is refused here
-#: first, so that ``check`` accepts nothing that ``run`` rejects; a bad value is
-#: reported and replaced by its default so that checking can go on.
-VALUE_RULES = {
+def _positive(v) -> bool:
+    return _finite(v) and v > 0
+
+
+def _probability(v) -> bool:
+    return _finite(v) and 0 < v < 1
+
+
+@dataclass(frozen=True)
+class Key:
+    """One analysis-file key: its type(s), default, meaning, and the rule its value obeys.
+
+    ``check`` is applied after the type check; ``rule`` says what is required
+    and ``fix`` how to mend it.  ``choices`` is a shorthand for a check
+    against a list.  Every value the engine would refuse is refused here
+    first, so that ``check`` accepts nothing that ``run`` rejects; a bad
+    value is reported and replaced by its default so that checking goes on.
+    """
+
+    types: type | tuple
+    default: object
+    doc: str
+    check: object = None
+    rule: str = ""
+    fix: str = ""
+    choices: tuple | None = None
+
+    def problem(self, value):
+        """(what, fix) when ``value`` breaks the rule, else None."""
+        if self.choices is not None and value not in self.choices:
+            hint = closest(str(value), self.choices)
+            return (f"'{value}' is not one of {', '.join(self.choices)}",
+                    hint or f"choose one of {', '.join(self.choices)}")
+        if self.check is not None and not self.check(value):
+            return f"{self.rule}, got {value!r}", self.fix
+        return None
+
+
+#: Every key of the analysis file, by section ("" = top level; "inference.tfce" is the
+#: [inference.tfce] table).  The README's analysis-file reference documents the same keys.
+SCHEMA = {
+    "": {
+        "title": Key(str, "Untitled analysis", "title shown in the report"),
+    },
     "cohort": {
-        "time_start": (_finite, "must be a finite number of seconds", "e.g. time_start = -0.1"),
-        "sampling_interval": (lambda v: _finite(v) and v > 0,
-                              "must be a positive number of seconds",
-                              "e.g. sampling_interval = 0.004 for 250 Hz"),
+        "participants": Key(str, None, "participants table (TSV), required"),
+        "maps": Key(str, None, "maps table (TSV), required"),
+        "mask": Key(str, None, "source mask NIfTI; default: sources finite in every map"),
+        "time_start": Key(NUMBER, None, "first sample time (s), overrides the NIfTI header",
+                          _finite, "must be a finite number of seconds", "e.g. time_start = -0.1"),
+        "sampling_interval": Key(NUMBER, None, "sampling interval (s), overrides the header",
+                                 _positive, "must be a positive number of seconds",
+                                 "e.g. sampling_interval = 0.004 for 250 Hz"),
+        "cache": Key(str, None, "folder for the loading cache; default ~/.cache/groupsrc"),
+        "atlas": Key(str, None, "labelled atlas NIfTI on the template grid (integer labels)"),
+        "atlas_labels": Key(str, None, "TSV with columns index and name for the atlas labels"),
+    },
+    "model": {
+        "between": Key(str, "1", "Wilkinson right-hand side over participants columns"),
+        "within": Key(str, None, "maps-table column holding the condition, optional"),
+        "mixed": Key(bool, False, "mass-univariate mixed model (not yet available)"),
+    },
+    "contrasts": {
+        "name": Key(str, None, "contrast name (letters, digits, _ and -)"),
+        "description": Key(str, "", "free text for the report"),
+        "within": Key(dict, None, "weights over conditions, e.g. {rare = 1, frequent = -1}"),
+        "compare": Key(dict, None, "{factor = [level_a, level_b, ...]}"),
+        "slope": Key(str, None, "numeric participants column"),
+        "weights": Key(dict, None, "raw weights over design-matrix coefficient names"),
     },
     "inference": {
-        "resamples": (lambda v: 1 <= v <= MAX_RESAMPLES,
-                      f"must be from 1 to {MAX_RESAMPLES:,}",
-                      "use e.g. 5000 (fewer gives coarse p-values)"),
-        "seed": (lambda v: 0 <= v < SEED_LIMIT,
-                 "must be a whole number from 0 to 2^63 - 1",
-                 "use a non-negative integer such as 20261201"),
-        "forming_p": (lambda v: _finite(v) and 0 < v < 1, "must be between 0 and 1",
-                      "give a p-value such as 0.001"),
-        "alpha": (lambda v: _finite(v) and 0 < v < 1, "must be between 0 and 1",
-                  "give a level such as 0.05"),
-        "time_window": (_window_ok, "expected [start, stop], two numbers of seconds with "
-                        "start < stop", "e.g. time_window = [0.0, 0.6]"),
-        "tfce_e": (lambda v: _finite(v) and v > 0, "TFCE exponent E must be a positive number",
-                   "use the usual 0.5 (Smith & Nichols 2009)"),
-        "tfce_h": (lambda v: _finite(v) and v > 0, "TFCE exponent H must be a positive number",
-                   "use the usual 2 (Smith & Nichols 2009)"),
-        "tfce_steps": (lambda v: v >= 10, "must be at least 10", "use 100"),
+        "correction": Key(str, "cluster-mass", " | ".join(CORRECTIONS), choices=CORRECTIONS),
+        "resamples": Key(int, 5000, "number of rearrangements, identity included",
+                         lambda v: 1 <= v <= MAX_RESAMPLES, f"must be from 1 to {MAX_RESAMPLES:,}",
+                         "use e.g. 5000 (fewer gives coarse p-values)"),
+        "seed": Key(int, 20261201, "random seed for the rearrangements",
+                    lambda v: 0 <= v < SEED_LIMIT, "must be a whole number from 0 to 2^63 - 1",
+                    "use a non-negative integer such as 20261201"),
+        "forming_p": Key(NUMBER, 0.001, "cluster-forming threshold as a p-value",
+                         _probability, "must be between 0 and 1", "give a p-value such as 0.001"),
+        "alpha": Key(NUMBER, 0.05, "family-wise (or FDR) level",
+                     _probability, "must be between 0 and 1", "give a level such as 0.05"),
+        "tails": Key(str, "two", " | ".join(TAILS), choices=TAILS),
+        "time_window": Key(list, None, "[start, stop] in seconds; default: all samples",
+                           _window_ok, "expected [start, stop], two numbers of seconds with "
+                           "start < stop", "e.g. time_window = [0.0, 0.6]"),
+        "neighbors": Key(str, "face", " | ".join(NEIGHBORS), choices=NEIGHBORS),
+        "blocks": Key(str, None, "participants column defining exchangeability blocks"),
+        "tfce": Key(dict, None, "the [inference.tfce] table"),
+    },
+    "inference.tfce": {
+        "extent_power": Key(NUMBER, 0.5, "TFCE extent exponent (E in Smith & Nichols 2009)",
+                            _positive, "the TFCE extent exponent must be a positive number",
+                            "use the usual 0.5 (Smith & Nichols 2009)"),
+        "height_power": Key(NUMBER, 2.0, "TFCE height exponent (H in Smith & Nichols 2009)",
+                            _positive, "the TFCE height exponent must be a positive number",
+                            "use the usual 2 (Smith & Nichols 2009)"),
+        "steps": Key(int, 100, "TFCE number of height steps per map",
+                     lambda v: v >= 10, "must be at least 10", "use 100"),
     },
 }
 
@@ -228,7 +253,15 @@ def _check_type(value, typ):
     return isinstance(value, typ)
 
 
-def _section(raw, name, where, problems, *, allow_missing=True):
+def _where(where, name, key):
+    if name == "":
+        return f"{where}: {key}"
+    return f"{where} [{name}] {key}"
+
+
+def _section(raw, name, where, problems):
+    """One table of the analysis file against its schema: unknown keys, types and
+    value rules are problems; every key comes back, bad or missing ones as defaults."""
     schema = SCHEMA[name]
     out = {}
     for key, value in raw.items():
@@ -237,15 +270,18 @@ def _section(raw, name, where, problems, *, allow_missing=True):
             problems.add(f"{where}: key '{key}'" if name == "" else f"{where} [{name}]: key '{key}'",
                          "unknown key", hint or f"known keys: {', '.join(schema)}")
             continue
-        typ = schema[key][0]
-        if not _check_type(value, typ):
-            problems.add(f"{where} [{name}] {key}" if name else f"{where}: {key}",
-                         f"expected {_type_name(typ)}, got {value!r}",
-                         f"write {key} as a {_type_name(typ)}")
+        spec = schema[key]
+        if not _check_type(value, spec.types):
+            problems.add(_where(where, name, key), f"expected {_type_name(spec.types)}, got {value!r}",
+                         f"write {key} as a {_type_name(spec.types)}")
             continue
+        bad = spec.problem(value)
+        if bad is not None:
+            problems.add(_where(where, name, key), *bad)
+            continue                       # go on with the default
         out[key] = value
-    for key, (typ, default, _) in schema.items():
-        out.setdefault(key, default)
+    for key, spec in schema.items():
+        out.setdefault(key, spec.default)
     return out
 
 
@@ -310,15 +346,7 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
             problems.add(f"{where} [cohort]", f"'{key}' is required",
                          f"add {key} = \"{key}.tsv\" (path relative to the analysis file)")
 
-    _check_choice(inference, "correction", CORRECTIONS, where, problems)
-    _check_choice(inference, "tails", TAILS, where, problems)
-    _check_choice(inference, "neighbors", NEIGHBORS, where, problems)
-    for section, values in (("cohort", cohort), ("inference", inference)):
-        for key, (ok, what, fix) in VALUE_RULES[section].items():
-            v = values.get(key)
-            if v is not None and not ok(v):
-                problems.add(f"{where} [{section}] {key}", f"{what}, got {v!r}", fix)
-                values[key] = SCHEMA[section][key][1]  # go on with the default
+    inference["tfce"] = _section(inference.get("tfce") or {}, "inference.tfce", where, problems)
     tw = inference.get("time_window")
     if tw is not None:
         inference["time_window"] = [float(tw[0]), float(tw[1])]
@@ -340,7 +368,7 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
         spec = _contrast(rc, i, where, model, names, problems)
         if spec is not None:
             contrasts.append(spec)
-    return Settings(path=Path(path), title=top.get("title", SCHEMA[""]["title"][1]),
+    return Settings(path=Path(path), title=top.get("title", SCHEMA[""]["title"].default),
                     cohort=cohort, model=model, contrasts=contrasts, inference=inference,
                     raw=raw)
 
@@ -442,12 +470,3 @@ def _check_contrast_content(c, cwhere, model, problems):
     if c.get("within") and not model.get("within"):
         problems.add(cwhere, "has within weights but [model] within is not set",
                      "add within = \"condition\" under [model]")
-
-
-def _check_choice(d, key, choices, where, problems):
-    v = d.get(key)
-    if v is not None and v not in choices:
-        hint = closest(str(v), choices)
-        problems.add(f"{where} [inference] {key}", f"'{v}' is not one of {', '.join(choices)}",
-                     hint or f"choose one of {', '.join(choices)}")
-        d[key] = SCHEMA["inference"][key][1]  # go on with the default

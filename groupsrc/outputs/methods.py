@@ -123,10 +123,11 @@ def methods_text(summary: dict, contrasts: list) -> str:
                      "neighbouring sources at the same sample and the same source at adjacent "
                      "samples.")
     elif correction == "tfce":
-        tf = next((c.get("extra", {}).get("tfce") for c in contrasts
-                   if c.get("extra", {}).get("tfce")), None) or {}
-        parts.append(f"TFCE used E = {tf.get('E', inf.get('tfce_e', 0.5))} and H = "
-                     f"{tf.get('H', inf.get('tfce_h', 2.0))} with "
+        tf = next((c["tfce"] for c in contrasts if c.get("tfce")), None) \
+            or inf.get("tfce") or {}
+        parts.append(f"TFCE used the extent exponent E = {tf.get('extent_power', 0.5)} and "
+                     f"the height exponent H = {tf.get('height_power', 2.0)} of Smith & Nichols, "
+                     f"{tf.get('steps', 100)} height steps per map, and "
                      f"{NEIGHBOUR_TEXT.get(inf.get('neighbors', 'face'))} neighbours.")
     has_f = any(c["kind"] == "F" for c in contrasts)
     has_t = any(c["kind"] == "t" for c in contrasts)

@@ -8,6 +8,7 @@ files.
 
 from __future__ import annotations
 
+import dataclasses
 import importlib.metadata as md
 import platform
 from pathlib import Path
@@ -55,20 +56,22 @@ def cohort_summary(analysis: AnalysisResult) -> dict:
 
 def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
     inf = c.inference
-    extra = {k: v for k, v in (inf.extra or {}).items()
-             if not isinstance(v, np.ndarray) or np.size(v) <= 16}
+    record = inf.resampling
     return {"name": c.name, "description": c.description, "kind": inf.kind,
             "df": list(inf.df), "scheme": inf.scheme, "correction": inf.correction,
             "tails": inf.tails, "alpha": alpha, "forming_p": forming_p,
             "threshold": inf.threshold, "n_resamples": inf.n_resamples, "exact": inf.exact,
-            "critical_value": (inf.extra or {}).get("critical_value"),
+            "critical_value": record.critical_value if record else None,
             "weights": np.asarray(c.weights).tolist(),
             "coefficients": [str(x) for x in c.design.columns], "within": c.within,
             "n_participants": len(c.participants),
             "reported_clusters": tables.reported_clusters(inf.clusters, alpha),
             "n_clusters": int(len(inf.clusters)) if inf.clusters is not None else 0,
             "has_estimate": inf.kind == "t", "has_p_corrected": inf.p_corrected is not None,
-            "extra": extra}
+            "cluster_rule": inf.cluster_rule,
+            "fit": dataclasses.asdict(inf.fit) if inf.fit else None,
+            "resampling": dataclasses.asdict(record) if record else None,
+            "tfce": dataclasses.asdict(inf.tfce) if inf.tfce else None}
 
 
 def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, adjacency,
@@ -103,10 +106,9 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ad
     write_tsv(folder / "clusters.tsv", ctab)
     write_tsv(folder / "peaks.tsv", tables.peak_table(c, grid, taxis, adjacency))
     write_tsv(folder / "null_distribution.tsv", tables.null_table(c))
-    rearr = (inf.extra or {}).get("rearrangements")
-    if rearr is not None:
+    if inf.rearrangements is not None:
         write_tsv(folder / "rearrangements.tsv.gz",
-                  tables.rearrangement_table(rearr, inf.extra.get("rearrangement_kind"),
+                  tables.rearrangement_table(inf.rearrangements, inf.resampling.kind,
                                              c.participants))
     write_tsv(folder / "cluster_timecourses.tsv",
               tables.timecourse_table(c, analysis.participants, taxis))

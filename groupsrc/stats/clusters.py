@@ -28,6 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import pandas as pd
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
@@ -237,3 +238,73 @@ def max_cluster_score(stat, threshold, adjacency, sign=1, score="mass"):
         return 0.0
     vals = np.abs(c.mass) if score == "mass" else c.extent.astype(float)
     return float(vals.max())
+
+
+# ----------------------------------------------------------------------------
+# cluster tables
+# ----------------------------------------------------------------------------
+
+#: columns of the cluster table a correction returns
+CLUSTER_COLUMNS = ["cluster", "sign", "mass", "extent", "n_sources", "n_samples",
+                   "p_corrected"]
+
+
+def cluster_table(parts, shape):
+    """Cluster table and label map from per-sign components (vectorised).
+
+    ``parts``: list of (sign, flat idx, comp, n, mass, extent, p).  Rows are
+    sorted by p, then |mass| descending; labels 1..K follow the rows.
+    """
+    S, T = shape
+    labels = np.zeros(S * T, np.int32)
+    parts = [pt for pt in parts if pt[3] > 0]
+    if not parts:
+        return pd.DataFrame(columns=CLUSTER_COLUMNS), labels.reshape(shape)
+    signs, masses, extents, ps, nsrc, nsmp, idx_all, comp_all = [], [], [], [], [], [], [], []
+    offset = 0
+    for sign, idx, comp, n, mass, extent, p in parts:
+        comp = np.asarray(comp, np.int64)
+        src, smp = idx // T, idx % T
+        nsrc.append(np.bincount(np.unique(comp * S + src) // S, minlength=n))
+        nsmp.append(np.bincount(np.unique(comp * T + smp) // T, minlength=n))
+        signs.append(np.full(n, int(sign)))
+        masses.append(np.asarray(mass, float))
+        extents.append(np.asarray(extent, np.int64))
+        ps.append(np.asarray(p, float))
+        idx_all.append(idx)
+        comp_all.append(comp + offset)
+        offset += n
+    mass = np.concatenate(masses)
+    p = np.concatenate(ps)
+    order = np.lexsort((-np.abs(mass), np.where(np.isnan(p), np.inf, p)))
+    rank = np.empty(offset, np.int64)
+    rank[order] = np.arange(offset)
+    labels[np.concatenate(idx_all)] = rank[np.concatenate(comp_all)] + 1
+    df = pd.DataFrame({
+        "cluster": np.arange(1, offset + 1),
+        "sign": np.concatenate(signs)[order],
+        "mass": mass[order],
+        "extent": np.concatenate(extents)[order],
+        "n_sources": np.concatenate(nsrc)[order],
+        "n_samples": np.concatenate(nsmp)[order],
+        "p_corrected": p[order]})
+    return df[CLUSTER_COLUMNS], labels.reshape(shape)
+
+
+def components_by_sign(mask_map, stat, pmap, adjacency, kind):
+    """Connected components of a boolean map split by the statistic's sign."""
+    parts = []
+    flat_stat = stat.reshape(-1)
+    for sign in ((1,) if kind == "F" else (1, -1)):
+        sel = mask_map & ((stat > 0) if sign > 0 else (stat < 0))
+        idx, comp, n = components(sel, adjacency)
+        vals = flat_stat[idx]
+        mass = np.bincount(comp, weights=vals, minlength=n)
+        extent = np.bincount(comp, minlength=n)
+        if pmap is None:
+            p = np.full(n, np.nan)
+        else:
+            p = np.full(n, np.inf)
+            np.minimum.at(p, comp, pmap.reshape(-1)[idx])
+        parts.append((sign, idx, comp, n, mass, extent, p))
+    return parts

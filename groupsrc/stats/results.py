@@ -12,11 +12,43 @@ import numpy as np
 import pandas as pd
 
 from ..sources import TimeAxis, VolumeGrid
+from .corrections import TfceOptions
+from .kernels import FitInfo
+
+
+@dataclass(frozen=True)
+class ResamplingRecord:
+    """How the null distribution of one contrast was made (checkpoints keep exactly this).
+
+    Attributes
+    ----------
+    seed : int
+        Seed of the rearrangements (drawn fresh and recorded when none was given).
+    kind : "sign-flip" or "permutation"
+    n_resamples : int
+        Rearrangements used, identity included.
+    exact : bool
+        True when every distinct rearrangement was enumerated once.
+    batch_size : int
+        Resamples per batch (memory and speed only; never the result).
+    freedman_lane : bool
+        Whether nuisance regressors were handled by Freedman-Lane.
+    critical_value : float
+        The (1 - alpha) quantile of the map-wide maximum (``method="higher"``).
+    """
+
+    seed: int
+    kind: str
+    n_resamples: int
+    exact: bool
+    batch_size: int
+    freedman_lane: bool
+    critical_value: float
 
 
 @dataclass
 class InferenceResult:
-    """What the permutation engine returns for one contrast.
+    """What inference returns for one contrast.
 
     Attributes
     ----------
@@ -40,11 +72,23 @@ class InferenceResult:
     threshold : float or None
         Cluster-forming threshold on the statistic scale.
     n_resamples : int
-        Number of rearrangements used, identity included.
+        Number of rearrangements used, identity included (0: parametric).
     exact : bool
         True when every distinct rearrangement was enumerated.
     scheme : str
         "sign-flip" or "permutation" (+ " / Freedman-Lane" when nuisance).
+    correction, tails : str
+    fit : FitInfo
+        The fitted model (method, residual df, rank, nuisance columns).
+    cluster_rule : str
+        How the reported clusters were formed.
+    resampling : ResamplingRecord or None
+        None for the parametric corrections (fdr, none).
+    rearrangements : (m, n) array or None
+        The rearrangement set used, identity first.
+    tfce : TfceOptions or None
+    enhanced : (n_sources, n_times) float32 or None
+        The observed TFCE map.
     """
 
     kind: str
@@ -64,7 +108,12 @@ class InferenceResult:
     scheme: str
     correction: str
     tails: str
-    extra: dict = field(default_factory=dict)
+    fit: FitInfo | None = None
+    cluster_rule: str = ""
+    resampling: ResamplingRecord | None = None
+    rearrangements: np.ndarray | None = None
+    tfce: TfceOptions | None = None
+    enhanced: np.ndarray | None = None
 
 
 @dataclass

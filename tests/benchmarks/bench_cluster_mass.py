@@ -79,7 +79,7 @@ def main():
                             forming_p=a.forming_p,
                             n_jobs=a.jobs)
         ours.append((time.perf_counter() - t0) / a.resamples)
-        batch = res.extra["batch_size"]
+        batch = res.resampling.batch_size
     # fixed cost (observed fit, residual norms, observed clusters): one resample
     setup = []
     for rep in range(a.repeats):

@@ -1,0 +1,171 @@
+"""Execution backends: where the batches of resamples run.
+
+A contrast's resampling is split into batches of consecutive resamples
+``[lo, hi)``.  A :class:`NullJob` knows how to do one batch: the kernel's
+products give the resampled statistic maps, the correction scores each map.
+A backend runs the batches and hands each result to ``collect(lo, pos,
+neg)`` -- in any order; the caller stores results by ``lo``.
+
+Contract (``tests/test_backend_contract.py``): for one job every backend,
+worker count and batch size gives the serial backend's null distribution
+bit for bit.  That holds because a resample's arithmetic never depends on
+its batch (see :mod:`.kernels`) and each batch's result is stored at its
+own place.  A backend that runs batches elsewhere (another process, another
+machine, a checkpointed run) must keep both properties.
+
+======== ====================================================================
+serial   batches one after the other in the calling thread
+threads  products in the calling thread, labelling of each batch's maps on
+         ``workers`` threads, pipelined with the next batch's products
+processes whole batches on ``workers`` joblib process workers (loky)
+======== ====================================================================
+"""
+
+from __future__ import annotations
+
+import os
+from abc import ABC, abstractmethod
+
+import numpy as np
+
+#: memory budget (bytes) for the resampled maps held at once (all workers together)
+MEMORY_BUDGET = 128e6
+
+
+class NullJob:
+    """One contrast's resampling work: a prepared kernel and a correction."""
+
+    def __init__(self, kernel, correction):
+        self.kernel, self.correction = kernel, correction
+        self.needs_maps = correction.needs_maps
+
+    def products(self, lo, hi, out=None):
+        """Resampled statistic maps (into ``out``) or, without maps, their extremes."""
+        if self.needs_maps and out is None:
+            out = self.kernel.buffer(hi - lo)
+        return self.kernel.resampled(lo, hi, out if self.needs_maps else None)
+
+    def scores(self, maps, u, v):
+        return self.correction.null_extremes(maps, u, v)
+
+    def run_batch(self, lo, hi):
+        """(lo, max_pos, max_neg) of resamples lo..hi-1."""
+        maps, mx, mn = self.products(lo, hi)
+        if maps is None:
+            return lo, mx, mn
+        pos, neg = self.scores(maps, 0, hi - lo)
+        return lo, pos, neg
+
+    def pieces(self, B, workers):
+        """Split B maps into work items for ``workers`` (whole stacking groups)."""
+        group = self.correction.group_size(B)
+        n_groups = -(-B // group)
+        step = max(1, -(-n_groups // workers)) * group
+        return [(a, min(B, a + step)) for a in range(0, B, step)]
+
+
+def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16):
+    """Default batch size: a whole number of product blocks (at least one) whose
+    maps fit ``MEMORY_BUDGET`` across ``buffers`` buffers alive at once."""
+    fit = MEMORY_BUDGET / max(1, buffers) // (4.0 * n_features) if needs_maps else 256
+    B = max(block, int(fit) // block * block)
+    return int(max(1, min(n_resamples, B)))
+
+
+class Backend(ABC):
+    """Runs batches; see the module docstring for the contract."""
+
+    name = ""
+
+    def __init__(self, workers: int = 1):
+        workers = int(workers)
+        if workers == 0 or workers < -1:
+            raise ValueError(f"workers must be a positive integer or -1, got {workers}")
+        self.workers = workers if workers > 0 else max(1, os.cpu_count() or 1)
+
+    @property
+    def buffers(self) -> int:
+        """Map buffers alive at once (for the batch-size budget)."""
+        return 1
+
+    @abstractmethod
+    def run(self, job: NullJob, batches, collect) -> None: ...
+
+
+class SerialBackend(Backend):
+    name = "serial"
+
+    def run(self, job, batches, collect):
+        for a, b in batches:
+            collect(*job.run_batch(a, b))
+
+
+class ThreadBackend(Backend):
+    """Products here (BLAS on one thread), labelling on a pool, pipelined."""
+
+    name = "threads"
+
+    @property
+    def buffers(self):
+        return 1 if self.workers == 1 else 2
+
+    def run(self, job, batches, collect):
+        if self.workers == 1 or not batches:
+            return SerialBackend().run(job, batches, collect)
+        from concurrent.futures import ThreadPoolExecutor
+
+        def finish(pending):
+            a0, futs = pending
+            outs = [f.result() for f in futs]
+            collect(a0, np.concatenate([o[0] for o in outs]),
+                    np.concatenate([o[1] for o in outs]))
+
+        B = max(b - a for a, b in batches)
+        # two buffers alternate: one is labelled while the next batch fills the other
+        bufs = ([np.empty((B, job.kernel.n_features), np.float32) for _ in range(2)]
+                if job.needs_maps else [None, None])
+        pending = None
+        with ThreadPoolExecutor(max_workers=self.workers) as pool:
+            for i, (a, b) in enumerate(batches):
+                out = bufs[i % 2][:b - a] if job.needs_maps else None
+                maps, mx, mn = job.products(a, b, out)
+                if pending is not None:
+                    finish(pending)
+                    pending = None
+                if maps is None:
+                    collect(a, mx, mn)
+                    continue
+                pending = (a, [pool.submit(job.scores, maps, u, v)
+                               for u, v in job.pieces(b - a, self.workers)])
+            if pending is not None:
+                finish(pending)
+
+
+class ProcessBackend(Backend):
+    """Whole batches on joblib's process workers (loky); data memory-mapped to them."""
+
+    name = "processes"
+
+    @property
+    def buffers(self):
+        return self.workers
+
+    def run(self, job, batches, collect):
+        if self.workers == 1:
+            return SerialBackend().run(job, batches, collect)
+        from joblib import Parallel, delayed
+        par = Parallel(n_jobs=self.workers, backend="loky", return_as="generator")
+        for out in par(delayed(job.run_batch)(a, b) for a, b in batches):
+            collect(*out)
+
+
+#: the backends, by name
+BACKENDS = {b.name: b for b in (SerialBackend, ThreadBackend, ProcessBackend)}
+
+
+def make_backend(name: str, workers: int = 1) -> Backend:
+    try:
+        cls = BACKENDS[name]
+    except KeyError:
+        raise ValueError(f"backend must be one of {tuple(BACKENDS)}, got {name!r}") from None
+    return cls(workers)

@@ -1,0 +1,405 @@
+"""Statistic kernels: the observed statistic of a contrast and its resampled copies.
+
+A kernel owns one model fitted at every feature (source x sample) and one
+contrast.  Inference (:mod:`.inference`) asks it for the observed statistic
+and, once the rearrangements are drawn, for the statistic of every
+rearranged data set; corrections (:mod:`.corrections`) turn those into
+corrected p-values.  ``tests/test_kernel_contract.py`` checks every kernel:
+the observed and the resampled statistic agree with a direct refit on small
+data.
+
+The contract
+------------
+``kind`` ("t" or "F"), ``df`` (tuple), ``n_features``, ``n_units`` (the
+rows that rearrangements move: participants), ``scheme_name`` (how they were
+rearranged, for the methods text), ``freedman_lane``, and
+
+* ``observed(tails) -> Observed`` -- statistic, estimate, standard error,
+  standardized effect and parametric p, flat over features;
+* ``threshold(forming_p, tails) -> float`` -- the cluster-forming threshold
+  on the statistic's scale;
+* ``rearrangements(n_resamples, seed, blocks) -> Rearrangements`` -- the
+  rearrangement set that respects the model's exchangeability;
+* ``prepare(rearrangements)`` -- precompute what the resamples share;
+* ``resampled(lo, hi, out=None) -> (maps or None, max, min)`` -- the
+  statistic of resamples ``lo..hi-1``: (B, n_features) float32 maps written
+  into ``out`` when given, else only each resample's maximum and minimum.
+  The arithmetic of resample ``i`` must not depend on ``lo``, ``hi`` or the
+  process computing it (bit-for-bit reproducibility, see below).
+
+The ordinary least-squares kernel
+---------------------------------
+Model ``y = X b + e`` at every feature, one design ``X`` (n, p) shared by all
+features.  With the contrast split of the design into a tested space and
+the nuisance space ``Z = {X b : C b = 0}`` (Winkler et al. 2014, NeuroImage
+92:381-397, Appendix A; :func:`.glm.contrast_basis`), Freedman-Lane
+resampling (Freedman & Lane 1983, J Bus Econ Stat 1:292-298) rearranges the
+residuals ``R_z`` of ``Y`` on ``Z``, adds the nuisance fit back and refits.
+Two facts make this cheap: the contrast estimate ignores the added-back part
+(the tested space is orthogonal to ``Z``), and the full-model residual of
+``P R_z + H_z Y`` is ``(I - H) P R_z``.  So with an orthonormal basis
+``Q = [Q_effect, Q_nuisance]`` of the design and ``U = Q' P R_z``:
+``RSS = ||R_z||^2 - ||U||^2``, ``t = U_0 / sqrt(RSS / df)`` and
+``F = (||U_effect||^2 / q) / (RSS / df)``.  For a block of rearrangements
+the matrices ``(P_b' Q)'`` are stacked into one float32 matrix and
+multiplied with feature chunks of ``R_z``: matrix products, no
+per-permutation refit.  When every rearrangement maps the nuisance space
+onto itself (the intercept under permutations) Freedman-Lane equals plain
+rearrangement of ``Y``.
+
+Reproducibility (bit for bit).  BLAS may round a product element
+differently depending on the product's shape and its number of threads, so
+every product has one fixed shape ``(RES_BLOCK r, n) @ (n, fc)`` with
+``fc = min(FEATURE_CHUNK, n_features)``: resample ``i`` always sits in row
+block ``i // RES_BLOCK`` at row ``i % RES_BLOCK`` (rows of absent resamples
+are zero), feature ``j`` always in chunk ``j // fc`` (the last chunk is
+zero-padded), and BLAS runs on one thread during the products
+(threadpoolctl).  Everything after the products is element-wise IEEE
+arithmetic.
+"""
+
+from __future__ import annotations
+
+import threading
+from abc import ABC, abstractmethod
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats as sps
+
+from . import glm
+from .resampling import Rearrangements, rearrangements
+
+#: resamples per product block
+RES_BLOCK = 16
+#: features per product block (fewer only when the map itself is smaller)
+FEATURE_CHUNK = 4096
+#: largest ||y|| / ||r_z|| (raw over residual norm) for running the products on Y
+_RAW_RATIO = 30.0
+
+
+@dataclass(frozen=True)
+class Observed:
+    """The observed statistic and its companions, flat over features (float64).
+
+    ``estimate`` and ``se`` are NaN for F contrasts; ``std_effect`` is Hedges'
+    g for t contrasts and partial eta squared for F contrasts.
+    """
+
+    kind: str
+    df: tuple
+    statistic: np.ndarray
+    estimate: np.ndarray
+    se: np.ndarray
+    std_effect: np.ndarray
+    p_uncorrected: np.ndarray
+
+
+@dataclass(frozen=True)
+class FitInfo:
+    """What the run record says about the fitted model."""
+
+    method: str                    # "ordinary least squares", ...
+    df_residual: float | None = None
+    rank: int | None = None
+    nuisance_columns: int | None = None
+
+
+class StatisticKernel(ABC):
+    """Abstract kernel; see the module docstring for the contract."""
+
+    kind: str
+    df: tuple
+    n_features: int
+    n_units: int
+    freedman_lane: bool = False
+    scheme_name: str = ""
+
+    @abstractmethod
+    def observed(self, tails: str) -> Observed: ...
+
+    @abstractmethod
+    def threshold(self, forming_p: float, tails: str) -> float: ...
+
+    @abstractmethod
+    def rearrangements(self, n_resamples: int, seed, blocks=None) -> Rearrangements: ...
+
+    @abstractmethod
+    def prepare(self, rearr: Rearrangements) -> None: ...
+
+    @abstractmethod
+    def resampled(self, lo: int, hi: int, out=None): ...
+
+    @abstractmethod
+    def info(self) -> FitInfo: ...
+
+
+# ----------------------------------------------------------------------------
+# helpers shared by kernels
+# ----------------------------------------------------------------------------
+
+def parametric_p(stat, kind, tails, df):
+    """Parametric p of a t or F statistic for the given tails (F: upper tail)."""
+    if kind == "F":
+        return sps.f.sf(stat, df[0], df[1])
+    if tails == "two":
+        return np.minimum(1.0, 2.0 * sps.t.sf(np.abs(stat), df[0]))
+    if tails == "greater":
+        return sps.t.sf(stat, df[0])
+    return sps.t.cdf(stat, df[0])
+
+
+def forming_threshold(kind, forming_p, tails, df):
+    """Statistic value equivalent to the cluster-forming p (two-sided for t and tails two)."""
+    if kind == "F":
+        return float(sps.f.isf(forming_p, df[0], df[1]))
+    if tails == "two":
+        return float(sps.t.isf(forming_p / 2.0, df[0]))
+    return float(sps.t.isf(forming_p, df[0]))
+
+
+_BLAS_CONTROLLER = None
+
+
+def one_blas_thread():
+    """Context that holds BLAS to one thread (threadpoolctl); see the module docstring."""
+    global _BLAS_CONTROLLER
+    if _BLAS_CONTROLLER is None:
+        from threadpoolctl import ThreadpoolController
+        _BLAS_CONTROLLER = ThreadpoolController()
+    return _BLAS_CONTROLLER.limit(limits=1, user_api="blas")
+
+
+def _residualise(Yf, q_nui, chunk=8192):
+    """Residuals of Yf (n, F) on the orthonormal columns ``q_nui`` (float32)."""
+    R = np.empty_like(Yf)
+    for a in range(0, Yf.shape[1], chunk):
+        y = Yf[:, a:a + chunk].astype(np.float64)
+        R[:, a:a + chunk] = y - q_nui @ (q_nui.T @ y)
+    return R
+
+
+def _sum_squares(R, chunk=8192):
+    rr = np.empty(R.shape[1], np.float64)
+    for a in range(0, R.shape[1], chunk):
+        y = R[:, a:a + chunk].astype(np.float64)
+        rr[a:a + chunk] = np.einsum("ij,ij->j", y, y)
+    return rr.astype(np.float32)
+
+
+def _norms_raw_and_residual(Yf, q_nui, chunk=8192):
+    """Per-feature ||y||^2 and ||y - H_z y||^2 in float64, without storing residuals."""
+    yy = np.empty(Yf.shape[1])
+    rr = np.empty(Yf.shape[1])
+    for a in range(0, Yf.shape[1], chunk):
+        y = Yf[:, a:a + chunk].astype(np.float64)
+        r = y - q_nui @ (q_nui.T @ y)
+        yy[a:a + chunk] = np.einsum("ij,ij->j", y, y)
+        rr[a:a + chunk] = np.einsum("ij,ij->j", r, r)
+    return yy, rr
+
+
+def _invariant(q_nui, rearr, tol=1e-8):
+    """True when every rearrangement maps the nuisance space onto itself."""
+    if q_nui.shape[1] == 0:
+        return True
+    M = rearr.matrix
+    for a in range(0, M.shape[0], 512):
+        rows = M[a:a + 512]
+        if rearr.kind == "sign-flip":
+            moved = rows[:, :, None] * q_nui[None]
+        else:
+            moved = q_nui[rows]
+        resid = moved - q_nui[None] @ (q_nui.T[None] @ moved)
+        if np.abs(resid).max() > tol:
+            return False
+    return True
+
+
+def _stat_from_u(U, rr, kind, df, q, out=None):
+    """Statistic (B, f) float32 from projections U (B, r, f) and ||R||^2 (f,).
+
+    Written into ``out`` (B, f) when given.
+    """
+    r = U.shape[1]
+    ss = np.multiply(U[:, 0], U[:, 0], out=out)
+    for j in range(1, r):
+        ss += U[:, j] * U[:, j]
+    if kind == "t":
+        eff = U[:, 0]
+    else:
+        eff = U[:, 0] * U[:, 0]
+        for j in range(1, q):
+            eff += U[:, j] * U[:, j]
+    np.subtract(rr, ss, out=ss)                    # rss, in place
+    # rss <= 0 only for constant features (then U = 0 and the statistic is 0)
+    # or from float32 rounding of a perfect fit
+    np.maximum(ss, np.float32(1e-30), out=ss)
+    np.divide(np.float32(df), ss, out=ss)
+    if kind == "t":
+        np.sqrt(ss, out=ss)
+        np.multiply(ss, eff, out=ss)
+    else:
+        np.multiply(ss, eff, out=ss)
+        ss *= np.float32(1.0 / q)
+    return ss
+
+
+# ----------------------------------------------------------------------------
+# ordinary least squares
+# ----------------------------------------------------------------------------
+
+class OLSKernel(StatisticKernel):
+    """Mass-univariate OLS contrast with Freedman-Lane resampling.
+
+    Parameters
+    ----------
+    Y : (n, n_features) float32 data, one row per observation.
+    X : (n, p) design matrix.
+    contrast : (p,) weights (t) or (k, p) (F).
+    scheme : "sign-flip" (one-sample / paired) or "permutation".
+    nuisance : None/"auto" -> Freedman-Lane whenever the design has columns
+        outside the contrast's space and the rearrangements move them;
+        False -> rearrange the raw data.
+    """
+
+    def __init__(self, Y, X, contrast, *, scheme="sign-flip", nuisance=None):
+        self.Y = Y
+        self.X = np.asarray(X, np.float64)
+        self.C = np.asarray(contrast, np.float64)
+        self.basis = glm.contrast_basis(self.X, self.C)
+        self.kind = self.basis.kind
+        self.scheme = scheme
+        self.nuisance = nuisance
+        self.n_features = int(Y.shape[1])
+        self.n_units = int(Y.shape[0])
+        b = self.basis
+        self.df = (b.df,) if self.kind == "t" else (b.df1, b.df)
+        self.rearr = None
+        self.freedman_lane = False
+        self._buffers = {}
+
+    def __getstate__(self):                 # work buffers stay with their process
+        state = dict(self.__dict__)
+        state["_buffers"] = {}
+        return state
+
+    # -- observed -------------------------------------------------------------
+    def observed(self, tails):
+        Yf, X, C = self.Y, self.X, self.C
+        nan = np.full(self.n_features, np.nan)
+        if self.kind == "t":
+            fit = glm.t_contrast(Yf, X, C)
+            stat, est, se = fit.t, fit.estimate, fit.se
+            effect = glm.cohens_d(fit.estimate, fit.sigma, fit.df)
+        else:
+            fit = glm.f_contrast(Yf, X, C)
+            stat, est, se = fit.F, nan, nan
+            effect = glm.partial_eta_squared(fit.F, fit.df1, fit.df2)
+        return Observed(self.kind, self.df, stat, est, se, effect,
+                        parametric_p(stat, self.kind, tails, self.df))
+
+    def threshold(self, forming_p, tails):
+        return forming_threshold(self.kind, forming_p, tails, self.df)
+
+    def info(self):
+        b = self.basis
+        return FitInfo("ordinary least squares", float(b.df), int(b.rank),
+                       int(b.q_nuisance.shape[1]))
+
+    # -- resampling -----------------------------------------------------------
+    def rearrangements(self, n_resamples, seed, blocks=None):
+        return rearrangements(self.scheme, self.Y.shape[0], int(n_resamples), seed,
+                              labels=self.X, blocks=blocks)
+
+    def prepare(self, rearr):
+        """Residual-forming for the rearrangement set (Freedman-Lane when needed)."""
+        b, Yf = self.basis, self.Y
+        self.rearr = rearr
+        use_fl = self.nuisance is not False and b.q_nuisance.shape[1] > 0
+        self.freedman_lane = use_fl and not _invariant(b.q_nuisance, rearr)
+        if self.freedman_lane:
+            R, Q = _residualise(Yf, b.q_nuisance), b.q
+            rr = _sum_squares(R)
+        elif use_fl:
+            # Nuisance space invariant under every rearrangement: Q_nuisance' P R_z = 0
+            # and q_effect' P Y = q_effect' P R_z, so the products can run on Y itself
+            # with the effect basis only, and ||R_z||^2 is computed once in float64.
+            # Float32 products on Y lose about eps ||y|| / ||r_z|| relative precision,
+            # so this path is taken only while that ratio stays below _RAW_RATIO.
+            Q = b.q_effect
+            yy, rr64 = _norms_raw_and_residual(Yf, b.q_nuisance)
+            if np.all(yy <= _RAW_RATIO ** 2 * rr64):
+                R, rr = Yf, rr64.astype(np.float32)
+            else:
+                R = _residualise(Yf, b.q_nuisance)
+                rr = _sum_squares(R)
+        else:
+            R, Q = Yf, b.q
+            rr = _sum_squares(R)
+        self.R, self.rr, self.Q = R, rr, Q.astype(np.float32)
+
+    @property
+    def scheme_name(self):
+        return self.scheme + (" / Freedman-Lane" if self.freedman_lane else "")
+
+    def _gemm_rows(self, rows):
+        """Stacked (B r, n) float32 matrix so that G @ R gives Q' P_b R."""
+        n, r = self.Q.shape
+        B = rows.shape[0]
+        if self.rearr.kind == "sign-flip":
+            G = rows[:, :, None].astype(np.float32) * self.Q[None, :, :]     # (B, n, r)
+        else:
+            G = self.Q[np.argsort(rows, axis=1)]                            # (B, n, r)
+        return np.ascontiguousarray(G.transpose(0, 2, 1)).reshape(B * r, n)
+
+    def _block_rows(self, k):
+        """The (RES_BLOCK r, n) product matrix of resample block ``k`` (zero padded)."""
+        n, r = self.Q.shape
+        m = self.rearr.n_resamples
+        a, b = k * RES_BLOCK, min(m, (k + 1) * RES_BLOCK)
+        G = np.zeros((RES_BLOCK * r, n), np.float32)
+        G[:(b - a) * r] = self._gemm_rows(self.rearr.matrix[a:b])
+        return G
+
+    def buffer(self, B):
+        """A (B, n_features) float32 work array reused by the calling thread."""
+        key = threading.get_ident()
+        buf = self._buffers.get(key)
+        if buf is None or buf.shape[0] < B:
+            buf = np.empty((B, self.n_features), np.float32)
+            self._buffers[key] = buf
+        return buf[:B]
+
+    def resampled(self, lo, hi, out=None):
+        """Statistics of resamples lo..hi-1 (see the contract in the module docstring)."""
+        B = hi - lo
+        r = self.Q.shape[1]
+        n, F = self.R.shape
+        ks = range(lo // RES_BLOCK, (hi - 1) // RES_BLOCK + 1)
+        mx = np.full(B, -np.inf)
+        mn = np.full(B, np.inf)
+        fc = min(FEATURE_CHUNK, F)
+        with one_blas_thread():
+            Gs = [self._block_rows(k) for k in ks]
+            pad = None
+            for a in range(0, F, fc):
+                b = min(F, a + fc)
+                Rc = self.R[:, a:b]
+                if b - a < fc:                      # last chunk: zero-padded copy
+                    pad = np.zeros((n, fc), np.float32) if pad is None else pad
+                    pad[:, :b - a] = Rc
+                    pad[:, b - a:] = 0.0
+                    Rc = pad
+                for k, G in zip(ks, Gs):
+                    i0, i1 = max(lo, k * RES_BLOCK), min(hi, (k + 1) * RES_BLOCK)
+                    U = (G @ Rc).reshape(RES_BLOCK, r, fc)
+                    U = U[i0 - k * RES_BLOCK:i1 - k * RES_BLOCK, :, :b - a]
+                    st = _stat_from_u(U, self.rr[a:b], self.kind, self.basis.df,
+                                      self.basis.df1,
+                                      out=None if out is None else out[i0 - lo:i1 - lo, a:b])
+                    if out is None:
+                        seg = slice(i0 - lo, i1 - lo)
+                        np.maximum(mx[seg], st.max(axis=1), out=mx[seg])
+                        np.minimum(mn[seg], st.min(axis=1), out=mn[seg])
+        return out, mx, mn
