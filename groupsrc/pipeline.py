@@ -57,7 +57,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     except InputError as exc:
         problems.extend(exc.problems)
         # still check the design, so that its problems are reported in the same pass
-        from .inputs.cohort import check_tables
+        from .inputs.tables import check_tables
         parts = check_tables(settings, ProblemList())[0]
         if parts is not None:
             design = build_design(settings, parts, problems, f"{settings.path} [model] between")

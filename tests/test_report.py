@@ -190,7 +190,7 @@ def test_design_figure_explains_a_covariate_mean_weight():
     covariate's coefficient (the prediction at x = mean includes mean x slope; common
     practice for estimated marginal means); the figure says so, and only then."""
     import pandas as pd
-    from groupsrc.outputs.figures import weight_notes
+    from groupsrc.outputs.design_figure import weight_notes
     age = np.array([20.0, 35, 41, 58, 66, 70])
     X = pd.DataFrame({"Intercept": 1.0, "group[T.b]": [0.0, 1, 0, 1, 0, 1], "age": age})
     notes = weight_notes(X, [1.0, 0.5, age.mean()])

@@ -20,6 +20,7 @@ from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescap
 
 from ..sources import VolumeGrid
 from . import figures
+from .design_figure import design_figure
 from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
                      read_grid, read_json, read_map, read_tsv, times_ms)
@@ -192,7 +193,7 @@ def contrast_figures(results: Path, grid: VolumeGrid, summary: dict, cs: dict) -
     if len(design):
         design = design.set_index("participant_id")
         base = figdir / "design"
-        figures.design_figure(design, cs["weights"], f"{name}: design and contrast", base)
+        design_figure(design, cs["weights"], f"{name}: design and contrast", base)
         out.append(("The between-participant design, one panel per coefficient "
                     "(coloured blocks: indicator columns; dots: covariates on their own "
                     "scale, dashed at the mean), and the contrast's weights below.",
