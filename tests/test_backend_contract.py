@@ -1,0 +1,74 @@
+"""The backend contract (groupsrc/stats/backends.py): every backend gives the serial
+backend's null distribution bit for bit, whatever its worker count or batch size.
+
+Every backend in ``BACKENDS`` is tried automatically; a backend that needs a
+running service (a cluster) can be given a factory in ``FACTORIES``.  The
+promise checked is the project's own (DESIGN.md: a seed gives the same result
+whatever the batch size, worker count or engine); no outside value is
+involved.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from groupsrc.sources import VolumeGrid
+from groupsrc.stats.backends import BACKENDS, NullJob, make_backend
+from groupsrc.stats.corrections import TfceOptions, make_correction
+from groupsrc.stats.kernels import OLSKernel
+
+#: how to build each backend for the test (default: make_backend(name, workers))
+FACTORIES = {}
+
+
+def _job(correction, scheme="sign-flip", m=70, seed=5):
+    rng = np.random.default_rng(2)
+    grid = VolumeGrid.from_mask(np.ones((5, 4, 3), bool), np.eye(4))
+    n, T = 12, 7
+    Y = rng.standard_normal((n, grid.n_sources * T)).astype(np.float32) + 0.3
+    if scheme == "sign-flip":
+        X = np.c_[np.ones(n), rng.standard_normal(n)]          # covariate: Freedman-Lane
+        C = [1.0, 0.0]
+    else:
+        X = np.c_[np.repeat([1.0, 0.0], n // 2), np.repeat([0.0, 1.0], n // 2),
+                  rng.standard_normal(n)]
+        C = [1.0, -1.0, 0.0]
+    kernel = OLSKernel(Y, X, C, scheme=scheme)
+    rearr = kernel.rearrangements(m, seed)
+    kernel.prepare(rearr)
+    thr = kernel.threshold(0.05, "two")
+    corr = make_correction(correction, kernel.kind, "two", (grid.n_sources, T),
+                           grid.adjacency("face"), threshold=thr, tfce=TfceOptions(steps=20))
+    return NullJob(kernel, corr), m
+
+
+def _null(backend, job, m, batch):
+    pos, neg = np.full(m, np.nan), np.full(m, np.nan)
+
+    def collect(lo, p, q):
+        pos[lo:lo + p.size] = p
+        neg[lo:lo + q.size] = q
+    backend.run(job, [(a, min(m, a + batch)) for a in range(0, m, batch)], collect)
+    return pos, neg
+
+
+@pytest.mark.parametrize("correction", ["cluster-mass", "tfce", "max-stat"])
+@pytest.mark.parametrize("scheme", ["sign-flip", "permutation"])
+@pytest.mark.parametrize("name", list(BACKENDS))
+def test_every_backend_gives_the_serial_null_bit_for_bit(name, scheme, correction):
+    job, m = _job(correction, scheme)
+    ref = _null(make_backend("serial"), job, m, batch=m)
+    assert not np.isnan(ref[0]).any()
+    for workers, batch in [(1, 16), (2, 7), (2, 33)]:
+        backend = FACTORIES.get(name, make_backend)(name, workers)
+        got = _null(backend, job, m, batch)
+        for a, b in zip(got, ref):
+            np.testing.assert_array_equal(a, b, err_msg=f"{name}, {workers} workers, "
+                                                         f"batch {batch}")
+
+
+@pytest.mark.parametrize("name", list(BACKENDS))
+def test_every_backend_refuses_a_bad_worker_count(name):
+    with pytest.raises(ValueError, match="workers"):
+        make_backend(name, 0)
