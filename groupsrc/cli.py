@@ -57,11 +57,6 @@ def _parser():
     return p
 
 
-#: seeds are non-negative integers below 2**63 (numpy's SeedSequence takes any
-#: non-negative integer; the bound keeps them exact in JSON readers)
-SEED_MAX = 2 ** 63 - 1
-
-
 def _check_options(args, parser):
     """Command-line values: a bad one is a usage error (exit 2) with a message."""
     from .inputs.settings import MAX_RESAMPLES
@@ -71,9 +66,10 @@ def _check_options(args, parser):
             parser.error(f"--{name} must be at least 1, got {v}")
     if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
         parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
+    from .stats.inference import SEED_LIMIT
     seed = getattr(args, "seed", None)
-    if seed is not None and not 0 <= seed <= SEED_MAX:
-        parser.error(f"--seed must be a whole number from 0 to {SEED_MAX}, got {seed}")
+    if seed is not None and not 0 <= seed < SEED_LIMIT:
+        parser.error(f"--seed must be a whole number from 0 to {SEED_LIMIT - 1}, got {seed}")
 
 
 def main(argv=None) -> int:

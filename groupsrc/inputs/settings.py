@@ -18,15 +18,16 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
+from ..sources import VolumeGrid
+from ..stats.corrections import CORRECTIONS as _CORRECTIONS
+from ..stats.inference import SEED_LIMIT, TAILS
 from .problems import InputError, Problem, ProblemList, closest
 from .textfile import TextFileError, read_text
 
 
-CORRECTIONS = ("cluster-mass", "cluster-extent", "tfce", "max-stat", "fdr", "none")
-TAILS = ("two", "greater", "less")
-NEIGHBORS = ("face", "edge", "vertex")
-#: Largest seed + 1: seeds are stored as signed 64-bit integers (TOML 1.0 integers).
-SEED_LIMIT = 2 ** 63
+#: the choices come from the parts that implement them (one definition each)
+CORRECTIONS = tuple(_CORRECTIONS)
+NEIGHBORS = VolumeGrid.neighbor_kinds
 #: Most rearrangements accepted: the engine holds the whole set in memory (one row of
 #: n indices per rearrangement), and p-values are resolved to 1 / resamples.
 MAX_RESAMPLES = 1_000_000

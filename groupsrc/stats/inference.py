@@ -52,7 +52,7 @@ from .results import InferenceResult, ResamplingRecord
 
 TAILS = ("two", "greater", "less")
 SCHEMES = ("sign-flip", "permutation")
-#: seeds are non-negative integers below 2**63 (numpy SeedSequence; exact in JSON readers)
+#: seeds are non-negative integers below 2**63 (signed 64-bit, as TOML 1.0 integers)
 SEED_LIMIT = 2 ** 63
 NULL_COLUMNS = ["resample", "max_stat", "max_pos", "max_neg"]
 
