@@ -7,7 +7,7 @@ brain: minimum norm estimates. Med Biol Eng Comput 32:35-42.
 import numpy as np
 import pytest
 
-from groupsrc.simulate import scenario
+from groupsrc.simulate import model as md, scenario_settings
 from groupsrc.simulate.forward import helmet_sensors, lead_field, tangential_basis
 from groupsrc.simulate.inverse import minimum_norm
 
@@ -125,7 +125,7 @@ def test_single_generator_is_recovered_within_20_mm():
     # tangential dipole: the amplitude map peaks within 20 mm (two grid steps) of
     # the true location, for 40 random locations 40-60 mm from the centre in the
     # upper half of the head, and within 12 mm in the median.
-    model = scenario.DemoModel(scenario.scenario_settings(), "default")
+    model = md.DemoModel(scenario_settings(), "default")
     xyz = model.grid.coords_mm
     rng = np.random.default_rng(11)
     errors = []

@@ -19,7 +19,7 @@ from groupsrc.formats.nifti import time_axis_from_header
 from groupsrc.sources import TimeAxis
 from groupsrc.inputs.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
-from groupsrc.simulate import scenario as sc
+from groupsrc.simulate import build as bd, model as md, truth as tr
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -38,9 +38,9 @@ def small(tmp_path_factory):
 @pytest.fixture(scope="module")
 def default_truth():
     cfg = scenario_settings()
-    model = sc.DemoModel(cfg, "default")
-    effects = sc.noise_free_effects(model)
-    masks, info = sc.truth_masks(model, sc.participants_table("default"), effects)
+    model = md.DemoModel(cfg, "default")
+    effects = tr.noise_free_effects(model)
+    masks, info = tr.truth_masks(model, md.participants_table("default"), effects)
     return cfg, model, effects, masks, info
 
 
@@ -50,7 +50,7 @@ def test_shipped_settings_equal_the_demo_cohort_folder_copy():
 
 
 def test_committed_participants_table_is_reproduced_exactly():
-    got = sc.participants_tsv(sc.participants_table("default"))
+    got = bd.participants_tsv(md.participants_table("default"))
     assert got == (ROOT / "demo_cohort" / "participants.tsv").read_text(encoding="utf-8")
     df = pd.read_csv(ROOT / "demo_cohort" / "participants.tsv", sep="\t")
     assert list(df.columns) == ["participant_id", "group", "age", "sex"]
@@ -76,7 +76,7 @@ def test_small_cohort_files_are_valid(small):
     assert (parts.group.value_counts() == 8).all()
 
     cfg = scenario_settings()
-    t = sc.time_axis(cfg, "small")
+    t = md.time_axis(cfg, "small")
     mask_img = nib.load(str(root / "mask.nii.gz"))
     assert mask_img.get_data_dtype() == np.uint8 and mask_img.ndim == 3
     mask = np.asanyarray(mask_img.dataobj) > 0
@@ -181,7 +181,7 @@ def test_noise_has_the_documented_covariance_and_smoothness():
     # an averaged response (brain + white, each / epochs), and the brain part is
     # AR(1) with the documented coefficient at 100 Hz.
     cfg = scenario_settings()
-    model = sc.DemoModel(cfg, "default")
+    model = md.DemoModel(cfg, "default")
     rng = np.random.default_rng(0)
     draws = np.concatenate([model.noise(rng) for _ in range(60)], axis=1)   # (m, 60 T)
     emp = np.cov(draws)
@@ -233,7 +233,7 @@ def test_default_size_builds_quickly_enough_to_plan_on():
     # NIfTI writing, is timed.
     import time
     t = time.perf_counter()
-    sim = sc.simulate("default")
+    sim = md.simulate("default")
     elapsed = time.perf_counter() - t
     assert len(sim.data) == len(sim.maps) and sim.data[0].dtype == np.float32
     assert elapsed < 30.0
