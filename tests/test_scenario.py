@@ -16,7 +16,6 @@ import pytest
 
 from groupsrc.cli import main
 from groupsrc.formats.nifti import time_axis_from_header
-from groupsrc.sources import TimeAxis
 from groupsrc.inputs.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
 from groupsrc.simulate import build as bd, model as md, truth as tr
@@ -185,11 +184,11 @@ def test_noise_has_the_documented_covariance_and_smoothness():
     rng = np.random.default_rng(0)
     draws = np.concatenate([model.noise(rng) for _ in range(60)], axis=1)   # (m, 60 T)
     emp = np.cov(draws)
-    np.testing.assert_allclose(np.trace(emp), np.trace(model.noise_cov), rtol=0.05)
+    np.testing.assert_allclose(np.trace(emp), np.trace(model.noise_covariance), rtol=0.05)
     nz = cfg["noise"]
     expected_var = ((nz["brain_noise_ft"] ** 2 + nz["sensor_noise_ft"] ** 2)
                     * 1e-30 / nz["epochs"])
-    assert np.mean(np.diag(model.noise_cov)) == pytest.approx(expected_var, rel=1e-9)
+    assert np.mean(np.diag(model.noise_covariance)) == pytest.approx(expected_var, rel=1e-9)
     # lag-1 autocorrelation of the (dominant) brain part
     x = np.stack([model.noise(rng) for _ in range(200)])                 # (k, m, T)
     lag1 = (x[:, :, 1:] * x[:, :, :-1]).mean() / (x ** 2).mean()

@@ -40,7 +40,7 @@ from scipy.signal import lfilter
 
 from ..sources import TimeAxis, VolumeGrid
 from .forward import helmet_sensors, lead_field
-from .inverse import InverseOperator, minimum_norm
+from .inverse import MinimumNormWeights, minimum_norm_weights
 from .settings import CONDITIONS, GROUPS, scenario_settings, size_settings
 
 #: random streams (first entry after the seed)
@@ -127,7 +127,13 @@ class _Person:
 
 
 class DemoModel:
-    """Sensors, template, gain matrix and inverse operator shared by all participants."""
+    """Sensors, template, gain matrix, noise and minimum-norm weights shared by all participants.
+
+    ``noise_covariance`` (T^2) is that of one averaged response: background
+    brain activity (covariance proportional to ``L L^T``) plus white sensor
+    noise, each divided by the number of epochs.  ``inverse`` holds the
+    minimum-norm weights built from it with the ``[inverse]`` settings.
+    """
 
     def __init__(self, cfg: dict, size: str = "default"):
         self.cfg, self.size = cfg, size
@@ -151,14 +157,15 @@ class DemoModel:
         epochs = float(nz["epochs"])
         self.cov_brain = brain / epochs       # of an averaged response
         self.cov_white = white / epochs
-        self.noise_cov = self.cov_brain + self.cov_white
+        self.noise_covariance = self.cov_brain + self.cov_white
         ev, evec = np.linalg.eigh(self.cov_brain)
         self._brain_half = evec * np.sqrt(np.clip(ev, 0.0, None))
         self._white_sd = float(np.sqrt(self.cov_white[0, 0]))
         self.ar = float(nz["brain_noise_ar"]) ** (100.0 / float(sz["sfreq"]))
-        self.inverse: InverseOperator = minimum_norm(
-            L, self.noise_cov, snr=float(nz["inverse_snr"]), depth=float(nz["depth"]),
-            depth_limit=float(nz["depth_limit"]))
+        inv = cfg["inverse"]
+        self.inverse: MinimumNormWeights = minimum_norm_weights(
+            L, self.noise_covariance, regularisation=float(inv["regularisation"]),
+            depth_exponent=float(inv["depth_exponent"]), gain_floor=float(inv["gain_floor"]))
 
     # -- participants ---------------------------------------------------------
     def person(self, seed: int, index: int, n_sessions: int, jitter: bool = True) -> _Person:
@@ -223,7 +230,7 @@ class DemoModel:
         return scale * (self._brain_half @ brain + white)
 
     def to_map(self, data) -> np.ndarray:
-        """Inverse amplitudes (n_sources, n_times) in nA m, float32."""
+        """Minimum-norm moment amplitudes (n_sources, ...) in nA m, float32, for data in T."""
         return (self.inverse.amplitude(data) * 1e9).astype(np.float32)
 
 
@@ -243,7 +250,15 @@ class Simulation:
 
 def simulate(size: str = "default", seed: int | None = None, cfg: dict | None = None,
              noise: bool = True) -> Simulation:
-    """Simulate every map of the cohort in memory (``noise=False``: without noise)."""
+    """Simulate every map of the cohort in memory (``noise=False``: without noise).
+
+    One map per participant, session and tone, in the order of the maps
+    table (participants as in :func:`participants_table`, then sessions,
+    then tones rare, frequent); ``path`` is where :mod:`.build` writes it,
+    relative to the cohort folder.  The noise of map (participant ``i``,
+    session ``s``, tone ``c``) comes from the stream ``[seed, 2, i, s, c]``, so
+    a map does not depend on how many others are simulated.
+    """
     cfg = scenario_settings() if cfg is None else cfg
     seed = int(cfg["seed"] if seed is None else seed)
     model = DemoModel(cfg, size)
@@ -263,7 +278,7 @@ def simulate(size: str = "default", seed: int | None = None, cfg: dict | None = 
                 rows.append({"participant_id": p.participant_id, "condition": cond,
                              "session": str(ses), "path": f"maps/{name}"})
     data = []
-    for start in range(0, len(sensor_data), 16):     # one operator, batches of maps
+    for start in range(0, len(sensor_data), 16):     # one weight matrix, batches of maps
         amp = model.to_map(np.stack(sensor_data[start:start + 16], axis=1))
         data += [np.ascontiguousarray(amp[:, k]) for k in range(amp.shape[1])]
     return Simulation(model, parts, sessions, pd.DataFrame(rows), data, seed, size)

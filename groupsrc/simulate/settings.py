@@ -33,7 +33,8 @@ EFFECTS = {"condition_effect": ("condition", "rare_minus_frequent"),
            "group_by_condition": ("group_by_condition", "group_by_tone"),
            "age_effect": ("age", "age_slope")}
 #: top-level sections every settings file has
-SECTIONS = ("seed", "sizes", "head", "participants", "noise", "generators", "truth")
+SECTIONS = ("seed", "sizes", "head", "participants", "noise", "inverse", "generators",
+            "truth")
 
 
 def packaged_text() -> str:

@@ -68,15 +68,16 @@ def expected_t(model: DemoModel, effects: dict, participants: pd.DataFrame) -> d
 
     The effect divided by its least-squares standard error on ``[1, group,
     age]`` when the only variation is the nominal noise of one averaged
-    response: per source, ``sigma_j^2 = trace(W_j C W_j^T) / 2``, the noise
+    response: per source, ``sigma_j^2 = trace(M_j C M_j^T) / 2`` (``M_j``: the
+    three rows of source ``j`` in the minimum-norm weight matrix), the noise
     variance of one tangential moment component of the estimate.  Between-
     participant variability would only make the real t smaller.  Minimum-norm
     maps are much less noisy at deep sources than near the sensors, so a faint
     blurred copy of an effect can be detectable far from its generator; this
     is what the no-effect region must avoid.
     """
-    W, C = model.inverse.W, model.noise_cov
-    sigma = np.sqrt(np.einsum("ij,ij->i", W @ C, W).reshape(-1, 3).sum(axis=1) / 2) * 1e9
+    M, C = model.inverse.matrix, model.noise_covariance
+    sigma = np.sqrt(np.einsum("ij,ij->i", M @ C, M).reshape(-1, 3).sum(axis=1) / 2) * 1e9
     g = np.where(participants["group"].to_numpy() == "patient", 0.5, -0.5)
     age = participants["age"].to_numpy(float)
     X = np.column_stack([np.ones(g.size), g, age - age.mean()])
