@@ -2,7 +2,12 @@
 
 The demo's numbers are invented; nothing here uses them as reference values.
 The checks are of the builder's own promises (files, seeds, where it put the
-effects) and of the noise model it documents.
+effects) and of the noise model it documents; distances and fractions below
+are this project's acceptance thresholds, not values from an outside source.
+The maps pass through the forward model of Sarvas (1987, Phys Med Biol
+32:11-22) and the minimum-norm weights of Hamalainen & Ilmoniemi (1994, Med
+Biol Eng Comput 32:35-42), which tests/test_forward.py and
+tests/test_inverse.py check against those sources.
 """
 
 import json
@@ -76,6 +81,8 @@ def test_small_cohort_files_are_valid(small):
 
     cfg = scenario_settings()
     t = md.time_axis(cfg, "small")
+    # header fields as the NIfTI-1 standard (nifti1.h) defines them, read back
+    # through nibabel: sform/qform code 2 = aligned to another file, units mm/s
     mask_img = nib.load(str(root / "mask.nii.gz"))
     assert mask_img.get_data_dtype() == np.uint8 and mask_img.ndim == 3
     mask = np.asanyarray(mask_img.dataobj) > 0
@@ -189,7 +196,9 @@ def test_noise_has_the_documented_covariance_and_smoothness():
     expected_var = ((nz["brain_noise_ft"] ** 2 + nz["sensor_noise_ft"] ** 2)
                     * 1e-30 / nz["epochs"])
     assert np.mean(np.diag(model.noise_covariance)) == pytest.approx(expected_var, rel=1e-9)
-    # lag-1 autocorrelation of the (dominant) brain part
+    # lag-1 autocorrelation of the (dominant) brain part: an AR(1) process's
+    # lag-1 autocorrelation is its coefficient (common practice), diluted by the
+    # share of white noise in the total variance
     x = np.stack([model.noise(rng) for _ in range(200)])                 # (k, m, T)
     lag1 = (x[:, :, 1:] * x[:, :, :-1]).mean() / (x ** 2).mean()
     share = nz["brain_noise_ft"] ** 2 / (nz["brain_noise_ft"] ** 2 + nz["sensor_noise_ft"] ** 2)
@@ -236,3 +245,29 @@ def test_default_size_builds_quickly_enough_to_plan_on():
     elapsed = time.perf_counter() - t
     assert len(sim.data) == len(sim.maps) and sim.data[0].dtype == np.float32
     assert elapsed < 30.0
+
+
+def test_simulate_modules_keep_the_one_way_data_flow():
+    # The package's own layout rule (DESIGN: data flow one way; NIfTI only
+    # through groupsrc.formats): no simulate module imports nibabel, and the
+    # array modules never import the file-writing one.
+    import ast
+    folder = ROOT / "groupsrc" / "simulate"
+    order = ["settings", "forward", "inverse", "model", "truth", "build"]
+    for path in folder.glob("*.py"):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        imported = set()
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                imported |= {a.name for a in node.names}
+            elif isinstance(node, ast.ImportFrom):
+                dots = "." * node.level
+                if node.module:
+                    imported.add(dots + node.module)
+                    imported |= {f"{dots}{node.module}.{a.name}" for a in node.names}
+                else:
+                    imported |= {dots + a.name for a in node.names}
+        assert not any(m.split(".")[0] == "nibabel" for m in imported), path.name
+        if path.stem in order:
+            later = order[order.index(path.stem) + 1:]
+            assert not any(m in (f".{x}" for x in later) for m in imported), path.name
