@@ -2,7 +2,12 @@
 
 The demo's numbers are invented; nothing here uses them as reference values.
 The checks are of the builder's own promises (files, seeds, where it put the
-effects) and of the noise model it documents.
+effects) and of the noise model it documents; distances and fractions below
+are this project's acceptance thresholds, not values from an outside source.
+The maps pass through the forward model of Sarvas (1987, Phys Med Biol
+32:11-22) and the minimum-norm weights of Hamalainen & Ilmoniemi (1994, Med
+Biol Eng Comput 32:35-42), which tests/test_forward.py and
+tests/test_inverse.py check against those sources.
 """
 
 import json
@@ -16,10 +21,9 @@ import pytest
 
 from groupsrc.cli import main
 from groupsrc.formats.nifti import time_axis_from_header
-from groupsrc.sources import TimeAxis
 from groupsrc.inputs.problems import InputError
 from groupsrc.simulate import build_demo_cohort, demo_truth, scenario_settings
-from groupsrc.simulate import scenario as sc
+from groupsrc.simulate import build as bd, model as md, truth as tr
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -38,9 +42,9 @@ def small(tmp_path_factory):
 @pytest.fixture(scope="module")
 def default_truth():
     cfg = scenario_settings()
-    model = sc.DemoModel(cfg, "default")
-    effects = sc.noise_free_effects(model)
-    masks, info = sc.truth_masks(model, sc.participants_table("default"), effects)
+    model = md.DemoModel(cfg, "default")
+    effects = tr.noise_free_effects(model)
+    masks, info = tr.truth_masks(model, md.participants_table("default"), effects)
     return cfg, model, effects, masks, info
 
 
@@ -50,7 +54,7 @@ def test_shipped_settings_equal_the_demo_cohort_folder_copy():
 
 
 def test_committed_participants_table_is_reproduced_exactly():
-    got = sc.participants_tsv(sc.participants_table("default"))
+    got = bd.participants_tsv(md.participants_table("default"))
     assert got == (ROOT / "demo_cohort" / "participants.tsv").read_text(encoding="utf-8")
     df = pd.read_csv(ROOT / "demo_cohort" / "participants.tsv", sep="\t")
     assert list(df.columns) == ["participant_id", "group", "age", "sex"]
@@ -76,7 +80,9 @@ def test_small_cohort_files_are_valid(small):
     assert (parts.group.value_counts() == 8).all()
 
     cfg = scenario_settings()
-    t = sc.time_axis(cfg, "small")
+    t = md.time_axis(cfg, "small")
+    # header fields as the NIfTI-1 standard (nifti1.h) defines them, read back
+    # through nibabel: sform/qform code 2 = aligned to another file, units mm/s
     mask_img = nib.load(str(root / "mask.nii.gz"))
     assert mask_img.get_data_dtype() == np.uint8 and mask_img.ndim == 3
     mask = np.asanyarray(mask_img.dataobj) > 0
@@ -181,16 +187,18 @@ def test_noise_has_the_documented_covariance_and_smoothness():
     # an averaged response (brain + white, each / epochs), and the brain part is
     # AR(1) with the documented coefficient at 100 Hz.
     cfg = scenario_settings()
-    model = sc.DemoModel(cfg, "default")
+    model = md.DemoModel(cfg, "default")
     rng = np.random.default_rng(0)
     draws = np.concatenate([model.noise(rng) for _ in range(60)], axis=1)   # (m, 60 T)
     emp = np.cov(draws)
-    np.testing.assert_allclose(np.trace(emp), np.trace(model.noise_cov), rtol=0.05)
+    np.testing.assert_allclose(np.trace(emp), np.trace(model.noise_covariance), rtol=0.05)
     nz = cfg["noise"]
     expected_var = ((nz["brain_noise_ft"] ** 2 + nz["sensor_noise_ft"] ** 2)
                     * 1e-30 / nz["epochs"])
-    assert np.mean(np.diag(model.noise_cov)) == pytest.approx(expected_var, rel=1e-9)
-    # lag-1 autocorrelation of the (dominant) brain part
+    assert np.mean(np.diag(model.noise_covariance)) == pytest.approx(expected_var, rel=1e-9)
+    # lag-1 autocorrelation of the (dominant) brain part: an AR(1) process's
+    # lag-1 autocorrelation is its coefficient (common practice), diluted by the
+    # share of white noise in the total variance
     x = np.stack([model.noise(rng) for _ in range(200)])                 # (k, m, T)
     lag1 = (x[:, :, 1:] * x[:, :, :-1]).mean() / (x ** 2).mean()
     share = nz["brain_noise_ft"] ** 2 / (nz["brain_noise_ft"] ** 2 + nz["sensor_noise_ft"] ** 2)
@@ -233,7 +241,33 @@ def test_default_size_builds_quickly_enough_to_plan_on():
     # NIfTI writing, is timed.
     import time
     t = time.perf_counter()
-    sim = sc.simulate("default")
+    sim = md.simulate("default")
     elapsed = time.perf_counter() - t
     assert len(sim.data) == len(sim.maps) and sim.data[0].dtype == np.float32
     assert elapsed < 30.0
+
+
+def test_simulate_modules_keep_the_one_way_data_flow():
+    # The package's own layout rule (DESIGN: data flow one way; NIfTI only
+    # through groupsrc.formats): no simulate module imports nibabel, and the
+    # array modules never import the file-writing one.
+    import ast
+    folder = ROOT / "groupsrc" / "simulate"
+    order = ["settings", "forward", "inverse", "model", "truth", "build"]
+    for path in folder.glob("*.py"):
+        tree = ast.parse(path.read_text(encoding="utf-8"))
+        imported = set()
+        for node in ast.walk(tree):
+            if isinstance(node, ast.Import):
+                imported |= {a.name for a in node.names}
+            elif isinstance(node, ast.ImportFrom):
+                dots = "." * node.level
+                if node.module:
+                    imported.add(dots + node.module)
+                    imported |= {f"{dots}{node.module}.{a.name}" for a in node.names}
+                else:
+                    imported |= {dots + a.name for a in node.names}
+        assert not any(m.split(".")[0] == "nibabel" for m in imported), path.name
+        if path.stem in order:
+            later = order[order.index(path.stem) + 1:]
+            assert not any(m in (f".{x}" for x in later) for m in imported), path.name

@@ -1,36 +1,65 @@
-"""Regularised minimum-norm inverse (Hamalainen & Ilmoniemi 1994).
+"""Regularised minimum-norm weights with depth weighting (Hamalainen & Ilmoniemi 1994).
 
 For a gain matrix ``L`` (sensors x 3 sources), a noise covariance ``C`` and a
-diagonal source covariance ``R`` the regularised minimum-norm estimate of the
-source currents from data ``b`` is (Hamalainen & Ilmoniemi 1994, Med Biol Eng
-Comput 32:35-42)
+diagonal prior source covariance ``R``, the regularised minimum-norm estimate
+of the source moments from sensor data ``b`` is (Hamalainen & Ilmoniemi 1994,
+Med Biol Eng Comput 32:35-42)
 
-    j_hat = W b,        W = R L^T (L R L^T + lambda^2 C)^-1,
+    j_hat = M b,        M = R L^T (L R L^T + ridge * C)^-1,
 
-which is ``W = L^T (L L^T + lambda^2 C)^-1`` when ``R = I``.  Choices made here
-(each a common practice, documented so the demo's maps can be interpreted):
+which is ``M = L^T (L L^T + ridge * C)^-1`` when ``R = I``.  ``M`` is the
+*weight matrix* of :class:`MinimumNormWeights`: row ``3 j + k`` holds the
+sensor weights that give moment component ``k`` (x, y, z) of source ``j``.
+How the pieces are chosen here (each a common practice, stated so the demo's
+maps can be interpreted):
 
-* **Whitening.**  The operator is computed in whitened units,
-  ``L_w = C^-1/2 L``, where it reads ``R L_w^T (L_w R L_w^T + lambda^2 I)^-1
-  C^-1/2`` -- algebraically the same ``W``.
-* **Regularisation from an SNR.**  ``lambda^2 = trace(L_w R L_w^T) / (m snr^2)``
-  for ``m`` sensors: the whitened signal covariance is scaled to unit mean
-  sensor variance and ``lambda^2 = 1 / snr^2`` (common practice)
-  (here ``snr = 3`` by default).
-* **Depth weighting.**  ``R = diag(w_j)`` with ``w_j = g_j^-p`` for the
-  whitened gain ``g_j = ||L_w[:, 3j:3j+3]||_F^2`` of source ``j`` (the three
-  components of a source share the weight); ``p = 0`` switches it off.  It
-  counters the minimum-norm bias towards sources near the sensors.  Gains are
-  floored at ``max(g) / depth_limit`` before the power, so nearly silent deep
-  sources (the centre of a sphere is exactly silent in MEG) do not get
-  unbounded weights.
+* **Whitening.**  The weights are computed in whitened units,
+  ``L_w = C^-1/2 L`` (symmetric inverse square root), where the noise has
+  unit variance on every sensor and ``M = R L_w^T (G + ridge I)^-1 C^-1/2``
+  with ``G = L_w R L_w^T`` -- algebraically the same ``M``.
+* **Regularisation, stated as a share.**  ``ridge = regularisation * P`` with
+  ``P = trace(G) / m`` for ``m`` sensors: the mean whitened signal power per
+  sensor when every source has the prior variance ``R`` (equally, the mean
+  eigenvalue of ``G``).  ``regularisation`` is therefore the share of that
+  mean power added to the diagonal of ``G``.  Two readings of it:
+
+  - *filter*: in the eigenvectors of ``G`` (eigenvalues ``s_k``) the data
+    are passed on with factors ``s_k / (s_k + ridge)`` (the eigenvalues of
+    ``L M``); a spatial pattern keeps more than half its weight exactly when
+    its power exceeds ``regularisation`` times the mean, and weaker patterns,
+    where noise dominates, are damped (Tikhonov regularisation; common
+    practice);
+  - *prior*: ``M b`` is the conditional mean of the moments given ``b`` when
+    the moments are Gaussian with covariance ``R / ridge`` and the noise
+    Gaussian with covariance ``C`` (Gaussian conditioning; common practice);
+    under that prior the whitened signal carries ``1 / regularisation`` times
+    the noise power on an average sensor.
+
+  Default 0.1: patterns down to a tenth of the mean power are kept at half
+  weight or more, which favours sharp maps over quiet single maps; it suits
+  data that are later averaged over many maps, as in a group analysis (the
+  demo sets its own value in its settings).
+* **Depth weighting.**  ``R = diag(w_j)`` (the three components of a source
+  share the weight) with ``w_j = max(g_j, gain_floor * max(g))^-depth_exponent``
+  for the whitened gain ``g_j = ||L_w[:, 3j:3j+3]||_F^2`` of source ``j``,
+  scaled so the largest ``w_j`` is 1; ``depth_exponent = 0`` switches it
+  off.  It counters the minimum-norm bias towards sources near the sensors
+  (common practice; the gain-power form is described, for instance, by Lin
+  et al. 2006, NeuroImage 31:160-171 -- reference from memory).  The floor
+  keeps nearly silent deep sources (the centre of a sphere is exactly silent
+  in MEG) from unbounded weights.  Default exponent 0.5: the prior standard
+  deviation of a source then scales as ``g_j^-1/4``, a middle course between
+  no weighting (0) and equalising every source's whitened gain power (1).
 * **Map value.**  The amplitude (Euclidean norm) of the three estimated
   moment components of each source: non-negative maps, as free-orientation
-  inverse solutions are usually reported.  The radial component is always
-  estimated as 0 (radial dipoles are silent in a sphere, so the radial
-  direction lies in the null space of each source's gain columns and
-  ``R L^T`` maps nothing onto it); the amplitude is therefore the norm of the
-  two tangential components.
+  minimum-norm estimates are usually reported (common practice).  The radial
+  component is always estimated as 0 (radial dipoles are silent in a sphere,
+  Sarvas 1987, so the radial direction lies in the null space of each
+  source's gain columns and ``R L^T`` maps nothing onto it); the amplitude is
+  therefore the norm of the two tangential components.
+
+Units follow the inputs: with ``L`` in T per A m and data in T, moments are
+in A m.
 """
 
 from __future__ import annotations
@@ -41,81 +70,107 @@ import numpy as np
 
 
 @dataclass(frozen=True)
-class InverseOperator:
-    """A minimum-norm operator: ``W`` (3 n_sources, n_sensors) and its settings."""
+class MinimumNormWeights:
+    """Minimum-norm weights and the settings they were built with.
 
-    W: np.ndarray
-    lambda2: float
-    snr: float
-    depth: float
-    depth_weights: np.ndarray    # (n_sources,) the diagonal of R, one per source
+    ``matrix`` is ``(3 n_sources, n_sensors)``; ``ridge`` is the amount added to
+    the diagonal in whitened units (``regularisation`` times the mean whitened
+    signal power); ``prior_variance`` is the diagonal of ``R``, one value per
+    source, largest 1.
+    """
+
+    matrix: np.ndarray
+    regularisation: float
+    ridge: float
+    depth_exponent: float
+    prior_variance: np.ndarray
 
     @property
     def n_sources(self) -> int:
-        return self.W.shape[0] // 3
+        return self.matrix.shape[0] // 3
 
-    def components(self, data) -> np.ndarray:
+    def moments(self, data) -> np.ndarray:
         """Estimated moments (n_sources, 3, ...) for data (n_sensors, ...)."""
         data = np.asarray(data, float)
-        J = np.tensordot(self.W, data, axes=(1, 0))
+        J = np.tensordot(self.matrix, data, axes=(1, 0))
         return J.reshape((self.n_sources, 3) + data.shape[1:])
 
     def amplitude(self, data) -> np.ndarray:
         """Moment amplitude per source (n_sources, ...) in the units of the moments."""
-        J = self.components(data)
+        J = self.moments(data)
         return np.sqrt(np.einsum("sk...,sk...->s...", J, J))
 
 
-def minimum_norm(L, noise_cov, *, snr: float = 3.0, depth: float = 0.8,
-                 depth_limit: float = 100.0) -> InverseOperator:
-    """Build the regularised minimum-norm operator (see the module docstring).
+def _check(gain_matrix, noise_covariance, regularisation, depth_exponent, gain_floor):
+    m, n3 = gain_matrix.shape
+    if n3 % 3:
+        raise ValueError("the gain matrix must have three columns per source")
+    if noise_covariance.shape != (m, m):
+        raise ValueError(f"noise covariance must be {m} x {m}, got {noise_covariance.shape}")
+    if not (regularisation > 0 and depth_exponent >= 0 and 0 < gain_floor <= 1):
+        raise ValueError("need regularisation > 0, depth_exponent >= 0 and "
+                         "0 < gain_floor <= 1")
+
+
+def _inverse_square_root(C: np.ndarray) -> np.ndarray:
+    """Symmetric ``C^-1/2`` of a positive definite matrix (ValueError otherwise)."""
+    evals, evecs = np.linalg.eigh((C + C.T) / 2)
+    if evals.min() <= evals.max() * 1e-12:
+        raise ValueError("the noise covariance must be positive definite")
+    return (evecs / np.sqrt(evals)) @ evecs.T
+
+
+def _prior_variance(whitened_gain: np.ndarray, depth_exponent: float,
+                    gain_floor: float) -> np.ndarray:
+    """Depth weights ``w_j`` (n_sources,), largest 1 (see the module docstring)."""
+    m = whitened_gain.shape[0]
+    g = (whitened_gain ** 2).reshape(m, -1, 3).sum(axis=(0, 2))
+    if depth_exponent == 0:
+        return np.ones_like(g)
+    w = np.maximum(g, g.max() * gain_floor) ** (-depth_exponent)
+    return w / w.max()
+
+
+def minimum_norm_weights(gain_matrix, noise_covariance, *, regularisation: float = 0.1,
+                         depth_exponent: float = 0.5,
+                         gain_floor: float = 0.01) -> MinimumNormWeights:
+    """Build regularised minimum-norm weights (see the module docstring).
 
     Parameters
     ----------
-    L : (m, 3 n) array
-        Gain matrix, three columns (x, y, z) per source.
-    noise_cov : (m, m) array
-        Noise covariance of the data the operator will be applied to
+    gain_matrix : (m, 3 n) array
+        Sensor readings of unit moments, three columns (x, y, z) per source.
+    noise_covariance : (m, m) array
+        Noise covariance of the data the weights will be applied to
         (symmetric positive definite).
-    snr : float
-        Assumed amplitude signal-to-noise ratio; ``lambda^2`` follows from it.
-    depth : float
-        Depth-weighting exponent ``p`` (0 = no weighting).
-    depth_limit : float
-        Largest ratio of source gains considered for the weights.
+    regularisation : float
+        Share of the mean whitened signal power added to the diagonal
+        (> 0; default 0.1).
+    depth_exponent : float
+        Exponent of the depth weighting (0 = none; default 0.5).
+    gain_floor : float
+        Whitened source gains below this share of the largest are raised to
+        it before the depth weights are taken (0 < gain_floor <= 1).
 
     Examples
     --------
     >>> rng = np.random.default_rng(0)
-    >>> op = minimum_norm(rng.standard_normal((20, 30)), np.eye(20))
-    >>> op.W.shape, op.n_sources
+    >>> mn = minimum_norm_weights(rng.standard_normal((20, 30)), np.eye(20))
+    >>> mn.matrix.shape, mn.n_sources
     ((30, 20), 10)
     """
-    L = np.asarray(L, float)
-    C = np.asarray(noise_cov, float)
-    m, n3 = L.shape
-    if n3 % 3:
-        raise ValueError("L must have three columns per source")
-    if C.shape != (m, m):
-        raise ValueError(f"noise covariance must be {m} x {m}, got {C.shape}")
-    if snr <= 0 or depth < 0 or depth_limit < 1:
-        raise ValueError("need snr > 0, depth >= 0 and depth_limit >= 1")
-    evals, evecs = np.linalg.eigh((C + C.T) / 2)
-    if evals.min() <= evals.max() * 1e-12:
-        raise ValueError("the noise covariance must be positive definite")
-    white = (evecs / np.sqrt(evals)) @ evecs.T                 # C^-1/2, symmetric
+    L = np.asarray(gain_matrix, float)
+    C = np.asarray(noise_covariance, float)
+    _check(L, C, regularisation, depth_exponent, gain_floor)
+    m = L.shape[0]
+    white = _inverse_square_root(C)
     Lw = white @ L
-    gain = (Lw ** 2).reshape(m, -1, 3).sum(axis=(0, 2))        # (n,)
-    if depth > 0:
-        w = np.maximum(gain, gain.max() / depth_limit) ** (-depth)
-        w = w / w.max()
-    else:
-        w = np.ones_like(gain)
+    w = _prior_variance(Lw, depth_exponent, gain_floor)
     r = np.repeat(w, 3)
     G = (Lw * r) @ Lw.T                                        # L_w R L_w^T
-    lambda2 = float(np.trace(G) / (m * snr ** 2))
-    K = np.linalg.inv(G + lambda2 * np.eye(m))
+    ridge = float(regularisation * np.trace(G) / m)
+    K = np.linalg.inv(G + ridge * np.eye(m))
     K = (K + K.T) / 2
-    W = (r[:, None] * Lw.T) @ (K @ white)
-    return InverseOperator(W=W, lambda2=lambda2, snr=float(snr), depth=float(depth),
-                           depth_weights=w)
+    matrix = (r[:, None] * Lw.T) @ (K @ white)
+    return MinimumNormWeights(matrix=matrix, regularisation=float(regularisation), ridge=ridge,
+                              depth_exponent=float(depth_exponent), prior_variance=w)
