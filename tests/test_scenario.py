@@ -235,16 +235,10 @@ def test_unknown_size_is_refused(tmp_path):
     assert not (tmp_path / "x").exists()
 
 
-def test_default_size_builds_quickly_enough_to_plan_on():
-    # Not a benchmark: a guard that the default build stays vectorised (the
-    # brief is "well under a minute on 2 cores"); the simulation alone, without
-    # NIfTI writing, is timed.
-    import time
-    t = time.perf_counter()
+def test_default_size_simulates_one_float32_map_per_row():
+    # (timings are never asserted in tests; the demo's run time is in the README)
     sim = md.simulate("default")
-    elapsed = time.perf_counter() - t
     assert len(sim.data) == len(sim.maps) and sim.data[0].dtype == np.float32
-    assert elapsed < 30.0
 
 
 def test_simulate_modules_keep_the_one_way_data_flow():
