@@ -124,7 +124,8 @@ def make_analysis(seed=7, with_atlas=True) -> AnalysisResult:
         lab[: SHAPE[0] // 2] = 1
         lab[SHAPE[0] // 2:] = 2
         lab[~grid.mask] = 0
-        settings["atlas"] = {"labels": lab, "names": {1: "left half", 2: "right half"}}
+        settings["atlas"] = {"labels": grid.from_volume(lab),
+                             "names": {1: "left half", 2: "right half"}}
     return AnalysisResult(title=settings["title"], grid=grid, time_axis=taxis,
                           contrasts=contrasts, participants=participants, maps=maps,
                           settings=settings, timings={})

@@ -210,6 +210,7 @@ def test_null_table_round_trip(written):
 def test_atlas_labels_and_shares(written):
     analysis, out = written
     atlas = analysis.settings["atlas"]
+    volume = analysis.grid.to_volume(atlas["labels"])        # per-source labels -> voxels
     for name in NAMES:
         _, lab = maps(out, name)
         shares = read(out / name / "cluster_atlas.tsv")
@@ -217,9 +218,9 @@ def test_atlas_labels_and_shares(written):
         for k, sub in shares.groupby("cluster"):
             vox = (lab == k).any(axis=3)
             for r in sub.itertuples():
-                assert r.n_sources == np.sum(vox & (atlas["labels"] == r.label))
+                assert r.n_sources == np.sum(vox & (volume == r.label))
         clusters = read(out / name / "clusters.tsv")
         for r in clusters.head(3).itertuples():
             ijk = np.round(np.linalg.solve(AFFINE[:3, :3], np.array(
                 [r.peak_x_mm, r.peak_y_mm, r.peak_z_mm]) - AFFINE[:3, 3])).astype(int)
-            assert r.atlas_label_at_peak == atlas["names"][int(atlas["labels"][tuple(ijk)])]
+            assert r.atlas_label_at_peak == atlas["names"][int(volume[tuple(ijk)])]

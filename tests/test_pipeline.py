@@ -24,7 +24,7 @@ def test_run_writes_the_results_folder(ran):
     for name in ("run.json", "methods.md", "report.html", "clusters.tsv"):
         assert (out / name).is_file(), name
     for c in ("rare_minus_frequent", "group_by_tone", "age_slope"):
-        for f in ("statistic.nii.gz", "estimate.nii.gz", "std_effect.nii.gz",
+        for f in ("statistic.nii.gz", "estimate.nii.gz", "std_error.nii.gz", "std_effect.nii.gz",
                   "p_uncorrected.nii.gz", "p_corrected.nii.gz", "clusters.nii.gz",
                   "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
                   "cluster_timecourses.tsv"):
@@ -104,3 +104,30 @@ def test_run_with_bad_input_exits_1_and_writes_nothing(tiny_cohort, tmp_path, ca
     assert main(["run", str(a), "--out", str(out)]) == 1
     assert "required column missing" in capsys.readouterr().err
     assert not out.exists() or not any(out.iterdir())
+
+
+def test_estimate_and_std_error_maps_equal_statsmodels(ran):
+    """estimate.nii.gz and std_error.nii.gz of the within contrast: the contrast's effect
+    and standard error from statsmodels OLS t_test (reference library) fitted to the
+    participants' within differences on the design the run wrote (design.tsv)."""
+    import statsmodels.api as sm
+    analysis, out = ran
+    c = "rare_minus_frequent"
+    summary = json.loads((out / c / "summary.json").read_text())
+    design = pd.read_csv(out / c / "design.tsv", sep="\t").set_index("participant_id")
+    maps = pd.read_csv(analysis.parent / "maps.tsv", sep="\t")
+    mask = np.asanyarray(nib.load(str(analysis.parent / "mask.nii.gz")).dataobj) > 0
+    diff = {}
+    for pid, grp in maps.groupby("participant_id"):
+        d = {r.condition: np.asanyarray(nib.load(str(analysis.parent / r.path)).dataobj)
+             for r in grp.itertuples()}
+        diff[pid] = (d["rare"].astype(float) - d["frequent"])[mask].reshape(-1)
+    Y = np.stack([diff[p] for p in design.index])
+    est = np.asanyarray(nib.load(str(out / c / "estimate.nii.gz")).dataobj)[mask].reshape(-1)
+    se = np.asanyarray(nib.load(str(out / c / "std_error.nii.gz")).dataobj)[mask].reshape(-1)
+    assert int(nib.load(str(out / c / "std_error.nii.gz")).header["intent_code"]) == 1001
+    rng = np.random.default_rng(0)
+    for j in rng.choice(Y.shape[1], 8, replace=False):
+        ref = sm.OLS(Y[:, j], design.to_numpy()).fit().t_test(summary["weights"])
+        assert est[j] == pytest.approx(float(np.squeeze(ref.effect)), rel=1e-4, abs=1e-6)
+        assert se[j] == pytest.approx(float(np.squeeze(ref.sd)), rel=1e-4)

@@ -5,7 +5,9 @@ the module that handles a path by its suffix, so a new format (GIfTI,
 CIFTI-2) is one more module in ``FORMATS``.  Each format module provides, for
 the input edge, ``read_header(path)`` (lazy, raises ValueError with a
 readable reason), ``read_data(header)`` and ``time_axis_from_header``; and,
-for results, image builders and ``save``.
+for results, a result-map class (``RESULT_MAPS``, by source-space kind) with
+one method per map role (statistic, estimate, p_values, labels, ...), the
+source-space files, and reading back per source for the report.
 """
 
 from __future__ import annotations
@@ -43,4 +45,24 @@ def read_header(path):
     return fmt.read_header(path)
 
 
-__all__ = ["FORMATS", "format_for", "known_suffixes", "read_header", "nifti"]
+def result_maps(space, time_axis=None):
+    """The writer/reader of result maps for ``space`` (by its kind)."""
+    maps = RESULT_MAPS.get(space.kind)
+    if maps is None:
+        raise ValueError(f"no result-map format for a {space.kind} source space")
+    return maps(space, time_axis)
+
+
+def result_maps_in(folder, kind, time_axis=None):
+    """The result maps of a saved results folder whose source space is of ``kind``."""
+    maps = RESULT_MAPS.get(kind)
+    if maps is None:
+        raise ValueError(f"no result-map format for a {kind} source space")
+    return maps.read_space(folder, time_axis)
+
+
+#: result-map writers/readers by source-space kind
+RESULT_MAPS = {"volume": nifti.VolumeMaps}
+
+__all__ = ["FORMATS", "RESULT_MAPS", "format_for", "known_suffixes", "read_header",
+           "result_maps", "result_maps_in", "nifti"]

@@ -225,12 +225,16 @@ def p_image(p, grid, time_axis, name, which):
                       cal=(0.0, 1.0))
 
 
-def estimate_image(values, grid, time_axis, name, what, signed=True):
-    """Contrast estimate or standardized effect (intent 1001), float32."""
+def estimate_image(values, grid, time_axis, name, what, signed=True, bounded=False):
+    """Contrast estimate, standard error or standardized effect (intent 1001), float32.
+
+    Display range: symmetric for signed maps, from 0 otherwise (capped at 1 for
+    ``bounded`` effects such as partial eta squared)."""
     r = _robust_abs(values)
+    cal = (-r, r) if signed else (0.0, min(1.0, r) if bounded else r)
     return make_image(values, grid, time_axis, dtype=np.float32, intent=INTENT_ESTIMATE,
                       intent_name=what[:15], descrip=f"groupsrc {what}, contrast {name}",
-                      cal=(-r, r) if signed else (0.0, min(1.0, r)))
+                      cal=cal)
 
 
 def label_dtype(n_labels: int):
@@ -310,3 +314,71 @@ def grid_image(data, affine, dt=None, t0=None, descrip="") -> nib.Nifti1Image:
         hdr.set_xyzt_units("mm")
     hdr["descrip"] = descrip[:79].encode()
     return img
+
+
+# ----------------------------------------------------------------------------
+# result maps of a volume source space
+# ----------------------------------------------------------------------------
+
+class VolumeMaps:
+    """Result maps of a :class:`VolumeGrid` as NIfTI-1 files (one file per map).
+
+    The writer asks for maps by role; the report reads them back per source.
+    Another source space has its own class with the same methods (see
+    :func:`groupsrc.formats.result_maps`).
+    """
+
+    format = "nifti"
+    #: files describing the source space itself (read back by :meth:`read_space`)
+    SPACE_FILES = ("source_mask.nii.gz",)
+
+    def __init__(self, grid: VolumeGrid, time_axis: TimeAxis | None = None):
+        self.grid, self.time_axis = grid, time_axis
+
+    @property
+    def space(self) -> VolumeGrid:
+        return self.grid
+
+    @staticmethod
+    def files(stem) -> list:
+        return [f"{stem}.nii.gz"]
+
+    def _save(self, folder, stem, image) -> list:
+        return [save(Path(folder) / self.files(stem)[0], image)]
+
+    def statistic(self, folder, stem, values, kind, df, name):
+        return self._save(folder, stem, statistic_image(values, self.grid, self.time_axis,
+                                                        kind, df, name))
+
+    def estimate(self, folder, stem, values, name, what, signed=True, bounded=False):
+        return self._save(folder, stem, estimate_image(values, self.grid, self.time_axis,
+                                                       name, what, signed, bounded))
+
+    def p_values(self, folder, stem, values, name, which):
+        return self._save(folder, stem, p_image(values, self.grid, self.time_axis, name, which))
+
+    def labels(self, folder, stem, labels, name):
+        return self._save(folder, stem, label_image(labels, self.grid, self.time_axis, name))
+
+    def cluster_summary(self, folder, stem, statistic, labels, keep, kind, name):
+        """A 3D overlay for slice viewers: peak statistic over each source's cluster span."""
+        return self._save(folder, stem, cluster_summary_image(statistic, labels, keep,
+                                                              self.grid, kind, name))
+
+    def write_space(self, folder) -> list:
+        img = make_image(np.ones(self.grid.n_sources, np.uint8), self.grid, None,
+                         dtype=np.uint8, intent_name="source mask",
+                         descrip="groupsrc source mask", cal=(0, 1))
+        return [save(Path(folder) / self.SPACE_FILES[0], img)]
+
+    def read(self, folder, stem) -> np.ndarray:
+        """Per-source values (n_sources, n_times) of a written map (raises when damaged)."""
+        data, _ = read_image(Path(folder) / self.files(stem)[0])
+        if data.ndim == 3:
+            data = data[..., None]
+        return self.grid.from_volume(data)
+
+    @classmethod
+    def read_space(cls, folder, time_axis=None) -> "VolumeMaps":
+        data, affine = read_image(Path(folder) / cls.SPACE_FILES[0])
+        return cls(VolumeGrid.from_mask(np.asarray(data) > 0, affine), time_axis)

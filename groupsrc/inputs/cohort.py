@@ -38,7 +38,7 @@ class Cohort:
     Y: np.ndarray                # (n_maps, n_sources, n_times) float32
     inputs: dict = field(default_factory=dict)   # path -> sha256
     cache_hit: bool = False
-    #: optional atlas: {"labels": (x, y, z) int array, "names": {int: str}}
+    #: optional atlas: {"labels": (n_sources,) int array (0 = none), "names": {int: str}}
     atlas: dict | None = None
 
     @property
@@ -251,6 +251,9 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         for key in ("atlas", "atlas_labels"):
             p = settings.resolve(settings.cohort[key])
             inputs[str(p)] = index.sha256(p)
+        # one label per source: the atlas in the source space's own terms
+        atlas = {"labels": grid.from_volume(atlas["labels"]).astype(np.int64),
+                 "names": atlas["names"]}
     return Cohort(participants=parts.set_index(ID, drop=False),
                   maps=maps.reset_index(drop=True), grid=grid, time_axis=time_axis, Y=Y,
                   inputs=inputs, cache_hit=cache_hit, atlas=atlas)

@@ -15,23 +15,22 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from ..formats import nifti
-from ..sources import VolumeGrid
+from .. import formats
 from ..inputs.problems import InputError, Problem, ProblemList
 
 RUN_RECORD = "run.json"
 #: BIDS derivatives description (BIDS specification, "Derivatives": dataset_description.json)
 DATASET_DESCRIPTION = "dataset_description.json"
 SUMMARY_FILE = "analysis_summary.json"
-MASK_FILE = "source_mask.nii.gz"
 REPORT_FILE = "report.html"
 METHODS_FILE = "methods.md"
 ALL_CLUSTERS = "clusters.tsv"
 FIGURES = "figures"
-#: files of each contrast folder that the report reads (the writer always writes them)
-CONTRAST_FILES = ("summary.json", "statistic.nii.gz", "clusters.nii.gz", "clusters.tsv",
-                  "peaks.tsv", "null_distribution.tsv", "cluster_timecourses.tsv",
-                  "design.tsv")
+#: tables of each contrast folder that the report reads (the writer always writes them)
+CONTRAST_TABLES = ("summary.json", "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
+                   "cluster_timecourses.tsv", "design.tsv")
+#: maps of each contrast folder that the report reads (file names from the map format)
+CONTRAST_MAPS = ("statistic", "clusters")
 _FIX_DAMAGED = ("run 'groupsrc run' again to rewrite the results folder "
                 "(the report cannot be rebuilt without it)")
 
@@ -59,20 +58,32 @@ def read_json(path: Path) -> dict:
         raise _damaged(path, f"cannot be read as JSON ({exc})") from None
 
 
-def read_map(path: Path, dtype=np.float64):
-    """(data, affine) of a NIfTI map of the results folder; a clear error when damaged."""
+def space_kind(summary: dict) -> str:
+    return summary.get("space", {}).get("kind", "volume")
+
+
+def open_maps(results: Path, summary: dict):
+    """The result maps (format and source space) of a saved folder."""
     try:
-        data, affine = nifti.read_image(path)
-        return np.asarray(data, dtype=dtype), affine
+        return formats.result_maps_in(Path(results), space_kind(summary))
+    except FileNotFoundError as exc:
+        raise _damaged(exc.filename or results, "missing from the results folder") from None
+    except ValueError as exc:
+        raise _damaged(results, str(exc)) from None
+    except Exception as exc:   # the format's reader raises many types for damaged files
+        raise _damaged(results, f"the source space cannot be read ({type(exc).__name__}: "
+                       f"{exc})") from None
+
+
+def read_values(maps, folder: Path, stem: str) -> np.ndarray:
+    """Per-source values of a written map; a clear error naming the file when damaged."""
+    path = Path(folder) / maps.files(stem)[0]
+    try:
+        return np.asarray(maps.read(folder, stem), dtype=np.float64)
     except FileNotFoundError:
         raise _damaged(path, "missing from the results folder") from None
     except Exception as exc:   # nibabel and gzip raise many types for damaged files
-        raise _damaged(path, f"cannot be read as NIfTI ({type(exc).__name__}: {exc})") from None
-
-
-def read_grid(results: Path) -> VolumeGrid:
-    data, affine = read_map(Path(results) / MASK_FILE)
-    return VolumeGrid.from_mask(data > 0, affine)
+        raise _damaged(path, f"cannot be read ({type(exc).__name__}: {exc})") from None
 
 
 def check_results_folder(results: Path) -> None:
@@ -86,13 +97,22 @@ def check_results_folder(results: Path) -> None:
         problems.add(results, f"not a groupsrc results folder (no {RUN_RECORD})",
                      "give the folder 'groupsrc run' wrote")
         raise InputError(problems)
-    for name in (SUMMARY_FILE, MASK_FILE):
-        if not (results / name).is_file():
-            problems.add(results / name, "missing from the results folder", _FIX_DAMAGED)
-    if not problems:
+    if not (results / SUMMARY_FILE).is_file():
+        problems.add(results / SUMMARY_FILE, "missing from the results folder", _FIX_DAMAGED)
+    else:
         summary = read_json(results / SUMMARY_FILE)
+        maps = formats.RESULT_MAPS.get(space_kind(summary))
+        if maps is None:
+            problems.add(results / SUMMARY_FILE, f"unknown source space "
+                         f"'{space_kind(summary)}'", "use the groupsrc version that wrote it")
+            raise InputError(problems)
+        for name in maps.SPACE_FILES:
+            if not (results / name).is_file():
+                problems.add(results / name, "missing from the results folder", _FIX_DAMAGED)
         for c in summary.get("contrasts", []):
-            for name in CONTRAST_FILES:
+            names = list(CONTRAST_TABLES) + [f for stem in CONTRAST_MAPS
+                                             for f in maps.files(stem)]
+            for name in names:
                 if not (results / c / name).is_file():
                     problems.add(results / c / name, "missing from the results folder",
                                  _FIX_DAMAGED)

@@ -18,12 +18,11 @@ import numpy as np
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from ..sources import VolumeGrid
 from . import figures
 from .design_figure import design_figure
 from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
-                     read_grid, read_json, read_map, read_tsv, times_ms)
+                     open_maps, read_json, read_tsv, read_values, times_ms)
 from .methods import methods_text
 from .tables import COLUMNS
 
@@ -75,7 +74,41 @@ def _sign_text(row, kind):
     return "positive" if row["sign"] > 0 else "negative"
 
 
-def contrast_figures(results: Path, grid: VolumeGrid, summary: dict, cs: dict) -> list:
+def projection_figures(grid, stat, labels, clusters, reported, times, name, kind, figdir):
+    """Maximum-intensity projections of a volume at the peak time of each reported cluster."""
+    vlim = figures._stat_range(stat, kind)
+    out = []
+    targets = reported[:MAX_PROJECTIONS] or [None]
+    for k in targets:
+        if k is None:
+            s_, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
+            t_idx = int(t)
+            title = (f"{name}: {kind} at its largest |{kind}|, {times[t_idx]:g} ms "
+                     "(no cluster reported)")
+            keep = np.zeros(stat.shape[0], bool)
+            base = figdir / "projections_peak"
+        else:
+            r = clusters.loc[clusters["cluster"] == k].iloc[0]
+            t_idx = int(_sample_index(times, [r["t_peak_ms"]])[0])
+            title = (f"{name}: {kind} at {times[t_idx]:g} ms, peak of cluster {k} "
+                     f"(p = {r['p_corrected']:.3g})" if np.isfinite(r["p_corrected"])
+                     else f"{name}: {kind} at {times[t_idx]:g} ms, peak of cluster {k}")
+            keep = np.isin(labels[:, t_idx], reported)
+            base = figdir / f"projections_cluster{k:02d}"
+        figures.projection_figure(grid.to_volume(stat[:, t_idx]), grid.mask,
+                                  grid.to_volume(keep), grid.affine, kind, title, base,
+                                  vlim=vlim)
+        out.append((f"Maximum-intensity projections of the {kind} map at {times[t_idx]:g} ms "
+                    "(grey: source mask; white: reported clusters at that time).",
+                    base.with_suffix(".png")))
+    return out
+
+
+#: the figure of the statistic in space, by source-space kind
+SPATIAL_FIGURES = {"volume": projection_figures}
+
+
+def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
     """Draw one contrast's figures; return [(caption, png path)]."""
     name, kind = cs["name"], cs["kind"]
     folder = results / name
@@ -84,47 +117,20 @@ def contrast_figures(results: Path, grid: VolumeGrid, summary: dict, cs: dict) -
     for old in list(figdir.glob("*.png")) + list(figdir.glob("*.svg")):
         old.unlink()
     times = times_ms(summary["window"])
-    stat4, _ = read_map(folder / "statistic.nii.gz")
-    lab4 = read_map(folder / "clusters.nii.gz")[0].astype(np.int64)
-    if stat4.ndim == 3:
-        stat4, lab4 = stat4[..., None], lab4[..., None]
-    stat = grid.from_volume(stat4)
-    labels = grid.from_volume(lab4)
+    space = maps.space
+    stat = read_values(maps, folder, "statistic")
+    labels = read_values(maps, folder, "clusters").astype(np.int64)
     clusters = read_tsv(folder / "clusters.tsv")
     reported = list(cs.get("reported_clusters", []))
-    out = []
-    vlim = figures._stat_range(stat, kind)
-    label = {"t": "t", "F": "F"}[kind]
 
     def row_of(k):
         return clusters.loc[clusters["cluster"] == k].iloc[0]
 
-    # maximum-intensity projections at cluster peak times
-    targets = reported[:MAX_PROJECTIONS]
-    if not targets:
-        s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
-        targets = [None]
-    for k in targets:
-        if k is None:
-            t_idx = int(t)
-            title = f"{name}: {label} at its largest |{label}|, {times[t_idx]:g} ms (no cluster reported)"
-            keep = np.zeros(stat.shape[0], bool)
-            base = figdir / "projections_peak"
-        else:
-            r = row_of(k)
-            t_idx = int(_sample_index(times, [r["t_peak_ms"]])[0])
-            title = (f"{name}: {label} at {times[t_idx]:g} ms, peak of cluster {k} "
-                     f"(p = {r['p_corrected']:.3g})" if np.isfinite(r["p_corrected"])
-                     else f"{name}: {label} at {times[t_idx]:g} ms, peak of cluster {k}")
-            keep = np.isin(labels[:, t_idx], reported)
-            base = figdir / f"projections_cluster{k:02d}"
-        figures.projection_figure(stat4[..., t_idx], grid.mask, grid.to_volume(keep), grid.affine,
-                           kind, title, base, vlim=vlim)
-        out.append((f"Maximum-intensity projections of the {label} map at {times[t_idx]:g} ms "
-                    "(grey: source mask; white: reported clusters at that time).",
-                    base.with_suffix(".png")))
+    out = SPATIAL_FIGURES[space.kind](space, stat, labels, clusters, reported, times, name,
+                                      kind, figdir)
+    label = kind
     # sources x time per reported cluster
-    coords = grid.coords_mm
+    coords = space.coords_mm
     for k in reported[:MAX_CLUSTER_FIGURES]:
         member = labels == k
         src = np.flatnonzero(member.any(axis=1))
@@ -337,9 +343,9 @@ def render_report(results_dir) -> Path:
     (its run record comes last, so it is not required here)."""
     results = Path(results_dir)
     summary = read_json(results / SUMMARY_FILE)
-    grid = read_grid(results)
+    maps = open_maps(results, summary)
     cs_list = [read_json(results / n / "summary.json") for n in summary["contrasts"]]
-    figs = [contrast_figures(results, grid, summary, cs) for cs in cs_list]
+    figs = [contrast_figures(results, maps, summary, cs) for cs in cs_list]
     md = methods_text(summary, cs_list)
     write_text(results / METHODS_FILE, md)
     page = render_html(summary, cs_list, figs, results, md)

@@ -240,7 +240,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
                        std_effect_at_peak=g, std_effect_ci_low=lo / (lo + conv),
                        std_effect_ci_high=hi / (hi + conv))
         if atlas:
-            lab = int(grid.from_volume(atlas["labels"])[s])
+            lab = int(atlas["labels"][s])
             row["atlas_label_at_peak"] = atlas.get("names", {}).get(lab, str(lab)) if lab else "none"
         rows.append(row)
     return pd.DataFrame(rows, columns=cols)
@@ -250,7 +250,7 @@ def atlas_table(contrast, grid: VolumeGrid, atlas) -> pd.DataFrame:
     """cluster_atlas.tsv: share of each cluster's sources in each atlas region."""
     cols = list(COLUMNS["cluster_atlas.tsv"])
     labels = np.asarray(contrast.inference.cluster_labels)
-    per_source = np.asarray(grid.from_volume(atlas["labels"])).astype(np.int64)
+    per_source = np.asarray(atlas["labels"]).astype(np.int64)
     names = atlas.get("names", {})
     rows = []
     for k in np.unique(labels[labels > 0]):

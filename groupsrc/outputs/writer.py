@@ -17,11 +17,10 @@ import numpy as np
 import pandas as pd
 
 from ..stats.results import AnalysisResult, ContrastResult
-from ..formats import nifti
+from .. import formats
 from . import tables
 from .files import jsonable, write_json, write_tsv
-from .layout import (ALL_CLUSTERS, DATASET_DESCRIPTION, MASK_FILE, RUN_RECORD,
-                     SUMMARY_FILE)
+from .layout import ALL_CLUSTERS, DATASET_DESCRIPTION, RUN_RECORD, SUMMARY_FILE
 
 #: the BIDS specification version the description follows (1.10.0, from memory)
 BIDS_VERSION = "1.10.0"
@@ -74,7 +73,26 @@ def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
             "tfce": dataclasses.asdict(inf.tfce) if inf.tfce else None}
 
 
-def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, adjacency,
+def write_maps(c: ContrastResult, maps, folder: Path, reported) -> None:
+    """One contrast's maps through the source space's map format (``maps``)."""
+    inf = c.inference
+    maps.statistic(folder, "statistic", inf.statistic, inf.kind, inf.df, c.name)
+    if inf.kind == "t":
+        maps.estimate(folder, "estimate", inf.estimate, c.name, "estimate")
+        maps.estimate(folder, "std_error", inf.se, c.name, "std error", signed=False)
+    maps.estimate(folder, "std_effect", inf.std_effect, c.name,
+                  "hedges g" if inf.kind == "t" else "partial eta2",
+                  signed=inf.kind == "t", bounded=inf.kind != "t")
+    maps.p_values(folder, "p_uncorrected", inf.p_uncorrected, c.name, "uncorrected")
+    if inf.p_corrected is not None:
+        maps.p_values(folder, "p_corrected", inf.p_corrected, c.name, "corrected")
+    maps.labels(folder, "clusters", inf.cluster_labels, c.name)
+    if hasattr(maps, "cluster_summary"):
+        maps.cluster_summary(folder, "cluster_summary", inf.statistic, inf.cluster_labels,
+                             reported, inf.kind, c.name)
+
+
+def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, maps, adjacency,
                    atlas) -> dict:
     """One contrast's maps, tables and summary; returns its summary and tables."""
     grid, taxis = analysis.grid, analysis.time_axis
@@ -82,26 +100,8 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ad
     alpha = analysis.settings.get("inference", {}).get("alpha", 0.05)
     forming_p = analysis.settings.get("inference", {}).get("forming_p")
     folder.mkdir(parents=True, exist_ok=True)
-    nifti.save(folder / "statistic.nii.gz",
-               nifti.statistic_image(inf.statistic, grid, taxis, inf.kind, inf.df, c.name))
-    if inf.kind == "t":
-        nifti.save(folder / "estimate.nii.gz",
-                   nifti.estimate_image(inf.estimate, grid, taxis, c.name, "estimate"))
-    nifti.save(folder / "std_effect.nii.gz",
-               nifti.estimate_image(inf.std_effect, grid, taxis, c.name,
-                                    "hedges g" if inf.kind == "t" else "partial eta2",
-                                    signed=inf.kind == "t"))
-    nifti.save(folder / "p_uncorrected.nii.gz",
-               nifti.p_image(inf.p_uncorrected, grid, taxis, c.name, "uncorrected"))
-    if inf.p_corrected is not None:
-        nifti.save(folder / "p_corrected.nii.gz",
-                   nifti.p_image(inf.p_corrected, grid, taxis, c.name, "corrected"))
-    nifti.save(folder / "clusters.nii.gz",
-               nifti.label_image(inf.cluster_labels, grid, taxis, c.name))
     summ = _contrast_summary(c, alpha, forming_p)
-    nifti.save(folder / "cluster_summary.nii.gz",
-               nifti.cluster_summary_image(inf.statistic, inf.cluster_labels,
-                                           summ["reported_clusters"], grid, inf.kind, c.name))
+    write_maps(c, maps, folder, summ["reported_clusters"])
     ctab = tables.cluster_table(c, grid, taxis, atlas)
     write_tsv(folder / "clusters.tsv", ctab)
     write_tsv(folder / "peaks.tsv", tables.peak_table(c, grid, taxis, adjacency))
@@ -152,10 +152,9 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     names = [c.name for c in analysis.contrasts]
     if len(set(names)) != len(names):
         raise ValueError(f"contrast names must be unique, got {names}")
-    nifti.save(out / MASK_FILE, nifti.make_image(
-        np.ones(grid.n_sources, np.uint8), grid, None, dtype=np.uint8,
-        intent_name="source mask", descrip="groupsrc source mask", cal=(0, 1)))
-    written = [write_contrast(c, analysis, out / c.name, adjacency, atlas)
+    maps = formats.result_maps(grid, analysis.time_axis)
+    maps.write_space(out)
+    written = [write_contrast(c, analysis, out / c.name, maps, adjacency, atlas)
                for c in analysis.contrasts]
     frames = [w["clusters"] for w in written if len(w["clusters"])]
     all_clusters = (pd.concat(frames, ignore_index=True) if frames
@@ -172,8 +171,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
                "window": {"t0_s": ta.t0, "dt_s": ta.dt, "n": ta.n,
                           "start_ms": round(ta.times[0] * 1e3, 3),
                           "end_ms": round(ta.times[-1] * 1e3, 3), "dt_ms": round(ta.dt * 1e3, 6)},
-               "grid": {"shape": list(grid.shape), "affine": grid.affine.tolist(),
-                        "voxel_size_mm": grid.voxel_size.tolist()},
+               "space": grid.describe(), "map_format": maps.format,
                "settings": settings, "contrasts": names, "atlas": bool(atlas),
                "seed": run_record.get("seed"), "timings": analysis.timings}
     write_json(out / SUMMARY_FILE, jsonable(summary))
