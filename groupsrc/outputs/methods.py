@@ -105,7 +105,9 @@ def methods_text(summary: dict, contrasts: list) -> str:
                 f"({'; '.join(desc)}"
                 + ("; nuisance covariates handled by the Freedman-Lane procedure" if fl else "")
                 + (f"; random seed {seed}" if seed is not None else "") + "). "
-                f"Corrected p-values were computed as (b + 1) / (m + 1) {cite('pvalues')}.")
+                "Corrected p-values were computed as (b + 1) / (m + 1), where b of the m "
+                "rearrangements other than the observed one reached the observed value "
+                f"(exact tests: the share of all rearrangements) {cite('pvalues')}.")
     else:
         sent = ("No correction for multiple comparisons was applied; p-values are parametric."
                 if correction == "none" else
