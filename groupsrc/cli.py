@@ -179,7 +179,19 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     if s.get("sessions"):
         print(f"  sessions     : {', '.join(s['sessions'])}")
     print(f"  maps         : {s['maps']}")
-    print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
+    if "voxel_size_mm" in s:
+        print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
+    else:
+        print(f"  sources      : {s['sources']} vertices ("
+              + ", ".join(f"{h} {p['sources']} of {p['vertices']}"
+                          for h, p in s["hemispheres"].items())
+              + f"; maps as {'CIFTI-2' if s['map_format'] == 'cifti' else 'GIfTI'})")
+        for name, n in s.get("ignored_parts", {}).items():
+            print(f"  not read     : {name} ({n} elements; only the cortex surfaces are "
+                  "analysed)")
+        for h, n in s.get("mask_vertices_without_data", {}).items():
+            print(f"  note         : {n} vertices of mask_{h} have no data in the maps and are "
+                  "not sources")
     print(f"  samples      : {s['samples']}, {s['time_range_ms'][0]:g} to "
           f"{s['time_range_ms'][1]:g} ms every {s['sampling_interval_ms']:g} ms")
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")

@@ -23,7 +23,8 @@ from .inputs.cohort import Cohort, load_cohort, summary
 from .inputs.design import Design, build_design, plan_contrast, reduction_matrix
 from .inputs.problems import InputError, ProblemList
 from .stats.results import AnalysisResult, ContrastResult
-from .inputs.settings import Settings, parse_settings
+from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
+from .inputs.tables import HEMISPHERE_PATHS
 
 log = logging.getLogger("groupsrc")
 
@@ -45,6 +46,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     reported together with those of the cohort and design.
     """
     problems = ProblemList(prior or [])
+    check_neighbors(settings, problems)
     if any(settings.cohort.get(k) is None for k in ("participants", "maps")):
         raise InputError(problems)
     if settings.model.get("mixed"):
@@ -200,13 +202,15 @@ def declared_inputs(settings: Settings) -> list:
     and (best effort) the maps the maps table lists; the loading stage reports
     any problem with them."""
     paths = [settings.path] + [settings.resolve(settings.cohort.get(k)) for k in
-                               ("participants", "maps", "mask", "atlas", "atlas_labels")]
+                               ("participants", "maps", "mask", "atlas", "atlas_labels")
+                               + SURFACE_KEYS]
     mpath = settings.resolve(settings.cohort.get("maps"))
     if mpath is not None and mpath.is_file():
         try:
             table = pd.read_csv(mpath, sep="\t", dtype=str, keep_default_na=False,
-                                usecols=["path"])
-            paths += [mpath.parent / rel for rel in table["path"] if rel.strip()]
+                                usecols=lambda c: c in ("path",) + HEMISPHERE_PATHS)
+            paths += [mpath.parent / rel for col in table.columns for rel in table[col]
+                      if rel.strip()]
         except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserError):
             pass
     return [p for p in paths if p is not None]
