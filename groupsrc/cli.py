@@ -28,11 +28,14 @@ def _parser():
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     d = sub.add_parser("demo", help="build the demo cohort, run its analysis, write a report")
-    d.add_argument("--out", type=Path, default=Path("groupsrc_demo_results"),
-                   help="results folder (default: ./groupsrc_demo_results)")
+    d.add_argument("--out", type=Path, default=None,
+                   help="results folder (default: ./groupsrc_demo_results, with --surface "
+                        "./groupsrc_surface_demo_results)")
     d.add_argument("--cohort-dir", type=Path, default=None,
                    help="where to build the demo cohort (default: OUT/../groupsrc_demo_cohort)")
     d.add_argument("--small", action="store_true", help="a small, fast cohort (for tests)")
+    d.add_argument("--surface", action="store_true",
+                   help="the cortical-surface demo: GIfTI maps on a synthetic folded cortex")
     d.add_argument("--resamples", type=int, default=None)
     d.add_argument("--seed", type=int, default=None)
     d.add_argument("--workers", type=int, default=1)
@@ -205,7 +208,9 @@ def cmd_check(analysis: Path, as_json=False) -> int:
 def cmd_demo(args, command) -> int:
     from .outputs.folder import check_target, sweep_stale
     from .simulate import build_demo_cohort, check_cohort_target
-    out = args.out.resolve()
+    surface = getattr(args, "surface", False)
+    out = (args.out or Path("groupsrc_surface_demo_results" if surface
+                            else "groupsrc_demo_results")).resolve()
     cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
     size = "small" if args.small else "default"
     # refuse before spending a minute on the simulation
@@ -218,9 +223,13 @@ def cmd_demo(args, command) -> int:
         pass
     if problems:
         raise InputError(problems)
-    print(f"building the {size} demo cohort in {cohort_dir} ...")
+    print(f"building the {size} {'surface ' if surface else ''}demo cohort in {cohort_dir} ...")
     t = time.perf_counter()
-    analysis = build_demo_cohort(cohort_dir, size=size)
+    if surface:
+        from .simulate.surface_build import build_surface_demo_cohort
+        analysis = build_surface_demo_cohort(cohort_dir, size=size)
+    else:
+        analysis = build_demo_cohort(cohort_dir, size=size)
     print(f"  built in {time.perf_counter() - t:.1f} s")
     rc = cmd_check(analysis)
     if rc != EXIT_OK or args.build_only:

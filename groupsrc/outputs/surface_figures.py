@@ -125,6 +125,10 @@ def view_polygons(vertices, triangles, face_rgb, direction, outline=None, outlin
     colours = [np.clip(face_rgb[keep] * shade[:, None], 0, 1)]
     depths = [depth[tri].mean(axis=1)]
     if outline is not None and len(outline):
+        seen = np.zeros(len(v), bool)
+        seen[tri.ravel()] = True
+        outline = outline[seen[outline].all(axis=1)]     # edges of front-facing triangles only
+    if outline is not None and len(outline):
         a, b = xy[outline[:, 0]], xy[outline[:, 1]]
         along = b - a
         perp = np.column_stack([-along[:, 1], along[:, 0]])
@@ -164,7 +168,8 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None) -> l
     rgb = vertex_colours(space, values, kind, vlim)
     hemis = space.hemispheres
     fig = figures.new_figure(62 * len(hemis) + 14)
-    gs = fig.add_gridspec(len(hemis), 3, width_ratios=[1, 1, 0.05])
+    gs = fig.add_gridspec(len(hemis), 2)
+    axes = []
     extent = max(np.ptp(np.column_stack([h.vertices[:, 1], h.vertices[:, 2]]), axis=0).max()
                  for h in hemis)
     for i, h in enumerate(hemis):
@@ -175,10 +180,12 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None) -> l
         edges = boundary_edges(t, member)
         for j, (view, direction) in enumerate(VIEWS[h.name]):
             ax = fig.add_subplot(gs[i, j])
+            axes.append(ax)
             polys, colours = view_polygons(h.vertices, t, face, direction, edges,
                                            outline_width=0.012 * extent)
             coll = PolyCollection(polys, facecolors=colours, edgecolors=colours,
                                   linewidths=0.25, rasterized=True)
+            coll.set_in_layout(False)
             ax.add_collection(coll)
             lo, hi = polys.reshape(-1, 2).min(axis=0), polys.reshape(-1, 2).max(axis=0)
             pad = 0.03 * extent
@@ -193,9 +200,8 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None) -> l
                     weight="bold", ha="left", va="bottom")
             ax.text(1.0, 0.0, "A" if front_right else "P", transform=ax.transAxes,
                     weight="bold", ha="right", va="bottom")
-    cax = fig.add_subplot(gs[:, 2])
     sm = matplotlib.cm.ScalarMappable(norm=Normalize(*vlim), cmap=surface_cmap(kind))
-    cb = fig.colorbar(sm, cax=cax)
+    cb = fig.colorbar(sm, ax=axes, shrink=0.8, aspect=30, pad=0.02)
     cb.set_label("t" if kind == "t" else "F")
     fig.suptitle(title, fontsize=8.5)
     return figures.save(fig, base)
