@@ -1,9 +1,9 @@
 """Surface figures: lateral and medial views of each hemisphere, drawn with matplotlib.
 
 :func:`surface_figures` is the ``SPATIAL_FIGURES["surface"]`` entry of the
-report: for each reported cluster (at most ``MAX_VIEWS``) the statistic at
-the cluster's peak time on the template meshes, with every reported cluster
-present at that time outlined along mesh edges.
+report: for each distinct peak time of the reported clusters (at most
+``MAX_VIEWS``) the statistic at that time on the template meshes, with every
+reported cluster present at that time outlined along mesh edges.
 
 How a view is drawn (orthographic projection, no 3D toolkit):
 
@@ -27,8 +27,9 @@ positive, blue negative, near white at zero; a diverging scheme ColorBrewer
 marks as colour-blind safe), so the shading of the folds stays readable
 where the statistic is small; F uses its upper half (white to red).  This
 differs on purpose from the volume projections' map, which is dark at zero.
-Vertices that are not sources (outside the mask, e.g. the medial wall) are
-mid grey.  The triangle layer is rasterised in the SVG (text stays vector),
+Points in no cluster at the time shown are faded toward light grey, so the
+clusters stand out while the rest of the map stays visible; vertices that are
+not sources (outside the mask, e.g. the medial wall) are mid grey.  The triangle layer is rasterised in the SVG (text stays vector),
 so a 20,000-vertex mesh gives a file of moderate size.
 """
 
@@ -45,6 +46,8 @@ from . import figures
 
 MAX_VIEWS = 4
 NOT_SOURCE = np.array([0.55, 0.55, 0.55])
+#: points in no cluster at the time shown are faded this far toward FADED
+FADE, FADED = 0.7, np.array([0.86, 0.86, 0.86])
 OUTLINE = "#000000"
 AMBIENT, DIFFUSE = 0.35, 0.65
 #: (title, camera direction from the object to the viewer) per hemisphere
@@ -146,26 +149,36 @@ def view_polygons(vertices, triangles, face_rgb, direction, outline=None, outlin
 # the figure
 # ----------------------------------------------------------------------------
 
-def vertex_colours(space, values, kind, vlim):
-    """{hemisphere: (V, 3) rgb}: the colour map at sources, grey elsewhere."""
+def vertex_colours(space, values, kind, vlim, strong=None):
+    """{hemisphere: (V, 3) rgb}: the colour map at sources, grey elsewhere.
+
+    Sources not in ``strong`` (bool per source; default all) are faded toward
+    light grey (FADE of the way), so the map's pattern stays visible but the
+    points in clusters stand out.
+    """
     cmap, norm = surface_cmap(kind), Normalize(*vlim)
+    strong = np.ones(space.n_sources, bool) if strong is None else np.asarray(strong, bool)
     out = {}
     for h in space.hemispheres:
         rgb = np.tile(NOT_SOURCE, (h.n_vertices, 1))
-        vals = np.asarray(values, float)[space.source_slice(h.name)]
-        rgb[h.sources] = cmap(norm(np.nan_to_num(vals)))[:, :3]
+        part = space.source_slice(h.name)
+        col = cmap(norm(np.nan_to_num(np.asarray(values, float)[part])))[:, :3]
+        weak = ~strong[part]
+        col[weak] = (1 - FADE) * col[weak] + FADE * FADED
+        rgb[h.sources] = col
         out[h.name] = rgb
     return out
 
 
-def views_figure(space, values, inside, kind, title, base: Path, vlim=None) -> list:
+def views_figure(space, values, inside, kind, title, base: Path, vlim=None, strong=None) -> list:
     """Lateral and medial views of each hemisphere of per-source ``values``.
 
-    ``inside``: bool per source, the points outlined (reported clusters).
-    Returns the written paths (PNG and SVG).
+    ``inside``: bool per source, the points outlined (reported clusters);
+    ``strong``: bool per source, the points shown in full colour (others
+    faded; default all).  Returns the written paths (PNG and SVG).
     """
     vlim = vlim if vlim is not None else figures._stat_range(values, kind)
-    rgb = vertex_colours(space, values, kind, vlim)
+    rgb = vertex_colours(space, values, kind, vlim, strong)
     hemis = space.hemispheres
     fig = figures.new_figure(62 * len(hemis) + 14)
     gs = fig.add_gridspec(len(hemis), 2)
@@ -211,28 +224,48 @@ def _sample_index(times, value_ms):
     return int(np.abs(np.asarray(times, float) - float(value_ms)).argmin())
 
 
+def _views(clusters, reported, times):
+    """[(sample, [clusters peaking there])] for the first MAX_VIEWS distinct peak samples."""
+    out = {}
+    for k in reported:
+        r = clusters.loc[clusters["cluster"] == k].iloc[0]
+        out.setdefault(_sample_index(times, r["t_peak_ms"]), []).append(k)
+    return list(out.items())[:MAX_VIEWS]
+
+
+def _title(name, kind, time_ms, ks, clusters):
+    if not ks:
+        return f"{name}: {kind} at its largest |{kind}|, {time_ms:g} ms (no cluster reported)"
+    ps = clusters.set_index("cluster").loc[ks, "p_corrected"].to_numpy(float)
+    which = (f"cluster {ks[0]}" if len(ks) == 1 else
+             "clusters " + ", ".join(str(k) for k in ks[:-1]) + f" and {ks[-1]}")
+    ptxt = (f" (p = {ps[0]:.3g})" if len(ks) == 1 and np.isfinite(ps[0]) else
+            f" (p <= {np.nanmax(ps):.3g})" if np.isfinite(ps).all() else "")
+    return f"{name}: {kind} at {time_ms:g} ms, peak of {which}{ptxt}"
+
+
 def surface_figures(space, stat, labels, clusters, reported, times, name, kind, figdir) -> list:
-    """The report's spatial figures of a surface: [(caption, png path)]."""
+    """The report's spatial figures of a surface: [(caption, png path)].
+
+    One figure per distinct peak time of the reported clusters (at most
+    MAX_VIEWS), so clusters peaking at the same sample share one figure.
+    """
     vlim = figures._stat_range(stat, kind)
+    views = _views(clusters, reported, times)
+    if not views:
+        s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
+        views = [(int(t), [])]
     out = []
-    for k in reported[:MAX_VIEWS] or [None]:
-        if k is None:
-            s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
-            t_idx = int(t)
-            title = f"{name}: {kind} at its largest |{kind}|, {times[t_idx]:g} ms (no cluster reported)"
-            base = figdir / "surface_peak"
-        else:
-            r = clusters.loc[clusters["cluster"] == k].iloc[0]
-            t_idx = _sample_index(times, r["t_peak_ms"])
-            p = r["p_corrected"]
-            title = (f"{name}: {kind} at {times[t_idx]:g} ms, peak of cluster {k}"
-                     + (f" (p = {p:.3g})" if np.isfinite(p) else ""))
-            base = figdir / f"surface_cluster{k:02d}"
+    for t_idx, ks in views:
+        base = figdir / (f"surface_cluster{ks[0]:02d}" if ks else "surface_peak")
         inside = np.isin(labels[:, t_idx], reported) if reported else np.zeros(len(stat), bool)
-        views_figure(space, stat[:, t_idx], inside, kind, title, base, vlim=vlim)
+        views_figure(space, stat[:, t_idx], inside, kind,
+                     _title(name, kind, times[t_idx], ks, clusters), base, vlim=vlim,
+                     strong=labels[:, t_idx] > 0)
         out.append((f"The {kind} map at {times[t_idx]:g} ms on the template surface: lateral "
                     "and medial views of each hemisphere (A: anterior, P: posterior), shaded "
-                    "to show the folds; grey: not a source (outside the mask); black "
-                    "outlines: reported clusters at that time, along mesh edges.",
+                    "to show the folds; full colour: points in a cluster at that time, faded: "
+                    "the rest; dark grey: not a source (outside the mask); black outlines: "
+                    "reported clusters at that time, along mesh edges.",
                     base.with_suffix(".png")))
     return out
