@@ -57,10 +57,8 @@ class NullJob:
         return lo, pos, neg
 
     def pieces(self, B, workers):
-        """Split B maps into work items for ``workers`` (whole stacking groups)."""
-        group = self.correction.group_size(B)
-        n_groups = -(-B // group)
-        step = max(1, -(-n_groups // workers)) * group
+        """Split B maps into one work item per worker."""
+        step = max(1, -(-B // workers))
         return [(a, min(B, a + step)) for a in range(0, B, step)]
 
 
