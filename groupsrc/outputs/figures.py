@@ -35,7 +35,9 @@ OUTLINE_CLUSTER = "#ffffff"
 
 STYLE = {"font.size": 7.5, "axes.titlesize": 8.5, "axes.labelsize": 7.5,
          "xtick.labelsize": 7, "ytick.labelsize": 7, "legend.fontsize": 7,
-         "svg.fonttype": "none", "axes.spines.top": False, "axes.spines.right": False}
+         "svg.fonttype": "none", "axes.spines.top": False, "axes.spines.right": False,
+         # fixed salt for the SVG element ids, so equal figures give equal files
+         "svg.hashsalt": "groupsrc"}
 
 
 def diverging_cmap():
