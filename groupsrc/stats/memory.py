@@ -40,7 +40,7 @@ PER_FEATURE = 12 * 8
 #: the interpreter and its libraries, not counted by --memory (measured, rounded up)
 FIXED_OVERHEAD = 350 * 2 ** 20
 #: bytes of the maps read per reduction chunk, at most and at least
-CHUNK_MAX, CHUNK_MIN = 64 * 2 ** 20, 2 * 2 ** 20
+CHUNK_MAX, CHUNK_MIN = 64 * 2 ** 20, 256 * 2 ** 10
 _UNITS = {"": 1, "b": 1, "k": 2 ** 10, "kb": 10 ** 3, "kib": 2 ** 10, "m": 2 ** 20,
           "mb": 10 ** 6, "mib": 2 ** 20, "g": 2 ** 30, "gb": 10 ** 9, "gib": 2 ** 30,
           "t": 2 ** 40, "tb": 10 ** 12, "tib": 2 ** 40}
