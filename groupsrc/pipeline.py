@@ -352,7 +352,7 @@ def run_record(settings, prep, result, command, workers) -> dict:
     import importlib.metadata as md
     libs = {}
     for name in ("numpy", "scipy", "pandas", "nibabel", "statsmodels", "matplotlib",
-                 "formulaic", "joblib", "tqdm"):
+                 "formulaic", "joblib", "tqdm", "numba", "dask", "distributed"):
         try:
             libs[name] = md.version(name)
         except md.PackageNotFoundError:

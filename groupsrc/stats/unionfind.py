@@ -219,15 +219,16 @@ def _extent_weight(n, E):
 
 
 @njit(**_JIT)
-def _radix_order(vals, order):
+def _radix_order(vals, order, src):
     """Positions of ``vals`` (non-negative float64) from the largest down.
 
     LSD radix sort on the IEEE bit patterns (monotone for non-negative
     floats), four passes of 16 bits; ties come out in reverse position order.
-    Writes into ``order`` (at least ``vals.size``) and returns its first ``K``.
+    Writes into ``order`` (at least ``vals.size``; ``src`` of the same size is
+    scratch) and returns its first ``K``.
     """
     K = vals.size
-    src = np.empty(K, np.int32)
+    src = src[:K]
     dst = order[:K]
     bits = vals.view(np.uint64)
     for i in range(K):
@@ -251,11 +252,14 @@ def _radix_order(vals, order):
 
 
 def tfce_workspace(F):
-    """Scratch arrays for :func:`_tfce_into` on maps of ``F`` points (reused across maps)."""
+    """Scratch arrays for :func:`_tfce_into` on maps of ``F`` points, reused across
+    maps: no allocation per map (large allocations and their page faults serialise
+    threads)."""
     return (np.empty(F, np.float64), np.empty(F, np.int8), np.empty(F, np.int32),
             np.empty(F, np.int32), np.empty(F, np.int32), np.empty(F, np.int32),
             np.empty(2 * F, np.int32), np.empty(2 * F, np.float64),
-            np.empty(2 * F, np.float64))
+            np.empty(2 * F, np.float64), np.empty(F, np.int32), np.empty(F, np.float64),
+            np.empty(F, np.int32))
 
 
 @njit(**_JIT)
@@ -266,7 +270,7 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
     ``dh``: exact integral when both are <= 0, else the stepped sum with the
     fixed step ``dh`` or ``max|x| / steps``.  ``ws``: :func:`tfce_workspace`.
     """
-    a, sgn, parent, rank, rootnode, leaf, nparent, ntop, nval = ws
+    a, sgn, parent, rank, rootnode, leaf, nparent, ntop, nval, pts_ws, vals_ws, scratch = ws
     F = x.size
     top = 0.0
     for v in range(F):
@@ -306,15 +310,15 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
             K += 1
     if K == 0:
         return
-    pts = np.empty(K, np.int32)
-    vals = np.empty(K, np.float64)
+    pts = pts_ws[:K]
+    vals = vals_ws[:K]
     i = 0
     for v in range(F):
         if sgn[v] != 0:
             pts[i] = v
             vals[i] = a[v]
             i += 1
-    order = _radix_order(vals, rank)          # descending height
+    order = _radix_order(vals, rank, scratch)   # descending height
     # work in rank space: point i is the i-th highest; rank[v] >= i means "not yet"
     P = parent                                # P[i]: flat index of the i-th point
     for i in range(K):
