@@ -14,7 +14,7 @@ from groupsrc.stats.memory import MemoryTooSmall, minimum, parse_size, plan
 from groupsrc.stats.reduction import reduce_maps
 
 
-def _problem(n=150, seed=0):
+def _problem(n=200, seed=0):
     rng = np.random.default_rng(seed)
     grid = VolumeGrid.from_mask(np.ones((10, 10, 10), bool), np.eye(4))
     T = 20

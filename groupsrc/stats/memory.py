@@ -35,8 +35,9 @@ import numpy as np
 from .kernels import RES_BLOCK
 from .pages import release  # noqa: F401  (re-exported)
 
-#: bytes per feature held outside the batches (observed maps and results, float64)
-PER_FEATURE = 12 * 8
+#: bytes per feature held outside the batches (observed maps, results and their
+#: temporaries, float64; measured with tests/benchmarks/bench_memory.py)
+PER_FEATURE = 20 * 8
 #: the interpreter and its libraries, not counted by --memory (measured, rounded up)
 FIXED_OVERHEAD = 350 * 2 ** 20
 #: bytes of the maps read per reduction chunk, at most and at least
