@@ -238,6 +238,8 @@ def _radix_order(vals, order, src):
         count[:] = 0
         for i in range(K):
             count[((bits[src[i]] >> np.uint64(shift)) & np.uint64(0xFFFF)) + 1] += 1
+        if count[1 + ((bits[src[0]] >> np.uint64(shift)) & np.uint64(0xFFFF))] == K:
+            continue                  # one digit value for every key: nothing to move
         for j in range(65536):
             count[j + 1] += count[j]
         for i in range(K):
@@ -319,24 +321,28 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
             vals[i] = a[v]
             i += 1
     order = _radix_order(vals, rank, scratch)   # descending height
-    # work in rank space: point i is the i-th highest; rank[v] >= i means "not yet"
-    P = parent                                # P[i]: flat index of the i-th point
+    # work in rank space: point i is the i-th highest.  P[i] its flat index, A[i] its
+    # height; rank[v] = 2 i + (1 if negative), so one read gives "visited yet?" and sign
+    P = parent
+    A = a                                     # the heights by rank (a is no longer needed)
     for i in range(K):
         P[i] = pts[order[i]]
+        A[i] = vals[order[i]]
     for v in range(F):
         rank[v] = _NOT_YET
     for i in range(K):
-        rank[P[i]] = i
+        rank[P[i]] = 2 * i + (1 if sgn[P[i]] < 0 else 0)
     up = pts                                  # union-find over ranks (reuses pts)
     size = leaf                               # component sizes by root rank
     nn = 0
     for i in range(K):
         v = np.int64(P[i])
-        g = _height_weight(a[v], H, step, prefix)
-        c = sgn[v]
+        g = _height_weight(A[i], H, step, prefix)
+        bit = rank[v] & 1
         up[i] = i
         size[i] = 1
         rootnode[i] = -1                      # a single point: no node until needed
+        ri = np.int64(i)                      # the root of i's component
         s = v // T
         t = v - s * T
         j0 = adj_ptr[s]
@@ -352,11 +358,10 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
                 u = v + 1
             else:
                 u = np.int64(adj_idx[j0 + d]) * T + t
-            j = rank[u]
-            if j >= i or sgn[u] != c:
+            ru = rank[u]
+            if ru >= 2 * i or (ru & 1) != bit:
                 continue
-            rj = np.int64(_find(up, j))
-            ri = np.int64(_find(up, i))
+            rj = np.int64(_find(up, ru >> 1))
             if rj == ri:
                 continue
             # close the nodes of both components at this height (a node opened at
@@ -367,20 +372,19 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
                     nparent[nd] = nn
                     if ntop[nd] != g:
                         nval[nd] = _extent_weight(size[r0], E) * (ntop[nd] - g)
-            r = _union(up, size, rj, ri)
-            rootnode[r] = nn
+            ri = np.int64(_union(up, size, rj, ri))
+            rootnode[ri] = nn
             ntop[nn] = g
             nval[nn] = 0.0
             nparent[nn] = -1
             nn += 1
-        r = _find(up, i)
-        if rootnode[r] < 0:                   # no neighbour yet: a node of its own
-            rootnode[r] = nn
+        if rootnode[ri] < 0:                  # no neighbour yet: a node of its own
+            rootnode[ri] = nn
             ntop[nn] = g
             nval[nn] = 0.0
             nparent[nn] = -1
             nn += 1
-        vals[i] = rootnode[r]                 # the point's leaf node
+        vals[i] = rootnode[ri]                # the point's leaf node
     for i in range(K):                        # components still open at height 0
         if up[i] == i:
             nd = rootnode[i]
@@ -390,7 +394,7 @@ def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, w
             nval[nd] += nval[nparent[nd]]
     for i in range(K):
         v = P[i]
-        out[v] = sgn[v] * nval[np.int64(vals[i])] * scale
+        out[v] = (1 - 2 * (rank[v] & 1)) * nval[np.int64(vals[i])] * scale
 
 
 @njit(**_JIT)
