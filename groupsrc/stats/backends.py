@@ -71,13 +71,18 @@ class NullJob:
         return [(a, min(B, a + step)) for a in range(0, B, step)]
 
 
-def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16, budget=None):
+def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16, budget=None,
+               tasks=1):
     """Default batch size: a whole number of product blocks (at least one) whose
     maps fit ``budget`` bytes (default ``MEMORY_BUDGET``) across ``buffers``
-    buffers alive at once."""
+    buffers alive at once, and small enough to give at least ``tasks`` batches
+    (so that workers taking whole batches share the work evenly)."""
     budget = MEMORY_BUDGET if budget is None else budget
     fit = budget / max(1, buffers) // (4.0 * n_features) if needs_maps else 256
     B = max(block, int(fit) // block * block)
+    if tasks > 1:
+        share = -(-n_resamples // tasks)
+        B = min(B, max(block, -(-share // block) * block))
     return int(max(1, min(n_resamples, B)))
 
 
@@ -95,6 +100,11 @@ class Backend(ABC):
     @property
     def buffers(self) -> int:
         """Map buffers alive at once (for the batch-size budget)."""
+        return 1
+
+    @property
+    def tasks(self) -> int:
+        """Batches wanted at least, for an even share between workers."""
         return 1
 
     @abstractmethod
@@ -158,6 +168,10 @@ class ProcessBackend(Backend):
     @property
     def buffers(self):
         return self.workers
+
+    @property
+    def tasks(self):
+        return 4 * self.workers
 
     def run(self, job, batches, collect):
         if self.workers == 1:
@@ -251,6 +265,10 @@ class DaskBackend(Backend):
     @property
     def buffers(self):
         return 1                 # one batch per worker process, each with its own memory
+
+    @property
+    def tasks(self):
+        return 4 * self.workers
 
     def run(self, job, batches, collect):
         if not batches:

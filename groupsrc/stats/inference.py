@@ -224,7 +224,8 @@ def _null(job, m, kernel, correction, spec, execution, fixed):
     options = {"scheduler": execution.scheduler} if execution.backend == "dask" else {}
     backend = make_backend(execution.backend, execution.n_jobs, **options)
     B = execution.batch_size or auto_batch(m, kernel.n_features, correction.needs_maps,
-                                           backend.buffers, budget=execution.map_budget)
+                                           backend.buffers, budget=execution.map_budget,
+                                           tasks=backend.tasks)
     pos, neg = np.zeros(m), np.zeros(m)
     done = np.zeros(m, bool)
     saved = execution.checkpoint
