@@ -283,6 +283,9 @@ def open_checkpoint(out, prep, resamples, seed, resume):
             cp = Checkpoint.resume(folder, fingerprint, __version__)
             log.info(f"resuming the interrupted run from {folder}")
             return cp
+        if (folder / "manifest.json").exists():
+            log.info(f"starting afresh: the checkpoint of an earlier interrupted run in {folder} "
+                     "is replaced (run with --resume to continue such a run instead)")
         return Checkpoint.start(folder, fingerprint, __version__)
     except CheckpointError as exc:
         problems = ProblemList()
