@@ -16,6 +16,7 @@ from pathlib import Path
 
 from . import __version__
 from .inputs.problems import InputError, ProblemList
+from .stats.backends import BackendUnavailable
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -54,6 +55,16 @@ def _parser():
     r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
     r.add_argument("--workers", type=int, default=1, help="parallel workers (default 1)")
     r.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    r.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run of the same analysis from its checkpoint")
+    r.add_argument("--scheduler", default=None, metavar="ADDRESS|local:N",
+                   help="run the resampling on Dask: a running scheduler's address "
+                        "(tcp://host:8786) or local:N for a local cluster of N workers")
+    r.add_argument("--memory", default=None, metavar="SIZE",
+                   help="bound the working set, e.g. 2G or 512M (the interpreter and its "
+                        "libraries, about 350 MiB, come on top)")
+    r.add_argument("--quiet", action="store_true",
+                   help="no progress bars or progress lines (problems are still printed)")
 
     rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
     rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
@@ -69,6 +80,18 @@ def _check_options(args, parser):
             parser.error(f"--{name} must be at least 1, got {v}")
     if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
         parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
+    from .stats.backends import parse_scheduler
+    from .stats.memory import parse_size
+    if getattr(args, "scheduler", None) is not None:
+        try:
+            parse_scheduler(args.scheduler)
+        except ValueError as exc:
+            parser.error(f"--scheduler: {exc}")
+    if getattr(args, "memory", None) is not None:
+        try:
+            args.memory = parse_size(args.memory)
+        except ValueError as exc:
+            parser.error(f"--memory: {exc}")
     from .stats.inference import SEED_LIMIT
     seed = getattr(args, "seed", None)
     if seed is not None and not 0 <= seed < SEED_LIMIT:
@@ -88,6 +111,12 @@ def main(argv=None) -> int:
         return _dispatch(args, argv)
     except InputError as exc:
         print(exc.problems.format(), file=sys.stderr)
+        return EXIT_DATA
+    except BackendUnavailable as exc:
+        print(f"1 problem found:\n  1. --scheduler {args.scheduler}: {exc} -> start the "
+              "scheduler and its workers first, check the address and port, or use "
+              "--scheduler local:N (or leave --scheduler out) to run on this machine",
+              file=sys.stderr)
         return EXIT_DATA
     except OSError as exc:
         # the file system refused (permission, disk full, ...): not a bug of ours
@@ -150,7 +179,9 @@ def _dispatch(args, argv) -> int:
         from .pipeline import run
         t = time.perf_counter()
         out = run(args.analysis, args.out, resamples=args.resamples, seed=args.seed,
-                  workers=args.workers, overwrite=args.overwrite, command=command)
+                  workers=args.workers, overwrite=args.overwrite, command=command,
+                  resume=args.resume, scheduler=args.scheduler, memory=args.memory,
+                  quiet=args.quiet)
         print(f"results written to {out} ({time.perf_counter() - t:.1f} s); "
               f"open {out / 'report.html'}")
         return EXIT_OK

@@ -256,11 +256,15 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         bad, broken = {int(k): v for k, v in meta.get("nonfinite", {}).items()}, {}
         cache_hit = True
     else:
-        Y, grid, bad, broken = _decode(headers, ref, mask, progress)
+        Y, grid, bad, broken = _decode(
+            headers, ref, mask, progress,
+            allocate=(lambda shape: _cache.create(cache_dir, key, shape)) if use_cache else None)
         cache_hit = False
         if not bad and not broken:
             Y = _cache.store(cache_dir, key, Y,
                              {"flat_index": grid.flat_index.tolist(), "nonfinite": {}})
+        else:
+            _cache.discard(Y)
     _decode_problems(problems, maps, mpath, headers, bad, broken)
     if grid.n_sources == 0 and not broken:
         problems.add(mpath, "no source is finite in every map", "give a mask")
@@ -390,9 +394,22 @@ def _read_atlas(settings, ref, problems):
     return {"labels": labels, "names": names}
 
 
-def _decode(headers, ref, mask, progress):
-    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}."""
-    from tqdm.auto import tqdm
+def _decode(headers, ref, mask, progress, allocate=None):
+    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}.
+
+    ``progress``: a :func:`groupsrc.progress.reporter`, or True/False/None (a bar
+    on a terminal); ``allocate(shape)`` gives the array Y is decoded into (e.g.
+    the cache's memory-mapped file, whose pages are handed back map by map).
+    """
+    from ..progress import track
+    from ..stats.pages import release
+    if callable(progress):
+        new = None if getattr(progress, "mode", "") == "quiet" else progress
+
+        def tqdm(items, desc, unit, disable):
+            return track(items, new, desc, len(items), unit)
+    else:
+        from tqdm.auto import tqdm
     if progress is None:
         progress = sys.stderr.isatty()
     n_t = ref.shape[3]
@@ -410,7 +427,9 @@ def _decode(headers, ref, mask, progress):
             mask &= np.isfinite(data).all(axis=3)
             mask &= ~(data == 0).all(axis=3)
     grid = VolumeGrid.from_mask(mask, ref.affine)
-    Y = np.empty((len(headers), grid.n_sources, n_t), dtype=np.float32)
+    shape = (len(headers), grid.n_sources, n_t)
+    Y = allocate(shape) if allocate is not None else None
+    Y = np.empty(shape, dtype=np.float32) if Y is None else Y
     flat = grid.flat_index
     bad = {}
     for i, h in enumerate(tqdm(headers, desc="loading maps", unit="map", disable=not progress)):
@@ -424,6 +443,7 @@ def _decode(headers, ref, mask, progress):
         nonfinite = int((~np.isfinite(Y[i])).sum())
         if nonfinite:
             bad[i] = nonfinite
+        release(Y)
     return Y, grid, bad, broken
 
 

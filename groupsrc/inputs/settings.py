@@ -170,8 +170,10 @@ SCHEMA = {
         "height_power": Key(NUMBER, 2.0, "TFCE height exponent (H in Smith & Nichols 2009)",
                             _positive, "the TFCE height exponent must be a positive number",
                             "use the usual 2 (Smith & Nichols 2009)"),
-        "steps": Key(int, 100, "TFCE number of height steps per map",
-                     lambda v: v >= 10, "must be at least 10", "use 100"),
+        "steps": Key(int, None, "TFCE height steps per map for the stepped sum; "
+                     "default: the exact integral at the data values",
+                     lambda v: v >= 10, "must be at least 10",
+                     "use 100, or leave it out for the exact integral"),
     },
 }
 

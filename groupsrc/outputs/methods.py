@@ -149,8 +149,9 @@ def methods_text(summary: dict, contrasts: list) -> str:
             or inf.get("tfce") or {}
         parts.append(f"TFCE used the extent exponent E = {tf.get('extent_power', 0.5)} and "
                      f"the height exponent H = {tf.get('height_power', 2.0)} of Smith & Nichols, "
-                     f"{tf.get('steps', 100)} height steps per map, and "
-                     f"{_neighbour_text(summary, inf)} neighbours.")
+                     + (f"{tf['steps']} height steps per map, and " if tf.get("steps")
+                        else "the exact height integral at the data values, and ")
+                     + f"{_neighbour_text(summary, inf)} neighbours.")
     has_f = any(c["kind"] == "F" for c in contrasts)
     has_t = any(c["kind"] == "t" for c in contrasts)
     if has_t:

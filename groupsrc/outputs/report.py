@@ -351,6 +351,22 @@ def build_report(results_dir) -> Path:
     return render_report(results_dir)
 
 
+def _all_contrast_figures(results, maps, summary, cs_list):
+    """Each contrast's figures, drawn in parallel worker processes (forked, one per
+    contrast, at most one per core) where the system allows, else one after the other.
+    Figures are the same either way: each contrast's are drawn by one process."""
+    import multiprocessing
+    import os
+    workers = min(len(cs_list), os.cpu_count() or 1)
+    if workers < 2 or "fork" not in multiprocessing.get_all_start_methods():
+        return [contrast_figures(results, maps, summary, cs) for cs in cs_list]
+    from concurrent.futures import ProcessPoolExecutor
+    context = multiprocessing.get_context("fork")
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+        futures = [pool.submit(contrast_figures, results, maps, summary, cs) for cs in cs_list]
+        return [f.result() for f in futures]
+
+
 def render_report(results_dir) -> Path:
     """Draw figures, methods.md and report.html of a folder the writer is filling
     (its run record comes last, so it is not required here)."""
@@ -358,7 +374,7 @@ def render_report(results_dir) -> Path:
     summary = read_json(results / SUMMARY_FILE)
     maps = open_maps(results, summary)
     cs_list = [read_json(results / n / "summary.json") for n in summary["contrasts"]]
-    figs = [contrast_figures(results, maps, summary, cs) for cs in cs_list]
+    figs = _all_contrast_figures(results, maps, summary, cs_list)
     md = methods_text(summary, cs_list)
     write_text(results / METHODS_FILE, md)
     page = render_html(summary, cs_list, figs, results, md)
