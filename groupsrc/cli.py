@@ -216,13 +216,18 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     if "voxel_size_mm" in s:
         print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
     else:
-        print(f"  sources      : {s['sources']} vertices ("
+        vox = s.get("volume_parts", {})
+        print(f"  sources      : {s['sources']} {'(vertices: ' if vox else 'vertices ('}"
               + ", ".join(f"{h} {p['sources']} of {p['vertices']}"
                           for h, p in s["hemispheres"].items())
+              + (f"; {sum(vox.values())} voxels in {len(vox)} volume part"
+                 f"{'s' if len(vox) > 1 else ''}" if vox else "")
               + f"; maps as {'CIFTI-2' if s['map_format'] == 'cifti' else 'GIfTI'})")
+        for name, n in vox.items():
+            print(f"  volume part  : {name} ({n} voxels)")
         for name, n in s.get("ignored_parts", {}).items():
-            print(f"  not read     : {name} ({n} elements; only the cortex surfaces are "
-                  "analysed)")
+            print(f"  not read     : {name} ({n} elements; a surface other than the two "
+                  "cortices)")
         for h, n in s.get("mask_vertices_without_data", {}).items():
             print(f"  note         : {n} vertices of mask_{h} have no data in the maps and are "
                   "not sources")

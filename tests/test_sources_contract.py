@@ -9,7 +9,12 @@ library) and lie one voxel step apart (geometry); surface neighbours are the
 vertex pairs that share a triangle side, read off the triangle list by a plain
 loop, restricted to in-mask vertices and never across hemispheres (mesh-edge
 definition), and their connected pieces are those of
-scipy.sparse.csgraph.connected_components on that reference graph.
+scipy.sparse.csgraph.connected_components on that reference graph.  A surface
+with CIFTI-2 volume parts (CIFTI-2 specification: voxel indices i, j, k of
+named structures in one volume with a voxel -> world affine) adds voxels
+joined by faces within each structure: the reference is
+scipy.ndimage.generate_binary_structure(3, 1) applied to each structure's own
+voxels, and no pair may join two structures or a voxel and a vertex.
 """
 
 from __future__ import annotations
@@ -22,7 +27,7 @@ import pytest
 from scipy import ndimage, sparse
 from scipy.sparse.csgraph import connected_components
 
-from groupsrc.sources import Hemisphere, SourceSpace, SurfaceMesh, VolumeGrid
+from groupsrc.sources import Hemisphere, SourceSpace, SurfaceMesh, VolumeGrid, VoxelParts
 from groupsrc.sources.surface import icosphere
 
 
@@ -65,7 +70,8 @@ def _mesh_edge_reference(space):
     """Neighbour pairs of sources: vertices sharing a triangle side (plain loop over
     the triangle list), both in the mask, same hemisphere."""
     labels = space.labels()
-    index = {(h, int(v)): k for k, (h, v) in enumerate(zip(labels.hemisphere, labels.vertex))}
+    index = {(h, int(v)): k for k, (h, v) in enumerate(zip(labels.hemisphere, labels.vertex))
+             if h}                                       # vertices only (voxels have no hemisphere)
     pairs = set()
     for h in space.hemispheres:
         for a, b, c in h.triangles.tolist():
@@ -73,6 +79,16 @@ def _mesh_edge_reference(space):
                 if (h.name, u) in index and (h.name, w) in index:
                     pairs.add((index[(h.name, u)], index[(h.name, w)]))
                     pairs.add((index[(h.name, w)], index[(h.name, u)]))
+    if space.voxels is not None:                         # each structure on its own
+        start = space.n_surface_sources
+        for name, ijk in space.voxels.parts:
+            mask = np.zeros(space.voxels.shape, bool)
+            mask[tuple(ijk.T)] = True
+            ref = sparse.coo_matrix(_volume_reference(mask, "face"))   # scipy.ndimage, C order
+            order = np.ravel_multi_index(ijk.T, mask.shape).argsort().argsort()
+            to_source = start + np.argsort(order)        # C-order rank -> source index
+            pairs |= set(zip(to_source[ref.row].tolist(), to_source[ref.col].tolist()))
+            start += len(ijk)
     r, c = np.array(sorted(pairs)).T
     n = space.n_sources
     return sparse.csr_matrix((np.ones(r.size, bool), (r, c)), shape=(n, n))
@@ -87,8 +103,26 @@ def surface_two_hemispheres():
     return space, _mesh_edge_reference(space)
 
 
+def surface_with_volume_parts():
+    """Two masked hemispheres and two volume parts that touch along a face and are
+    listed in an order other than C order; an oblique affine with x flipped."""
+    v, f = icosphere(1)
+    left = Hemisphere.from_arrays("left", 40 * v - [40, 0, 0], f, mask=v[:, 2] < 0.8)
+    right = Hemisphere.from_arrays("right", 40 * v + [40, 0, 0], f)
+    rng = np.random.default_rng(3)
+    ijk = np.argwhere(rng.random((5, 4, 3)) < 0.7)
+    a = ijk[ijk[:, 0] < 2][::-1]
+    b = rng.permutation(ijk[ijk[:, 0] >= 2])
+    affine = np.array([[-2.5, 0.4, 0, 10], [0, 2.5, 0.3, -30], [0.2, 0, 2.5, -5], [0, 0, 0, 1]])
+    parts = VoxelParts.from_parts(affine, (5, 4, 3), [("CIFTI_STRUCTURE_PUTAMEN_LEFT", a),
+                                                      ("CIFTI_STRUCTURE_PUTAMEN_RIGHT", b)])
+    space = SurfaceMesh((left, right), maps_format="cifti", voxels=parts)
+    return space, _mesh_edge_reference(space)
+
+
 SPACES = {"volume box": volume_box, "volume irregular, flipped x": volume_irregular,
-          "surface, two hemispheres, masked": surface_two_hemispheres}
+          "surface, two hemispheres, masked": surface_two_hemispheres,
+          "surface with CIFTI-2 volume parts": surface_with_volume_parts}
 
 
 @pytest.fixture(params=list(SPACES), ids=list(SPACES))
@@ -177,3 +211,30 @@ def test_surface_neighbours_are_the_mesh_edges(space):
     hemi = sp.labels().hemisphere.to_numpy()
     rows, cols = A.nonzero()
     assert np.all(hemi[rows] == hemi[cols])                  # hemispheres never joined
+
+
+def test_volume_parts_geometry_and_separation(space):
+    sp, _ = space
+    if not isinstance(sp, SurfaceMesh) or sp.voxels is None:
+        pytest.skip("volume parts")
+    vox = sp.voxels
+    lab = sp.labels()
+    part = lab.iloc[sp.n_surface_sources:]
+    ijk = part[["i", "j", "k"]].to_numpy()
+    # CIFTI-2 / NIfTI voxel -> world: affine @ (i, j, k, 1)
+    world = (vox.affine @ np.column_stack([ijk, np.ones(len(ijk))]).T).T[:, :3]
+    np.testing.assert_allclose(sp.coords_mm[sp.n_surface_sources:], world)
+    A = sparse.coo_matrix(sp.adjacency())
+    structure = lab.structure.to_numpy()
+    assert np.all(structure[A.row] == structure[A.col])       # never across structures
+    is_voxel = np.arange(sp.n_sources) >= sp.n_surface_sources
+    assert np.all(is_voxel[A.row] == is_voxel[A.col])           # never voxel to vertex
+    both = is_voxel[A.row]
+    step = sp.coords_mm[A.row[both]] - sp.coords_mm[A.col[both]]
+    axes = vox.affine[:3, :3].T                                 # one voxel step along each axis
+    # geometry: face neighbours differ by exactly one voxel step along one axis
+    assert np.all(np.isclose(np.abs(step[:, None, :]), np.abs(axes[None])).all(axis=2).any(axis=1))
+    # the two parts do touch in the grid (so the rule above has bitten)
+    idx = np.full(vox.shape, -1)
+    idx[tuple(vox.ijk.T)] = vox.structure_index
+    assert ((idx[1] == 0) & (idx[2] == 1)).any()

@@ -218,10 +218,14 @@ def test_cifti_labels_and_scalars(tmp_path):
     np.testing.assert_array_equal(back.read(tmp_path, "clusters"), labels)
 
 
-def test_cifti_reader_lists_parts_it_does_not_read(tmp_path):
-    """A dense series with a volume part: the cortex is read, the volume listed as ignored."""
+def test_cifti_reader_reads_volume_parts_and_lists_other_surfaces(tmp_path):
+    """A dense series with a volume part and a non-cortex surface: the cortex and the
+    volume part are read (CIFTI-2 brain models: surface vertices, voxel indices), the
+    other surface is listed as ignored."""
+    affine = np.diag([2.0, 2.0, 2.0, 1.0])
     bm = (cifti2.BrainModelAxis.from_surface(np.arange(0, 42, 2), 42, "CortexLeft")
-          + cifti2.BrainModelAxis.from_mask(np.ones((2, 2, 2), bool), "thalamus_left", np.eye(4)))
+          + cifti2.BrainModelAxis.from_mask(np.ones((2, 2, 2), bool), "thalamus_left", affine)
+          + cifti2.BrainModelAxis.from_surface(np.arange(5), 12, "Cerebellum"))
     series = cifti2.SeriesAxis(0.0, 0.01, 3, "second")
     data = np.random.default_rng(2).standard_normal((3, len(bm))).astype(np.float32)
     img = cifti2.Cifti2Image(data, cifti2.Cifti2Header.from_axes((series, bm)))
@@ -230,7 +234,13 @@ def test_cifti_reader_lists_parts_it_does_not_read(tmp_path):
     img.to_filename(str(path))
     h = formats.read_header(path)
     assert list(h.parts) == ["left"] and h.parts["left"][0] == 42
-    assert h.ignored == {"CIFTI_STRUCTURE_THALAMUS_LEFT": 8}
+    assert h.ignored == {"CIFTI_STRUCTURE_CEREBELLUM": 5}
+    assert list(h.voxels) == ["CIFTI_STRUCTURE_THALAMUS_LEFT"]
+    np.testing.assert_array_equal(h.voxels["CIFTI_STRUCTURE_THALAMUS_LEFT"],
+                                  np.argwhere(np.ones((2, 2, 2), bool)))  # nibabel: C order
+    np.testing.assert_array_equal(h.volume_affine, affine)
+    assert h.volume_shape == (2, 2, 2)
     per = cifti.read_data(h)
     np.testing.assert_array_equal(per["left"][::2], data[:, :21].T)
     assert np.isnan(per["left"][1::2]).all()
+    np.testing.assert_array_equal(per["CIFTI_STRUCTURE_THALAMUS_LEFT"], data[:, 21:29].T)

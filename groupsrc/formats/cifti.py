@@ -6,22 +6,28 @@ extension describes each axis of its 2D data matrix.  A dense time series
 *brain-model* axis along columns: for each structure, the vertices of a
 surface (``CIFTI_STRUCTURE_CORTEX_LEFT`` / ``_RIGHT``, with the vertex count
 of the whole surface and the indices of the vertices present, e.g. without
-the medial wall) or voxels of a volume.
+the medial wall) or voxels of a volume (voxel indices i, j, k in one volume
+whose shape and voxel -> world affine the axis carries once for every
+volume part).
 
 Reading (the input edge)
 ------------------------
 Headers are read lazily; the time axis comes from the series axis (unit
 ``SECOND`` required; a ``time_start`` / ``sampling_interval`` in the
-analysis file overrides it).  The two cortex structures are read; any other
-structure (volume parts, cerebellum) is listed as ignored, never read
-silently as cortex.  Values come back per hemisphere on every vertex of the
-surface, NaN where the file has no value (those vertices are not sources).
+analysis file overrides it).  Read: the two cortex surfaces and every
+volume part (any structure given as voxels: subcortical structures,
+cerebellum).  Any other structure (a surface other than the two cortices)
+is listed as ignored, never read silently as cortex.  Values come back per
+hemisphere on every vertex of the surface, NaN where the file has no value
+(those vertices are not sources), and per volume part in the file's voxel
+order, under the part's structure name.
 
 Writing (results)
 -----------------
 Result maps of a surface whose maps came as CIFTI-2 are written on the
 sources only (brain models of the two cortex structures, vertex counts of
-the template meshes):
+the template meshes, then the volume parts with the inputs' voxels, volume
+shape and affine; the cortex comes first whatever the inputs' order):
 
 * ``<stem>.dtseries.nii`` -- statistic, estimate, standard error, effect
   size and p maps over time (intent ``NIFTI_INTENT_CONNECTIVITY_DENSE_SERIES``,
@@ -33,6 +39,10 @@ the template meshes):
   with the label table (intent ``NIFTI_INTENT_CONNECTIVITY_DENSE_LABELS``);
 * ``<stem>.dscalar.nii`` -- a single map (intent
   ``NIFTI_INTENT_CONNECTIVITY_DENSE_SCALARS``).
+
+:func:`structure_image` labels every source with its structure (one dense
+label map); the results folder keeps it so the volume parts can be read
+back (:func:`voxel_parts`).
 """
 
 from __future__ import annotations
@@ -46,6 +56,7 @@ from nibabel import cifti2
 
 from ..atomic import write_bytes
 from ..sources.timeaxis import TimeAxis
+from ..sources.voxels import VoxelParts
 from .gifti import LABEL_COLOURS, DecodeError
 
 SUFFIXES = (".dtseries.nii",)
@@ -64,14 +75,20 @@ class CiftiHeader:
     time_axis: TimeAxis
     #: hemisphere -> (vertex count of the whole surface, indices of the vertices present)
     parts: dict
-    #: structures not read (volume parts, other surfaces): name -> number of elements
+    #: structures not read (surfaces other than the cortex): name -> number of elements
     ignored: dict = field(default_factory=dict)
     image: object = None
     format: str = "cifti"
+    #: volume parts: structure name -> (n, 3) voxel indices, in the file's order
+    voxels: dict = field(default_factory=dict)
+    #: the volume of the volume parts: voxel -> world affine (4, 4) and shape (None without)
+    volume_affine: np.ndarray | None = None
+    volume_shape: tuple | None = None
 
     @property
     def shape(self) -> tuple:
-        return (self.n_times, int(sum(len(v) for _, v in self.parts.values())))
+        return (self.n_times, int(sum(len(v) for _, v in self.parts.values())
+                                  + sum(len(v) for v in self.voxels.values())))
 
 
 def read_header(path) -> CiftiHeader:
@@ -96,27 +113,54 @@ def read_header(path) -> CiftiHeader:
                          "time series (series x brain models) is expected")
     if series.unit != "SECOND":
         raise ValueError(f"its series axis runs in {series.unit}, not SECOND")
-    parts, ignored = {}, {}
+    parts, voxels, ignored = {}, {}, {}
     for name, slc, bm in models.iter_structures():
         hemi = _HEMI_OF.get(name)
-        if hemi is not None and bm.surface_mask.all():
+        if name in parts or name in voxels or (hemi is not None and hemi in parts):
+            raise ValueError(f"lists {name} in more than one place on its brain-model axis")
+        if bm.volume_mask.all():
+            voxels[name] = np.asarray(bm.voxel, dtype=np.int64)
+        elif hemi is not None and bm.surface_mask.all():
             parts[hemi] = (int(bm.nvertices[name]), np.asarray(bm.vertex, dtype=np.int64))
         else:
             ignored[name] = int(len(bm))
     if not parts:
         raise ValueError("holds no cortex surface (CIFTI_STRUCTURE_CORTEX_LEFT / _RIGHT)")
     taxis = TimeAxis(float(series.start), float(series.step), int(series.size))
-    return CiftiHeader(path, int(series.size), taxis, parts, ignored, img)
+    affine = np.asarray(models.affine, float) if voxels else None
+    shape = tuple(int(n) for n in models.volume_shape) if voxels else None
+    return CiftiHeader(path, int(series.size), taxis, parts, ignored, img, voxels=voxels,
+                       volume_affine=affine, volume_shape=shape)
+
+
+def voxel_parts(models) -> VoxelParts | None:
+    """The volume parts of a brain-model axis (or a CiftiHeader), or None without any."""
+    if isinstance(models, CiftiHeader):
+        if not models.voxels:
+            return None
+        return VoxelParts.from_parts(models.volume_affine, models.volume_shape,
+                                     list(models.voxels.items()))
+    parts = [(name, np.asarray(bm.voxel, np.int64)) for name, _, bm in models.iter_structures()
+             if bm.volume_mask.all()]
+    if not parts:
+        return None
+    return VoxelParts.from_parts(models.affine, models.volume_shape, parts)
 
 
 def read_data(header: CiftiHeader, dtype=np.float32) -> dict:
-    """{hemisphere: (V, T) values on every vertex, NaN where the file has none}."""
+    """{hemisphere: (V, T) values on every vertex, NaN where the file has none;
+    volume part's structure name: (n, T) values at its voxels, in the file's order}."""
     try:
         img = nib.load(str(header.path))
         data = np.asarray(img.dataobj, dtype=dtype)
         models = img.header.get_axis(1)
         out = {}
         for name, slc, bm in models.iter_structures():
+            if name in header.voxels:
+                if not np.array_equal(bm.voxel, header.voxels[name]):
+                    raise ValueError("the brain models changed since the header was read")
+                out[name] = np.ascontiguousarray(data[:, slc].T)
+                continue
             hemi = _HEMI_OF.get(name)
             if hemi not in header.parts:
                 continue
@@ -138,12 +182,41 @@ def read_data(header: CiftiHeader, dtype=np.float32) -> dict:
 # ----------------------------------------------------------------------------
 
 def brain_models(space) -> cifti2.BrainModelAxis:
-    """The brain-model axis of a surface source space's sources (left, then right)."""
+    """The brain-model axis of a surface source space's sources (left, right, then
+    the volume parts in their order)."""
     axis = None
     for h in space.hemispheres:
         part = cifti2.BrainModelAxis.from_surface(h.sources, h.n_vertices, STRUCTURES[h.name])
         axis = part if axis is None else axis + part
+    vox = getattr(space, "voxels", None)
+    for name, ijk in (vox.parts if vox is not None else ()):
+        axis = axis + cifti2.BrainModelAxis(name=[name] * len(ijk), voxel=ijk,
+                                            affine=vox.affine, volume_shape=vox.shape)
     return axis
+
+
+def source_structures(space) -> dict:
+    """{key: CIFTI-2 structure name} of the space's parts, keys from 1 in source order."""
+    names = [STRUCTURES[h.name] for h in space.hemispheres]
+    vox = getattr(space, "voxels", None)
+    names += list(vox.names) if vox is not None else []
+    return {k + 1: n for k, n in enumerate(names)}
+
+
+def structure_keys(space) -> np.ndarray:
+    """(n_sources,) int: each source's key in :func:`source_structures`."""
+    sizes = [h.sources.size for h in space.hemispheres]
+    vox = getattr(space, "voxels", None)
+    sizes += [ijk.shape[0] for _, ijk in vox.parts] if vox is not None else []
+    return np.repeat(np.arange(1, len(sizes) + 1), sizes)
+
+
+def structure_image(space) -> cifti2.Cifti2Image:
+    """One dense label map: every source labelled with its CIFTI-2 structure."""
+    names = {0: "none", **source_structures(space)}
+    axis = cifti2.LabelAxis(["structure"], [label_dict(names)])
+    return _image(structure_keys(space).reshape(1, -1).astype(np.int32), axis, space,
+                  "NIFTI_INTENT_CONNECTIVITY_DENSE_LABELS", {"map": "structure of each source"})
 
 
 def _image(data, row_axis, space, intent, meta) -> cifti2.Cifti2Image:
@@ -202,13 +275,13 @@ def load_values(path, space) -> tuple:
     """(per-source values (n_sources, rows), the image) of a file written for ``space``.
 
     Raises FileNotFoundError, or ValueError when its brain models are not the
-    space's sources.
+    space's sources (not compared when ``space`` is None).
     """
     path = Path(path)
     if not path.exists():
         raise FileNotFoundError(str(path))
     img = nib.load(str(path))
     models = img.header.get_axis(1)
-    if models != brain_models(space):
+    if space is not None and models != brain_models(space):
         raise ValueError("its brain models are not the sources of this surface")
     return np.asarray(img.dataobj).T, img

@@ -21,7 +21,13 @@ cluster labels         ``clusters.<hemi>.label.gii``       ``clusters.dlabel.nii
 cluster summary        ``cluster_summary.<hemi>.func.gii`` ``cluster_summary.dscalar.nii``
 source space (both)    ``source_space.<hemi>.surf.gii`` (the template mesh) and
                        ``source_mask.<hemi>.shape.gii`` (1 = source)
+volume parts                                               ``source_structures.dlabel.nii``
 =====================  =================================  ==========================
+
+CIFTI-2 maps with volume parts (subcortical structures, cerebellum voxels)
+carry them on every result map's brain-model axis; ``source_structures.dlabel.nii``
+labels every source with its structure, and is how ``groupsrc report`` reads
+the volume parts back (:meth:`SurfaceMaps.read_space`).
 
 Conventions of each file type (intents, metadata, the time axis) are in
 :mod:`.gifti` and :mod:`.cifti`.
@@ -44,9 +50,14 @@ SCALAR_STEMS = ("cluster_summary",)
 FORMATS = ("gifti", "cifti")
 
 
-def space_file_names(hemispheres) -> list:
+#: the brain models of every source, labelled by structure (CIFTI-2 with volume parts only)
+STRUCTURES_FILE = "source_structures.dlabel.nii"
+
+
+def space_file_names(hemispheres, volume_parts=False) -> list:
     return [n for h in hemispheres for n in (f"source_space.{h}.surf.gii",
-                                             f"source_mask.{h}.shape.gii")]
+                                             f"source_mask.{h}.shape.gii")] + (
+        [STRUCTURES_FILE] if volume_parts else [])
 
 
 def map_file_names(stem, hemispheres, fmt) -> list:
@@ -85,7 +96,8 @@ class SurfaceMaps:
         space = summary.get("space", {})
         hemis = [h["name"] for h in space.get("hemispheres", [])]
         fmt = space.get("maps_format", "gifti")
-        return space_file_names(hemis), (lambda stem: map_file_names(stem, hemis, fmt))
+        return (space_file_names(hemis, bool(space.get("volume_parts"))),
+                lambda stem: map_file_names(stem, hemis, fmt))
 
     # -- writing ---------------------------------------------------------------
     def _write(self, folder, stem, values, *, name, intent, params=(), meta=None, fill=0.0):
@@ -152,7 +164,8 @@ class SurfaceMaps:
                            f"contrast {name}", intent="NIFTI_INTENT_NONE")
 
     def write_space(self, folder) -> list:
-        """The template meshes and the source masks (one pair per hemisphere)."""
+        """The template meshes and the source masks (one pair per hemisphere), and
+        with volume parts the sources' structures (:data:`STRUCTURES_FILE`)."""
         folder = Path(folder)
         out = []
         for h, (mesh_name, mask_name) in zip(self.surface.hemispheres,
@@ -163,6 +176,8 @@ class SurfaceMaps:
                                   name="source mask", dtype=np.uint8,
                                   extra_meta={"maps_format": self.format})
             out.append(gifti.save(folder / mask_name, img))
+        if self.surface.voxels is not None:
+            out.append(cifti.save(folder / STRUCTURES_FILE, cifti.structure_image(self.surface)))
         return out
 
     # -- reading back ------------------------------------------------------------
@@ -193,4 +208,8 @@ class SurfaceMaps:
             hemis.append(Hemisphere.from_arrays(name, vertices, triangles, mask > 0))
         if not hemis:
             raise FileNotFoundError(str(folder / space_file_names(["left"])[0]))
-        return cls(SurfaceMesh(tuple(hemis), maps_format=fmt), time_axis)
+        voxels = None
+        if fmt == "cifti" and (folder / STRUCTURES_FILE).exists():
+            _, img = cifti.load_values(folder / STRUCTURES_FILE, None)
+            voxels = cifti.voxel_parts(img.header.get_axis(1))
+        return cls(SurfaceMesh(tuple(hemis), maps_format=fmt, voxels=voxels), time_axis)

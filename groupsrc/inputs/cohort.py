@@ -461,6 +461,8 @@ def summary(cohort: Cohort, settings: Settings) -> dict:
         out["hemispheres"] = {h.name: {"vertices": h.n_vertices, "sources": int(h.sources.size)}
                               for h in cohort.grid.hemispheres}
         out["map_format"] = cohort.grid.maps_format
+        if cohort.grid.voxels is not None:
+            out["volume_parts"] = {n: int(ijk.shape[0]) for n, ijk in cohort.grid.voxels.parts}
     out.update(cohort.notes)
     if "group" in parts.columns:
         out["per_group"] = {str(k): int(v) for k, v in parts["group"].value_counts().sort_index().items()}

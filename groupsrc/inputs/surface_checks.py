@@ -1,4 +1,5 @@
-"""The per-file checks of a surface cohort: meshes, masks, atlas, map headers, time axes.
+"""The per-file checks of a surface cohort: meshes, masks, atlas, map headers, time axes
+(the CIFTI-2 brain-model checks are in :mod:`.cifti_checks`).
 
 Used by :mod:`.surface_cohort` (which decodes and assembles the cohort); see
 its docstring for the inputs and the list of checks.  Every function adds
@@ -16,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from .. import formats
-from ..formats import cifti, gifti
+from ..formats import gifti
 from ..sources import TimeAxis
 from ..sources.surface import HEMISPHERES, mesh_defects
 from .tables import MISSING
@@ -254,53 +255,6 @@ def _check_row_vertices(row, line, mpath, meshes, problems) -> list:
         else:
             fit.append(hemi)
     return fit
-
-
-def cifti_headers(maps, mpath, meshes, problems):
-    """{(line, None): CiftiHeader} of files fit to read; problems for the others."""
-    headers = {}
-    for line in maps.index:
-        rel = maps.at[line, "path"]
-        where = f"{mpath} row {line}"
-        if rel in MISSING:
-            problems.add(where, "empty path", "give the map file, relative to the maps table")
-            continue
-        p = _map_path(mpath, rel)
-        h = _read(p, f"{where} ({p})", problems, "cifti")
-        if h is None:
-            continue
-        bad = False
-        for hemi, mesh in meshes.items():
-            if hemi not in h.parts:
-                problems.add(f"{where} ({p})", f"holds no {cifti.STRUCTURES[hemi]}",
-                             f"give files with both hemispheres, or leave mesh_{hemi} out")
-                bad = True
-            elif h.parts[hemi][0] != mesh.n:
-                problems.add(f"{where} ({p})", f"its {hemi} surface has {h.parts[hemi][0]} "
-                             f"vertices; mesh_{hemi} has {mesh.n}",
-                             "map every participant onto the template mesh")
-                bad = True
-        if not bad:
-            headers[(line, None)] = h
-    _check_cifti_vertices(headers, mpath, meshes, problems)
-    return headers
-
-
-def _check_cifti_vertices(headers, mpath, meshes, problems):
-    """Every CIFTI-2 file holds the same vertices of each hemisphere (the majority's)."""
-    for hemi in meshes:
-        keys = list(headers)
-        sets = [headers[k].parts[hemi][1].tobytes() for k in keys]
-        if not sets:
-            continue
-        ref = _majority(sets)
-        for k, s in zip(keys, sets):
-            if s != ref:
-                h = headers.pop(k)
-                problems.add(f"{mpath} row {k[0]} ({h.path})", f"holds a different set of "
-                             f"{hemi} vertices ({h.parts[hemi][1].size}) than most maps "
-                             f"({np.frombuffer(ref, np.int64).size})",
-                             "write every map with the same brain models")
 
 
 def _times(settings, headers, mpath, problems):

@@ -12,7 +12,9 @@ Inputs (README, "Surfaces"):
   or both; closed manifolds unless ``mesh_closed = false``;
 * the maps table names the files either in ``path_left`` and ``path_right``
   (GIfTI, one file per hemisphere and map) or in ``path`` (CIFTI-2 dense
-  time series, both hemispheres in one file);
+  time series, both hemispheres in one file, and any volume parts: their
+  voxels become sources after the vertices, each labelled in the atlas with
+  its CIFTI-2 structure name);
 * optional ``mask_left`` / ``mask_right`` (GIfTI, nonzero = source) and
   ``atlas_left`` / ``atlas_right`` (GIfTI label files sharing one table);
 * the time axis: from CIFTI-2 files; GIfTI carries none, so
@@ -23,8 +25,9 @@ expected); every file readable and of the right kind for its column; vertex
 counts equal to the mesh (with a hint when the two hemispheres' files are
 swapped, by count or by the files' ``AnatomicalStructurePrimary``); every
 map with the same samples (and time axis); CIFTI-2 files with the same
-vertices; the same file not used twice; no NaN or infinite value at a
-source; masks and atlas on the meshes.  Without a mask, the sources are the
+vertices and the same volume parts (:mod:`.cifti_checks`); the same file
+not used twice; no NaN or infinite value at a source; masks and atlas on
+the meshes.  Without a mask, the sources are the
 vertices finite and not constantly zero in every map (as for volumes).
 """
 
@@ -38,14 +41,19 @@ import numpy as np
 from . import cache as _cache
 from ..formats import cifti, gifti
 from ..sources import Hemisphere, SurfaceMesh, TimeAxis
+from ..sources.voxels import VoxelParts
 from ..sources.surface import HEMISPHERES
 from .problems import InputError, ProblemList
-from .surface_checks import (_check_time, _map_path, _times, check_same_files, cifti_headers,
-                             gifti_headers, read_atlas, read_masks, read_meshes)
+from .cifti_checks import cifti_headers
+from .surface_checks import (_check_time, _map_path, _times, check_same_files, gifti_headers,
+                             read_atlas, read_masks, read_meshes)
 from .tables import HEMISPHERE_PATHS, MISSING
 
 #: cache entries of surfaces carry this tag, so they never collide with volumes
 CACHE_TAG = "surface-v1"
+#: and those of CIFTI-2 files whose volume parts are sources too (earlier entries held no voxels)
+VOLUME_CACHE_TAG = "cifti-volume-parts-v1"
+
 @dataclass
 class SurfaceInputs:
     """What :func:`load_surface` hands back to the cohort loader."""
@@ -70,12 +78,25 @@ def _read_row(fmt, headers, line, hemis):
     return {h: gifti.read_data(headers[(line, h)]) for h in hemis}
 
 
-def decode(fmt, headers, lines, meshes, masks, n_t, progress):
-    """(Y, masks used, {line: NaN count}, {line: decode error}) for complete rows."""
-    from tqdm.auto import tqdm
+def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
+    """(Y, masks used, {line: {part: NaN count}}, {line: decode error}) for complete rows.
+
+    ``voxels``: the CIFTI-2 volume parts (their voxels follow the vertices in Y);
+    ``progress``: a :func:`groupsrc.progress.reporter` (silent when quiet), or
+    True/False/None (a bar on a terminal), as for volumes.
+    """
+    if callable(progress):
+        from ..progress import track
+        new = None if getattr(progress, "mode", "") == "quiet" else progress
+
+        def tqdm(items, desc, unit, disable):
+            return track(items, new, desc, len(items), unit)
+    else:
+        from tqdm.auto import tqdm
     if progress is None:
         progress = sys.stderr.isatty()
     hemis = list(meshes)
+    names = list(voxels.names) if voxels is not None else []
     broken, bad = {}, {}
     use = {h: masks[h].copy() if h in masks else None for h in hemis}
     if fmt == "cifti":
@@ -97,8 +118,10 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress):
             for h in hemis:
                 scan[h] &= np.isfinite(data[h]).all(axis=1) & ~(data[h] == 0).all(axis=1)
         use = {h: scan[h] if use[h] is None else use[h] for h in hemis}
-    n_src = sum(int(u.sum()) for u in use.values())
-    Y = np.empty((len(lines), n_src, n_t), dtype=np.float32)
+    sizes = [int(use[h].sum()) for h in hemis] + [len(voxels.ijk[voxels.part_slice(n)])
+                                                  for n in names]
+    bounds = np.cumsum([0] + sizes)
+    Y = np.empty((len(lines), int(bounds[-1]), n_t), dtype=np.float32)
     for i, line in enumerate(tqdm(lines, desc="loading maps", unit="map", disable=not progress)):
         if line in broken:
             continue
@@ -107,10 +130,11 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress):
         except gifti.DecodeError as exc:
             broken[line] = str(exc)
             continue
-        Y[i] = np.concatenate([data[h][use[h]] for h in hemis])
-        nonfinite = int((~np.isfinite(Y[i])).sum())
-        if nonfinite:
-            bad[line] = nonfinite
+        Y[i] = np.concatenate([data[h][use[h]] for h in hemis] + [data[n] for n in names])
+        nonfinite = {part: int((~np.isfinite(Y[i, a:b])).sum())
+                     for part, a, b in zip(hemis + names, bounds[:-1], bounds[1:])}
+        if any(nonfinite.values()):
+            bad[line] = {part: n for part, n in nonfinite.items() if n}
     return Y, use, bad, broken
 
 
@@ -170,10 +194,12 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
     complete = [line for line in maps.index
                 if all((line, h if fmt == "gifti" else None) in headers for h in hemis)]
     n_t = ref.n if ref is not None else 1
+    voxels = _voxel_parts(headers, complete)
     if problems or time_axis is None:
         # decode what passed, so NaN values and damaged files are listed in this pass too
         if complete:
-            _, _, bad, broken = decode(fmt, headers, complete, meshes, masks, n_t, progress)
+            _, _, bad, broken = decode(fmt, headers, complete, meshes, masks, n_t, progress,
+                                       voxels)
             _decode_problems(problems, mpath, bad, broken)
         index.save()
         raise InputError(problems)
@@ -192,7 +218,8 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
              for h in (hemis if fmt == "gifti" else [None])]
     key = _cache.cache_key([digests[k] for k in order]
                            + [inputs[str(p)] for p in mask_paths]
-                           + [inputs[str(meshes[h].path)] for h in hemis] + [CACHE_TAG])
+                           + [inputs[str(meshes[h].path)] for h in hemis] + [CACHE_TAG]
+                           + ([VOLUME_CACHE_TAG] if voxels is not None else []))
     hit = _cache.load_cached(cache_dir, key) if use_cache else None
     if hit is not None:
         Y, meta = hit
@@ -203,7 +230,7 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
         bad, broken = {}, {}
     else:
         Y, use, bad, broken = decode(fmt, headers, list(maps.index), meshes, masks, n_t,
-                                     progress)
+                                     progress, voxels)
         if not bad and not broken:
             Y = _cache.store(cache_dir, key, Y, {"sources": {h: np.flatnonzero(use[h]).tolist()
                                                              for h in hemis}})
@@ -213,25 +240,63 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
     if problems:
         raise InputError(problems)
     space = SurfaceMesh(tuple(Hemisphere.from_arrays(h, meshes[h].vertices, meshes[h].triangles,
-                                                     use[h]) for h in hemis), maps_format=fmt)
+                                                     use[h]) for h in hemis), maps_format=fmt,
+                        voxels=voxels)
     notes = _notes(fmt, headers, masks, use)
-    per_source = None
+    return SurfaceInputs(space, time_axis, Y, inputs, hit is not None,
+                         source_atlas(space, atlas), notes)
+
+
+def _voxel_parts(headers, lines) -> VoxelParts | None:
+    """The volume parts of the CIFTI-2 files (all equal once checked), or None."""
+    first = next((h for k, h in headers.items() if k[0] in lines), None)
+    if first is None or not getattr(first, "voxels", None):
+        return None
+    return cifti.voxel_parts(first)
+
+
+def source_atlas(space, atlas) -> dict | None:
+    """One atlas label per source: {"labels": (n_sources,) int, "names": {key: name}}.
+
+    Vertices take the GIfTI atlas (0 where a hemisphere has none).  Voxels of
+    the volume parts take their CIFTI-2 structure name, under keys after the
+    atlas's; without a GIfTI atlas the vertices are then named by their cortex
+    structure, so every source has a name.  None without atlas and volume parts.
+    """
+    if atlas is None and space.voxels is None:
+        return None
+    hemis = space.hemispheres
     if atlas is not None:
-        per_source = {"labels": np.concatenate([
-            atlas["labels"][h][use[h]] if h in atlas["labels"] else np.zeros(int(use[h].sum()),
-                                                                             np.int64)
-            for h in hemis]).astype(np.int64), "names": atlas["names"]}
-    return SurfaceInputs(space, time_axis, Y, inputs, hit is not None, per_source, notes)
+        labels = [atlas["labels"][h.name][h.sources] if h.name in atlas["labels"]
+                  else np.zeros(h.sources.size, np.int64) for h in hemis]
+        names = dict(atlas["names"])
+    else:
+        names = {i + 1: cifti.STRUCTURES[h.name] for i, h in enumerate(hemis)}
+        labels = [np.full(h.sources.size, i + 1, np.int64) for i, h in enumerate(hemis)]
+    if space.voxels is not None:
+        first = max(names, default=0) + 1
+        parts = space.voxels.names
+        names.update({first + j: name for j, name in enumerate(parts)})
+        labels.append(first + space.voxels.structure_index)
+    return {"labels": np.concatenate(labels).astype(np.int64), "names": names}
 
 
 def _decode_problems(problems, mpath, bad, broken):
     for line in sorted(set(bad) | set(broken)):
         if line in broken:
             problems.add(f"{mpath} row {line}", broken[line], gifti.DecodeError.fix)
-        else:
-            problems.add(f"{mpath} row {line}", f"{bad[line]} NaN/Inf value(s) at sources",
-                         "fix the inverse solution for this map, or give mask_left / "
-                         "mask_right excluding those vertices")
+            continue
+        parts = bad[line]
+        volume = [p for p in parts if p not in HEMISPHERES]
+        where = ", ".join(f"{n} in {p if p in volume else p + ' hemisphere'}"
+                          for p, n in parts.items())
+        problems.add(f"{mpath} row {line}",
+                     f"{sum(parts.values())} NaN/Inf value(s) at sources ({where})",
+                     "fix the inverse solution for this map" + (
+                         ", or give mask_left / mask_right excluding those vertices"
+                         if len(volume) < len(parts) else "")
+                     + ("; every voxel a volume part lists is a source, so give it a finite "
+                        "value" if volume else ""))
 
 
 def _notes(fmt, headers, masks, use) -> dict:

@@ -44,7 +44,12 @@ SURFACE_NEIGHBOUR_TEXT = {"edge": "mesh-edge (vertices joined by a triangle edge
 
 def _neighbour_text(summary, inf):
     if summary.get("space", {}).get("kind") == "surface":
-        return SURFACE_NEIGHBOUR_TEXT.get(inf.get("neighbors") or "edge", inf.get("neighbors"))
+        text = SURFACE_NEIGHBOUR_TEXT.get(inf.get("neighbors") or "edge", inf.get("neighbors"))
+        if summary["space"].get("volume_parts") and text.endswith(")"):
+            text = text[:-1] + ("; voxels of the volume parts joined by a shared face "
+                                "(6-connected) within one structure, never to another "
+                                "structure or to the surfaces)")
+        return text
     return NEIGHBOUR_TEXT.get(inf.get("neighbors") or "face", inf.get("neighbors"))
 
 
@@ -53,9 +58,14 @@ def _space_text(summary, coh):
     space = summary.get("space", {})
     if space.get("kind") == "surface":
         hemis = [h["name"] for h in space.get("hemispheres", [])]
+        vox = space.get("volume_parts")
+        parts = ("" if not vox else
+                 f", and the voxels of {len(vox['structures'])} volume part"
+                 f"{'s' if len(vox['structures']) > 1 else ''} of the CIFTI-2 files: "
+                 + _join(f"{s['name']} ({s['n_voxels']} voxels)" for s in vox["structures"]))
         return (f"a common template surface of {coh.get('sources', '?')} sources (the "
                 f"vertices of the {_join(hemis)} hemisphere{'s' if len(hemis) > 1 else ''} "
-                "within the source mask)")
+                f"within the source mask{parts})")
     return f"a common template grid of {coh.get('sources', '?')} sources"
 
 

@@ -41,7 +41,8 @@ CAUTIONS = [
 ]
 
 CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
-                "t_end_ms", "t_peak_ms", "peak_hemisphere", "peak_vertex", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
+                "t_end_ms", "t_peak_ms", "peak_hemisphere", "peak_vertex", "peak_structure",
+                "peak_i", "peak_j", "peak_k", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
                 "estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "std_effect_at_peak",
                 "std_effect_ci_low", "std_effect_ci_high", "atlas_label_at_peak"]
 
@@ -51,6 +52,8 @@ SURFACE_CHECKS_TEXT = ("Every input check passed before the statistics ran: the 
                        "infinite value at a source, no duplicate or orphan table row, every "
                        "model column present with at least two participants per factor level, "
                        "and a full-rank design matrix.")
+VOLUME_PARTS_CHECKS_TEXT = (" Every CIFTI-2 file held the same volume parts: the same "
+                            "structures, the same voxels of each, in one volume.")
 CHECKS_TEXT = ("Every input check passed before the statistics ran: each map read as a 4D "
                "NIfTI on one template grid (same shape and affine) with one time axis, no NaN "
                "or infinite value inside the mask, no duplicate or orphan table row, every "
@@ -278,6 +281,8 @@ def _cohort_rows(coh: dict, win: dict) -> list:
         rows.append(("voxel size (mm)", " x ".join(f"{v:g}" for v in coh["voxel_size_mm"])))
     for h, part in (coh.get("hemispheres") or {}).items():
         rows.append((f"  {h} hemisphere", f"{part['sources']} of {part['vertices']} vertices"))
+    for name, n in (coh.get("volume_parts") or {}).items():
+        rows.append((f"  {name}", f"{n} voxels (CIFTI-2 volume part)"))
     if coh.get("map_format"):
         rows.append(("map files", {"gifti": "GIfTI, one file per hemisphere",
                                    "cifti": "CIFTI-2 dense time series"}[coh["map_format"]]))
@@ -325,7 +330,9 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
         "version": str(summary.get("groupsrc_version")),
         "cautions": CAUTIONS,
         "cohort_rows": _cohort_rows(summary.get("cohort", {}), summary.get("window", {})),
-        "checks": ((SURFACE_CHECKS_TEXT if summary.get("space", {}).get("kind") == "surface"
+        "checks": ((SURFACE_CHECKS_TEXT + (VOLUME_PARTS_CHECKS_TEXT if summary.get(
+                       "space", {}).get("volume_parts") else "")
+                    if summary.get("space", {}).get("kind") == "surface"
                     else CHECKS_TEXT) if st.get("check_summary") else None),
         "model_rows": [(k, v) for k, v in st.get("model", {}).items() if v not in (None, "")],
         "contrast_table": table_view(contrast_rows),

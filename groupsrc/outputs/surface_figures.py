@@ -31,6 +31,15 @@ Points in no cluster at the time shown are faded toward light grey, so the
 clusters stand out while the rest of the map stays visible; vertices that are
 not sources (outside the mask, e.g. the medial wall) are mid grey.  The triangle layer is rasterised in the SVG (text stays vector),
 so a 20,000-vertex mesh gives a file of moderate size.
+
+Volume parts (CIFTI-2 voxels of subcortical structures or the cerebellum)
+are not on any mesh, and a cluster there never touches the cortex (the
+surfaces and volume parts are never joined).  The surface views therefore
+show only clusters with points on the cortex; each reported cluster that
+lies in the volume parts gets maximum-intensity projections of the volume
+parts at its peak time instead (:func:`volume_part_figures`, drawn by
+:func:`groupsrc.outputs.figures.projection_figure` on the box around the
+parts' voxels), so no surface figure is drawn for a cluster it cannot show.
 """
 
 from __future__ import annotations
@@ -251,21 +260,75 @@ def surface_figures(space, stat, labels, clusters, reported, times, name, kind, 
     MAX_VIEWS), so clusters peaking at the same sample share one figure.
     """
     vlim = figures._stat_range(stat, kind)
-    views = _views(clusters, reported, times)
-    if not views:
-        s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
+    n_surf = space.n_surface_sources
+    cortex = [k for k in reported if (labels[:n_surf] == k).any()]
+    views = _views(clusters, cortex, times)
+    if not reported:
+        s, t = np.unravel_index(np.nanargmax(np.abs(stat[:n_surf])), stat[:n_surf].shape)
         views = [(int(t), [])]
     out = []
     for t_idx, ks in views:
         base = figdir / (f"surface_cluster{ks[0]:02d}" if ks else "surface_peak")
         inside = np.isin(labels[:, t_idx], reported) if reported else np.zeros(len(stat), bool)
-        views_figure(space, stat[:, t_idx], inside, kind,
-                     _title(name, kind, times[t_idx], ks, clusters), base, vlim=vlim,
+        title = _title(name, kind, times[t_idx], ks, clusters)
+        if not ks and space.voxels is not None:
+            title = title.replace(" at its largest", " on the cortex at its largest")
+        views_figure(space, stat[:, t_idx], inside, kind, title, base, vlim=vlim,
                      strong=labels[:, t_idx] > 0)
         out.append((f"The {kind} map at {times[t_idx]:g} ms on the template surface: lateral "
                     "and medial views of each hemisphere (A: anterior, P: posterior), shaded "
                     "to show the folds; full colour: points in a cluster at that time, faded: "
                     "the rest; dark grey: not a source (outside the mask); black outlines: "
-                    "reported clusters at that time, along mesh edges.",
+                    "reported clusters at that time, along mesh edges"
+                    + ("; the volume parts are shown in their own figures." if space.voxels
+                       is not None else "."), base.with_suffix(".png")))
+    if space.voxels is not None:
+        out += volume_part_figures(space, stat, labels, clusters,
+                                   [k for k in reported if k not in cortex], reported, times,
+                                   name, kind, figdir, vlim, surface_views=bool(views))
+    return out
+
+
+def _part_box(voxels, values, margin=1):
+    """Per-voxel values -> (volume cropped to the parts' bounding box, its affine)."""
+    lo = np.maximum(voxels.ijk.min(axis=0) - margin, 0)
+    hi = np.minimum(voxels.ijk.max(axis=0) + margin + 1, voxels.shape)
+    box = tuple(slice(a, b) for a, b in zip(lo, hi))
+    shift = np.eye(4)
+    shift[:3, 3] = lo
+    return voxels.to_volume(values, fill=0)[box], voxels.affine @ shift
+
+
+def volume_part_figures(space, stat, labels, clusters, in_parts, reported, times, name, kind,
+                        figdir, vlim, surface_views=True) -> list:
+    """Projections of the volume parts: one per distinct peak time of the reported
+    clusters ``in_parts`` (at most MAX_VIEWS); with no reported cluster at all, one at
+    the parts' largest |statistic|.  [(caption, png path)]."""
+    vox, part = space.voxels, space.voxel_slice
+    views = _views(clusters, in_parts, times)
+    if not reported:
+        _, t = np.unravel_index(np.nanargmax(np.abs(stat[part])), stat[part].shape)
+        views = [(int(t), [])]
+    out = []
+    for t_idx, ks in views:
+        base = figdir / (f"volume_parts_cluster{ks[0]:02d}" if ks else "volume_parts_peak")
+        values, affine = _part_box(vox, stat[part, t_idx].astype(float))
+        mask, _ = _part_box(vox, np.ones(vox.n_voxels, bool))
+        inside, _ = _part_box(vox, np.isin(labels[part, t_idx], reported))
+        where = sorted({vox.names[vox.structure_index[i]] for k in ks
+                        for i in np.flatnonzero(labels[part, t_idx] == k)})
+        title = (_title(name, kind, times[t_idx], ks, clusters).replace(
+            f" at {times[t_idx]:g} ms", f" in the volume parts at {times[t_idx]:g} ms", 1)
+            + f",\nin {', '.join(where)}" if ks else
+            f"{name}: {kind} in the volume parts at their largest |{kind}|, "
+            f"{times[t_idx]:g} ms (no cluster reported)")
+        figures.projection_figure(values, mask.astype(bool), inside.astype(bool), affine, kind,
+                                  title, base, vlim=vlim)
+        out.append((f"Maximum-intensity projections of the {kind} map over the CIFTI-2 volume "
+                    f"parts ({', '.join(vox.names)}) at {times[t_idx]:g} ms, on the box around "
+                    "their voxels (grey outline: the volume parts' voxels; white: reported "
+                    "clusters at that time). " + (
+                        "The cortex is shown in the surface views." if surface_views else
+                        "No reported cluster lies on the cortex, so no surface view is drawn."),
                     base.with_suffix(".png")))
     return out

@@ -24,6 +24,8 @@ import pandas as pd
 from scipy import optimize, stats
 
 from ..sources import TimeAxis, VolumeGrid
+from .places import mesh_place as _mesh_place
+from .places import nullable_ints as _typed
 
 #: column documentation: {table file: {column: "meaning (unit)"}}
 COLUMNS = {
@@ -40,8 +42,12 @@ COLUMNS = {
         "t_start_ms": "first sample time of the cluster (ms)",
         "t_end_ms": "last sample time of the cluster (ms)",
         "t_peak_ms": "time of the largest |statistic| in the cluster (ms)",
-        "peak_hemisphere": "hemisphere of the peak: left or right (surfaces only)",
-        "peak_vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only)",
+        "peak_hemisphere": "hemisphere of the peak: left or right (surfaces only; n/a for a peak in a CIFTI-2 volume part)",
+        "peak_vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only; n/a in a volume part)",
+        "peak_structure": "CIFTI-2 structure of a peak in a volume part, e.g. CIFTI_STRUCTURE_THALAMUS_LEFT; n/a on the cortex (CIFTI-2 maps with volume parts only)",
+        "peak_i": "voxel index i of a peak in a volume part, in the CIFTI-2 volume, from 0; n/a on the cortex (volume parts only)",
+        "peak_j": "voxel index j, likewise (volume parts only)",
+        "peak_k": "voxel index k, likewise (volume parts only)",
         "peak_x_mm": "x world coordinate of the peak (mm, template space)",
         "peak_y_mm": "y world coordinate of the peak (mm)",
         "peak_z_mm": "z world coordinate of the peak (mm)",
@@ -52,14 +58,18 @@ COLUMNS = {
         "std_effect_at_peak": "standardized effect at the peak: Hedges' g (t) or partial eta squared (F) (unitless)",
         "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless)",
         "std_effect_ci_high": "upper end of that interval (unitless)",
-        "atlas_label_at_peak": "atlas region at the peak (only when an atlas is given)",
+        "atlas_label_at_peak": "atlas region at the peak (only when an atlas is given, or CIFTI-2 maps have volume parts, whose voxels are named by their structure)",
     },
     "peaks.tsv": {
         "contrast": "contrast name",
         "cluster": "cluster number",
         "peak": "peak number within the cluster (1 = largest |statistic|)",
-        "hemisphere": "hemisphere of the peak: left or right (surfaces only)",
-        "vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only)",
+        "hemisphere": "hemisphere of the peak: left or right (surfaces only; n/a in a CIFTI-2 volume part)",
+        "vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only; n/a in a volume part)",
+        "structure": "CIFTI-2 structure of a peak in a volume part; n/a on the cortex (CIFTI-2 maps with volume parts only)",
+        "i": "voxel index i of a peak in a volume part, from 0; n/a on the cortex (volume parts only)",
+        "j": "voxel index j, likewise (volume parts only)",
+        "k": "voxel index k, likewise (volume parts only)",
         "x_mm": "x world coordinate (mm)",
         "y_mm": "y world coordinate (mm)",
         "z_mm": "z world coordinate (mm)",
@@ -91,25 +101,22 @@ COLUMNS = {
     },
 }
 
-#: columns written only for a surface source space (they locate a source on its mesh)
-SURFACE_COLUMNS = {"clusters.tsv": ("peak_hemisphere", "peak_vertex"),
-                   "peaks.tsv": ("hemisphere", "vertex")}
-
-
+#: columns written only for a surface source space (they locate a source on its mesh,
+#: or in a CIFTI-2 volume part)
+SURFACE_COLUMNS = {"clusters.tsv": ("peak_hemisphere", "peak_vertex", "peak_structure",
+                                    "peak_i", "peak_j", "peak_k"),
+                   "peaks.tsv": ("hemisphere", "vertex", "structure", "i", "j", "k")}
+#: of those, the columns written only when the surface carries volume parts
+VOLUME_PART_COLUMNS = {"clusters.tsv": ("peak_structure", "peak_i", "peak_j", "peak_k"),
+                       "peaks.tsv": ("structure", "i", "j", "k")}
 def table_columns(table: str, space, atlas=None) -> list:
     """The columns of ``table`` for this source space (and atlas, for clusters.tsv)."""
     surface = getattr(space, "kind", "volume") == "surface"
+    parts = getattr(space, "voxels", None) is not None
     return [c for c in COLUMNS[table]
             if (surface or c not in SURFACE_COLUMNS.get(table, ()))
+            and (parts or c not in VOLUME_PART_COLUMNS.get(table, ()))
             and (c != "atlas_label_at_peak" or atlas)]
-
-
-def _mesh_place(space, s) -> dict:
-    """{'hemisphere': ..., 'vertex': ...} of source ``s`` on a surface, else {}."""
-    if getattr(space, "kind", "volume") != "surface":
-        return {}
-    lab = space.labels()
-    return {"hemisphere": str(lab.hemisphere.iat[s]), "vertex": int(lab.vertex.iat[s])}
 
 
 def columns_markdown() -> str:
@@ -269,7 +276,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
             lab = int(atlas["labels"][s])
             row["atlas_label_at_peak"] = atlas.get("names", {}).get(lab, str(lab)) if lab else "none"
         rows.append(row)
-    return pd.DataFrame(rows, columns=cols)
+    return _typed(pd.DataFrame(rows, columns=cols))
 
 
 def atlas_table(contrast, grid: VolumeGrid, atlas) -> pd.DataFrame:
@@ -344,7 +351,7 @@ def peak_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, adjacency, min_s
                          "time_ms": tms[t], "statistic": stat[s, t],
                          "estimate": est[s, t] if inf.kind == "t" else np.nan,
                          **_mesh_place(grid, s)})
-    return pd.DataFrame(rows, columns=cols)
+    return _typed(pd.DataFrame(rows, columns=cols))
 
 
 def timecourse_table(contrast, participants: pd.DataFrame, time_axis: TimeAxis,

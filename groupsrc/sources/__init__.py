@@ -8,5 +8,6 @@ from .base import SourceSpace
 from .surface import Hemisphere, SurfaceMesh
 from .timeaxis import TimeAxis
 from .volume import VolumeGrid
+from .voxels import VoxelParts
 
-__all__ = ["Hemisphere", "SourceSpace", "SurfaceMesh", "TimeAxis", "VolumeGrid"]
+__all__ = ["Hemisphere", "SourceSpace", "SurfaceMesh", "TimeAxis", "VolumeGrid", "VoxelParts"]

@@ -8,9 +8,10 @@ Geometry only, apart from any file format (:mod:`groupsrc.formats.gifti` and
   e.g. without the medial wall);
 * :class:`SurfaceMesh` -- one or two hemispheres behind the
   :class:`~groupsrc.sources.base.SourceSpace` contract;
-* mesh helpers: :func:`mesh_edges`, :func:`euler_characteristic`,
-  :func:`mesh_defects` (what makes a mesh unusable, or not closed),
-  :func:`vertex_normals` and :func:`icosphere` (the subdivided icosahedron).
+* mesh helpers (in :mod:`.mesh`, re-exported here): :func:`mesh_edges`,
+  :func:`euler_characteristic`, :func:`mesh_defects` (what makes a mesh
+  unusable, or not closed), :func:`vertex_normals` and :func:`icosphere`
+  (the subdivided icosahedron).
 
 Conventions
 -----------
@@ -26,6 +27,16 @@ Conventions
 * ``maps_format`` names the file format the maps came in ("gifti" or
   "cifti"); result maps follow it (:data:`groupsrc.formats.RESULT_MAPS`).
   Geometry never looks at it.
+* ``voxels`` (optional, CIFTI-2 only): the volume parts of the files
+  (:class:`~groupsrc.sources.voxels.VoxelParts`: subcortical structures,
+  cerebellum voxels).  Their voxels are sources after the surfaces' (source
+  ``n_surface_sources + m`` is voxel ``m``); they are joined to each other
+  by faces within one structure and never to a surface vertex.  The volume
+  parts ride on the surface space, not in a second space beside it, because
+  they only ever come with a CIFTI-2 file's surfaces and go back into one:
+  every place that knows a surface (result maps, figures, tables, the
+  report) keeps one kind of space and adds the voxels where it writes or
+  draws them, and statistics still see one adjacency matrix.
 """
 
 from __future__ import annotations
@@ -36,189 +47,15 @@ from functools import cached_property
 import numpy as np
 import pandas as pd
 from scipy import sparse
-from scipy.sparse.csgraph import connected_components
 
 from .base import SourceSpace
+from .mesh import (euler_characteristic, icosphere, mesh_defects, mesh_edges,  # noqa: F401
+                   vertex_normals)
+from .voxels import VoxelParts
 
 HEMISPHERES = ("left", "right")
 #: neighbour kinds of a surface: vertices joined by a triangle edge
 SURFACE_NEIGHBORS = ("edge",)
-
-
-# ----------------------------------------------------------------------------
-# mesh helpers (plain arrays)
-# ----------------------------------------------------------------------------
-
-def mesh_edges(triangles) -> np.ndarray:
-    """Unique undirected edges (E, 2) of a triangle list, each row sorted (a < b).
-
-    Examples
-    --------
-    >>> mesh_edges([[0, 1, 2], [0, 2, 3]]).tolist()
-    [[0, 1], [0, 2], [0, 3], [1, 2], [2, 3]]
-    """
-    tri = np.asarray(triangles, dtype=np.int64).reshape(-1, 3)
-    pairs = np.concatenate([tri[:, [0, 1]], tri[:, [1, 2]], tri[:, [2, 0]]])
-    pairs.sort(axis=1)
-    return np.unique(pairs, axis=0)
-
-
-def _edge_use(triangles):
-    """Sorted edge of every triangle side (3F, 2) and how often each unique edge occurs."""
-    tri = np.asarray(triangles, dtype=np.int64).reshape(-1, 3)
-    pairs = np.concatenate([tri[:, [0, 1]], tri[:, [1, 2]], tri[:, [2, 0]]])
-    pairs.sort(axis=1)
-    edges, inverse, counts = np.unique(pairs, axis=0, return_inverse=True, return_counts=True)
-    return edges, inverse.reshape(-1), counts
-
-
-def euler_characteristic(n_vertices: int, triangles) -> int:
-    """V - E + F; 2 for a closed surface of genus 0, such as a hemisphere (Euler's formula)."""
-    tri = np.asarray(triangles).reshape(-1, 3)
-    return int(n_vertices) - int(mesh_edges(tri).shape[0]) + int(tri.shape[0])
-
-
-def _fans_connected(n_vertices, tri, edges, inverse):
-    """Vertices whose triangles do not form one fan (a 'bow tie' vertex), as an array.
-
-    Each corner v of a triangle (v, p, q) joins v's two half-edges (v, p) and
-    (v, q); a vertex is a manifold vertex when its half-edges form one
-    connected set (its triangles share edges in one fan or ring).
-    """
-    F = tri.shape[0]
-    side = inverse.reshape(3, F).T            # edge index of sides (0,1), (1,2), (2,0)
-    # half-edge node id: 2 * edge + (1 if the vertex is the edge's larger end)
-    def node(v, e):
-        return 2 * e + (edges[e, 1] == v)
-    rows, cols = [], []
-    # corner 0 joins sides 0 and 2, corner 1 sides 0 and 1, corner 2 sides 1 and 2
-    for corner, (s1, s2) in enumerate(((0, 2), (0, 1), (1, 2))):
-        v = tri[:, corner]
-        rows.append(node(v, side[:, s1]))
-        cols.append(node(v, side[:, s2]))
-    rows, cols = np.concatenate(rows), np.concatenate(cols)
-    n_nodes = 2 * edges.shape[0]
-    graph = sparse.coo_matrix((np.ones(rows.size, bool), (rows, cols)), shape=(n_nodes, n_nodes))
-    _, comp = connected_components(graph, directed=False)
-    owner = np.where(np.arange(n_nodes) % 2 == 1, edges[:, 1].repeat(2), edges[:, 0].repeat(2))
-    pairs = np.unique(np.column_stack([owner, comp]), axis=0)
-    per_vertex = np.bincount(pairs[:, 0], minlength=n_vertices)
-    return np.flatnonzero(per_vertex > 1)
-
-
-def mesh_defects(n_vertices: int, triangles, closed: bool = True) -> list:
-    """Why a triangle mesh cannot serve as a source space; empty when it can.
-
-    Always checked: vertex indices within ``0 .. n_vertices - 1``, no triangle
-    naming a vertex twice, no triangle listed twice, no edge shared by more
-    than two triangles and no vertex whose triangles form more than one fan
-    (both make the surface non-manifold).  With ``closed``: every edge is
-    shared by exactly two triangles (no hole or cut) and every vertex belongs
-    to a triangle -- the definition of a closed triangulated 2-manifold
-    (common practice).  Each entry is one sentence naming counts and a few
-    examples.
-    """
-    tri = np.asarray(triangles)
-    if tri.ndim != 2 or tri.shape[1] != 3 or tri.shape[0] == 0:
-        return [f"triangles must be a non-empty list of vertex triples, got shape {tri.shape}"]
-    tri = tri.astype(np.int64)
-    out = []
-    bad = np.flatnonzero(((tri < 0) | (tri >= n_vertices)).any(axis=1))
-    if bad.size:
-        return [f"{bad.size} triangle(s) name vertices outside 0..{n_vertices - 1} "
-                f"(first: triangle {bad[0]} = {tri[bad[0]].tolist()})"]
-    s = np.sort(tri, axis=1)
-    degenerate = np.flatnonzero((s[:, 0] == s[:, 1]) | (s[:, 1] == s[:, 2]))
-    if degenerate.size:
-        out.append(f"{degenerate.size} triangle(s) name one vertex twice (first: triangle "
-                   f"{degenerate[0]} = {tri[degenerate[0]].tolist()})")
-    _, first, counts = np.unique(s, axis=0, return_index=True, return_counts=True)
-    if (counts > 1).any():
-        out.append(f"{int((counts > 1).sum())} triangle(s) are listed more than once "
-                   f"(first: triangle {int(first[counts > 1][0])})")
-    if out:
-        return out
-    edges, inverse, use = _edge_use(tri)
-    over = np.flatnonzero(use > 2)
-    if over.size:
-        out.append(f"{over.size} edge(s) are shared by more than two triangles, so the surface "
-                   f"is not a manifold (first: vertices {edges[over[0]].tolist()})")
-    if closed:
-        open_edges = np.flatnonzero(use == 1)
-        if open_edges.size:
-            out.append(f"{open_edges.size} edge(s) belong to one triangle only, so the mesh "
-                       f"has a hole or a cut and is not closed (first: vertices "
-                       f"{edges[open_edges[0]].tolist()})")
-        unused = np.setdiff1d(np.arange(n_vertices), tri.ravel())
-        if unused.size:
-            out.append(f"{unused.size} vertex(es) belong to no triangle (first: vertex "
-                       f"{unused[0]})")
-    if not over.size:
-        pinched = _fans_connected(n_vertices, tri, edges, inverse)
-        if pinched.size:
-            out.append(f"{pinched.size} vertex(es) join surface pieces that share no edge "
-                       f"there, so the surface is not a manifold (first: vertex {pinched[0]})")
-    return out
-
-
-def vertex_normals(vertices, triangles) -> np.ndarray:
-    """Unit normal per vertex: the area-weighted mean of its triangles' normals.
-
-    Triangle normals follow the right-hand rule of the vertex order, so for a
-    consistently ordered closed mesh they all point outwards or all inwards.
-    A vertex of no triangle gets a zero vector.
-    """
-    v = np.asarray(vertices, float)
-    tri = np.asarray(triangles, dtype=np.int64)
-    face = np.cross(v[tri[:, 1]] - v[tri[:, 0]], v[tri[:, 2]] - v[tri[:, 0]])  # |face| = 2 area
-    out = np.zeros_like(v)
-    for k in range(3):
-        np.add.at(out, tri[:, k], face)
-    norm = np.linalg.norm(out, axis=1, keepdims=True)
-    return np.divide(out, norm, out=np.zeros_like(out), where=norm > 0)
-
-
-def icosphere(subdivisions: int = 0):
-    """Vertices (V, 3) on the unit sphere and outward-ordered triangles (F, 3).
-
-    The regular icosahedron (12 vertices, 30 edges, 20 faces), each face then
-    split ``subdivisions`` times into four at its edge midpoints, every new
-    vertex pushed out onto the sphere.  V = 10 * 4^k + 2, E = 30 * 4^k,
-    F = 20 * 4^k; the 12 original vertices keep 5 neighbours and every other
-    vertex has 6 (geometry of the subdivided icosahedron).
-
-    Examples
-    --------
-    >>> v, f = icosphere(1)
-    >>> v.shape, f.shape
-    ((42, 3), (80, 3))
-    """
-    if subdivisions < 0:
-        raise ValueError("subdivisions must be >= 0")
-    p = (1 + np.sqrt(5)) / 2
-    v = np.array([[-1, p, 0], [1, p, 0], [-1, -p, 0], [1, -p, 0],
-                  [0, -1, p], [0, 1, p], [0, -1, -p], [0, 1, -p],
-                  [p, 0, -1], [p, 0, 1], [-p, 0, -1], [-p, 0, 1]], float)
-    f = np.array([[0, 11, 5], [0, 5, 1], [0, 1, 7], [0, 7, 10], [0, 10, 11],
-                  [1, 5, 9], [5, 11, 4], [11, 10, 2], [10, 7, 6], [7, 1, 8],
-                  [3, 9, 4], [3, 4, 2], [3, 2, 6], [3, 6, 8], [3, 8, 9],
-                  [4, 9, 5], [2, 4, 11], [6, 2, 10], [8, 6, 7], [9, 8, 1]], np.int64)
-    v /= np.linalg.norm(v, axis=1, keepdims=True)
-    for _ in range(subdivisions):
-        edges, inverse, _ = _edge_use(f)
-        mid = v[edges].mean(axis=1)
-        mid /= np.linalg.norm(mid, axis=1, keepdims=True)
-        m = (len(v) + inverse).reshape(3, -1).T       # midpoints of sides ab, bc, ca
-        a, b, c = f.T
-        ab, bc, ca = m.T
-        f = np.concatenate([np.column_stack(t) for t in
-                            ((a, ab, ca), (b, bc, ab), (c, ca, bc), (ab, bc, ca))])
-        v = np.concatenate([v, mid])
-    # outward order: the normal points away from the centre
-    normal = np.cross(v[f[:, 1]] - v[f[:, 0]], v[f[:, 2]] - v[f[:, 0]])
-    inward = (normal * v[f].mean(axis=1)).sum(axis=1) < 0
-    f[inward] = f[inward][:, ::-1]
-    return v, f
 
 
 # ----------------------------------------------------------------------------
@@ -291,6 +128,7 @@ class SurfaceMesh(SourceSpace):
 
     hemispheres: tuple
     maps_format: str = "gifti"
+    voxels: VoxelParts | None = None
 
     kind = "surface"
     neighbor_kinds = SURFACE_NEIGHBORS
@@ -302,10 +140,22 @@ class SurfaceMesh(SourceSpace):
         order = sorted(names, key=HEMISPHERES.index)
         if names != order:
             raise ValueError("hemispheres must come left before right")
+        if self.voxels is not None and self.maps_format != "cifti":
+            raise ValueError("volume parts come only with CIFTI-2 maps")
+
+    @property
+    def n_surface_sources(self) -> int:
+        """Sources on the meshes (the first sources; the volume parts' voxels follow)."""
+        return int(sum(h.sources.size for h in self.hemispheres))
 
     @property
     def n_sources(self) -> int:
-        return int(sum(h.sources.size for h in self.hemispheres))
+        return self.n_surface_sources + (self.voxels.n_voxels if self.voxels is not None else 0)
+
+    @property
+    def voxel_slice(self) -> slice:
+        """The sources of the volume parts (empty without them)."""
+        return slice(self.n_surface_sources, self.n_sources)
 
     def hemisphere(self, name) -> Hemisphere:
         for h in self.hemispheres:
@@ -328,22 +178,41 @@ class SurfaceMesh(SourceSpace):
 
     @property
     def coords_mm(self) -> np.ndarray:
-        return np.concatenate([h.vertices[h.sources] for h in self.hemispheres])
+        parts = [h.vertices[h.sources] for h in self.hemispheres]
+        return np.concatenate(parts + ([self.voxels.coords_mm] if self.voxels else []))
 
     def labels(self) -> pd.DataFrame:
-        """Hemisphere and vertex index of each source."""
-        return pd.DataFrame({
+        """Hemisphere and vertex index of each source.
+
+        With volume parts, also ``structure`` (a voxel's volume part; "" on
+        the surfaces) and the voxel indices ``i``, ``j``, ``k`` (-1 on the
+        surfaces); a voxel has hemisphere "" and vertex -1.
+        """
+        out = pd.DataFrame({
             "hemisphere": np.concatenate([[h.name] * h.sources.size for h in self.hemispheres]),
             "vertex": np.concatenate([h.sources for h in self.hemispheres]).astype(np.int64)})
+        if self.voxels is None:
+            return out
+        out = out.assign(structure="", i=-1, j=-1, k=-1)
+        vox = self.voxels.labels().assign(hemisphere="", vertex=-1)
+        return pd.concat([out, vox[out.columns]], ignore_index=True).astype(
+            {c: np.int64 for c in ("vertex", "i", "j", "k")})
 
     def describe(self) -> dict:
-        return {"kind": self.kind, "n_sources": self.n_sources, "maps_format": self.maps_format,
-                "hemispheres": [{"name": h.name, "n_vertices": h.n_vertices,
-                                 "n_triangles": int(h.triangles.shape[0]),
-                                 "n_sources": int(h.sources.size)} for h in self.hemispheres]}
+        out = {"kind": self.kind, "n_sources": self.n_sources, "maps_format": self.maps_format,
+               "hemispheres": [{"name": h.name, "n_vertices": h.n_vertices,
+                                "n_triangles": int(h.triangles.shape[0]),
+                                "n_sources": int(h.sources.size)} for h in self.hemispheres]}
+        if self.voxels is not None:
+            out["volume_parts"] = self.voxels.describe()
+        return out
 
     def adjacency(self, neighbors: str | None = None) -> sparse.csr_matrix:
-        """Sources joined by a mesh edge; hemispheres never joined (block diagonal)."""
+        """Sources joined by a mesh edge; hemispheres never joined (block diagonal).
+
+        Voxels of the volume parts: by faces within a structure
+        (:meth:`VoxelParts.adjacency`), never joined to a vertex.
+        """
         neighbors = neighbors or SURFACE_NEIGHBORS[0]
         if neighbors not in SURFACE_NEIGHBORS:
             raise ValueError(f"neighbors must be one of {list(SURFACE_NEIGHBORS)} on a "
@@ -353,6 +222,8 @@ class SurfaceMesh(SourceSpace):
     @cached_property
     def _adjacency(self) -> sparse.csr_matrix:
         blocks = [h.vertex_graph()[h.sources][:, h.sources] for h in self.hemispheres]
+        if self.voxels is not None:                     # never joined to a vertex
+            blocks.append(self.voxels.adjacency())
         A = sparse.block_diag(blocks, format="csr").astype(bool)
         A.eliminate_zeros()
         A.sort_indices()
@@ -369,6 +240,13 @@ class SurfaceMesh(SourceSpace):
         return out
 
     def from_vertices(self, per_hemisphere: dict) -> np.ndarray:
-        """{name: (V, ...) array} -> per-source values (n_sources, ...)."""
-        return np.concatenate([np.asarray(per_hemisphere[h.name])[h.sources]
-                               for h in self.hemispheres])
+        """{name: (V, ...) array} -> per-source values (n_sources, ...).
+
+        With volume parts the dict also holds each part's voxel values under
+        its structure name ((n, ...) in the part's voxel order, as
+        :func:`groupsrc.formats.cifti.read_data` returns them).
+        """
+        parts = [np.asarray(per_hemisphere[h.name])[h.sources] for h in self.hemispheres]
+        if self.voxels is not None:
+            parts += [np.asarray(per_hemisphere[name]) for name in self.voxels.names]
+        return np.concatenate(parts)
