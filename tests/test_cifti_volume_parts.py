@@ -425,6 +425,9 @@ def test_loaded_data_match_the_files_voxel_by_voxel(cohort):
         cols = [column[(r.structure, (r.i, r.j, r.k)) if r.structure else (r.hemisphere, r.vertex)]
                 for r in lab.itertuples()]
         np.testing.assert_array_equal(np.asarray(coh.Y[m]), data[:, cols].T)
+    again = load_cohort(settings, progress=False)             # from the loading cache
+    assert again.cache_hit and again.grid.voxels.names == coh.grid.voxels.names
+    np.testing.assert_array_equal(np.asarray(again.Y), np.asarray(coh.Y))
 
 
 def test_nan_at_a_voxel_names_the_structure(ccopy, capsys):
@@ -436,3 +439,25 @@ def test_nan_at_a_voxel_names_the_structure(ccopy, capsys):
     _rewrite(ccopy, 2, nan)
     assert_refused(ccopy, capsys, ["maps.tsv row 4", "1 NaN/Inf value(s) at sources (1 in "
                                    f"{LEFT_PART})", "every voxel a volume part lists is a source"])
+
+
+def test_a_voxel_in_two_parts_is_named(ccopy, capsys):
+    """CIFTI-2 specification: each brain-model element is one grayordinate, so one voxel
+    listed under two structures (or outside the volume) cannot be read as sources."""
+    def overlap(parts, affine, values):
+        parts[LEFT_PART] = np.vstack([parts[LEFT_PART], parts[RIGHT_PART][:1]])
+        values[LEFT_PART] = np.hstack([values[LEFT_PART], values[RIGHT_PART][:, :1]])
+        return parts, affine, values
+
+    def outside(parts, affine, values):
+        parts[RIGHT_PART] = parts[RIGHT_PART].copy()
+        parts[RIGHT_PART][0] = [SHAPE[0], 0, 0]
+        return parts, affine, values
+
+    a = _rewrite(ccopy, 0, overlap)
+    b = _rewrite(ccopy, 3, outside)
+    assert_refused(ccopy, capsys, [
+        f"maps.tsv row 2 ({a}): its volume parts cannot be used: a voxel belongs to more "
+        "than one volume part",
+        f"maps.tsv row 5 ({b}): its volume parts cannot be used: structure {RIGHT_PART} has "
+        "voxel indices outside the volume"])

@@ -41,8 +41,8 @@ import numpy as np
 from . import cache as _cache
 from ..formats import cifti, gifti
 from ..sources import Hemisphere, SurfaceMesh, TimeAxis
-from ..sources.voxels import VoxelParts
 from ..sources.surface import HEMISPHERES
+from ..sources.voxels import VoxelParts
 from .problems import InputError, ProblemList
 from .cifti_checks import cifti_headers
 from .surface_checks import (_check_time, _map_path, _times, check_same_files, gifti_headers,
@@ -53,6 +53,7 @@ from .tables import HEMISPHERE_PATHS, MISSING
 CACHE_TAG = "surface-v1"
 #: and those of CIFTI-2 files whose volume parts are sources too (earlier entries held no voxels)
 VOLUME_CACHE_TAG = "cifti-volume-parts-v1"
+
 
 @dataclass
 class SurfaceInputs:
@@ -118,8 +119,8 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
             for h in hemis:
                 scan[h] &= np.isfinite(data[h]).all(axis=1) & ~(data[h] == 0).all(axis=1)
         use = {h: scan[h] if use[h] is None else use[h] for h in hemis}
-    sizes = [int(use[h].sum()) for h in hemis] + [len(voxels.ijk[voxels.part_slice(n)])
-                                                  for n in names]
+    sizes = [int(use[h].sum()) for h in hemis] + [len(ijk) for _, ijk in
+                                                  (voxels.parts if voxels is not None else ())]
     bounds = np.cumsum([0] + sizes)
     Y = np.empty((len(lines), int(bounds[-1]), n_t), dtype=np.float32)
     for i, line in enumerate(tqdm(lines, desc="loading maps", unit="map", disable=not progress)):
