@@ -89,6 +89,10 @@ class InferenceResult:
     tfce : TfceOptions or None
     enhanced : (n_sources, n_times) float32 or None
         The observed TFCE map.
+    scale : "statistic" or "z"
+        What ``statistic`` holds (see :class:`~groupsrc.stats.kernels.Observed`).
+    test_statistic, df_map : (n_sources, n_times) or None
+        With ``scale = "z"``: the t or F, and its per-feature denominator df.
     """
 
     kind: str
@@ -114,6 +118,9 @@ class InferenceResult:
     rearrangements: np.ndarray | None = None
     tfce: TfceOptions | None = None
     enhanced: np.ndarray | None = None
+    scale: str = "statistic"
+    test_statistic: np.ndarray | None = None
+    df_map: np.ndarray | None = None
 
 
 @dataclass
