@@ -185,9 +185,38 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
     print(f"  design       : {prep.design.X.shape[0]} participants x "
           f"{prep.design.X.shape[1]} coefficients: {', '.join(prep.design.X.columns)}")
+    if prep.mixed is not None:
+        _print_mixed(prep)
     for plan in prep.plans:
-        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}] {plan.description}")
+        model = ", mixed model" if plan.model == "mixed" else ""
+        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}{model}] "
+              f"{plan.description}")
     return EXIT_OK
+
+
+def _print_mixed(prep):
+    """What check says about the mixed model: its columns, the maps per participant,
+    the empty cells, and the participants GLM contrasts leave out."""
+    s, md = prep.summary, prep.mixed
+    method = prep.settings.model.get("estimation", "reml").upper()
+    print(f"  mixed model  : {method}, {len(md.X)} maps x {md.X.shape[1]} coefficients: "
+          f"{', '.join(md.X.columns)}")
+    print(f"  random       : {', '.join(md.z_names)} per participant")
+    per = s.get("maps_per_participant", {})
+    dist = {}
+    for pid, k in per.items():
+        dist.setdefault(k, []).append(pid)
+    parts = []
+    for k in sorted(dist):
+        who = dist[k]
+        names = f" ({', '.join(who)})" if len(who) <= 3 else ""
+        parts.append(f"{len(who)} with {k} map{'s' if k != 1 else ''}{names}")
+    print(f"  maps/person  : {'; '.join(parts)}")
+    empty = s.get("empty_cells", [])
+    print("  empty cells  : " + (", ".join(f"{p} {c}" for p, c in empty) if empty else "none"))
+    if s.get("glm_excluded"):
+        print(f"  GLM contrasts: leave out {', '.join(s['glm_excluded'])} (no map of every "
+              "condition; the mixed model uses their maps)")
 
 
 def cmd_demo(args, command) -> int:

@@ -74,8 +74,11 @@ def statsmodels_reml(y, design, reml=True):
             if np.isfinite(r.llf) and (best is None or r.llf > best.llf):
                 best = r
         for _ in range(2):
-            r = MixedLM(y, X, g, exog_re=Z).fit(reml=reml, start_params=best.params_object,
-                                                method=["bfgs"], gtol=1e-12, maxiter=5000)
+            try:
+                r = MixedLM(y, X, g, exog_re=Z).fit(reml=reml, start_params=best.params_object,
+                                                    method=["bfgs"], gtol=1e-12, maxiter=5000)
+            except Exception:      # polishing is optional
+                break
             if np.isfinite(r.llf) and r.llf >= best.llf:
                 best = r
         q = Z.shape[1]

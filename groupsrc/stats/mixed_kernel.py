@@ -127,7 +127,8 @@ class MixedKernel(StatisticKernel):
     def observed(self, tails):
         cs = contrast_statistics(self.fit, self.Y, self.L, tails)
         self._nu = cs.df
-        med = float(np.median(cs.df[np.isfinite(cs.df)])) if np.isfinite(cs.df).any() else 0.0
+        med = round(float(np.median(cs.df[np.isfinite(cs.df)])), 3) \
+            if np.isfinite(cs.df).any() else 0.0
         self.df = (med,) if self.kind == "t" else (cs.k, med)
         return Observed(self.kind, self.df, cs.z, cs.estimate, cs.se, cs.std_effect, cs.p,
                         scale="z", test_statistic=cs.statistic, df_map=cs.df)
