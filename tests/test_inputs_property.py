@@ -58,6 +58,17 @@ def _write(path, df):
     path.write_bytes(("\n".join(lines) + "\n").encode("utf-8"))
 
 
+def _check_exits_cleanly(analysis, capsys):
+    """groupsrc check: exit 0 or 1, no traceback, every input byte-identical."""
+    before = tree_hashes(analysis.parent)
+    rc = main(["check", str(analysis)])
+    cap = capsys.readouterr()
+    text = cap.out + cap.err
+    assert rc in (0, 1), text
+    assert "Traceback" not in text, text
+    assert tree_hashes(analysis.parent) == before
+
+
 @settings(max_examples=60, deadline=None, derandomize=True, database=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture,
                                  HealthCheck.too_slow])
@@ -73,13 +84,7 @@ def test_random_cells_never_crash_or_touch_inputs(cohort, capsys, data):
         df.iat[row, col] = value
     try:
         _write(analysis.parent / name, df)
-        before = tree_hashes(analysis.parent)
-        rc = main(["check", str(analysis)])
-        cap = capsys.readouterr()
-        text = cap.out + cap.err
-        assert rc in (0, 1), text
-        assert "Traceback" not in text, text
-        assert tree_hashes(analysis.parent) == before
+        _check_exits_cleanly(analysis, capsys)
     finally:
         _write(analysis.parent / name, originals[name])
 
@@ -158,12 +163,6 @@ def test_random_settings_values_never_crash_or_touch_inputs(cohort, capsys, data
             doc.setdefault(sec, {})[key] = value
     try:
         analysis.write_text(_dump(doc), encoding="utf-8")
-        before = tree_hashes(analysis.parent)
-        rc = main(["check", str(analysis)])
-        cap = capsys.readouterr()
-        text = cap.out + cap.err
-        assert rc in (0, 1), text
-        assert "Traceback" not in text, text
-        assert tree_hashes(analysis.parent) == before
+        _check_exits_cleanly(analysis, capsys)
     finally:
         analysis.write_text(original)
