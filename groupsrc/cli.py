@@ -1,4 +1,4 @@
-"""Command line: ``groupsrc demo | check | run | report``.
+"""Command line: ``groupsrc demo | check | run | report | followup``.
 
 Exit codes: 0 success, 1 a problem with the data or design (every problem
 listed), 2 a usage error.
@@ -54,6 +54,20 @@ def _parser():
 
     rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
     rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
+
+    f = sub.add_parser("followup", help="region means per map and a statsmodels mixed-model "
+                       "refit, for significant clusters or a region of yours")
+    f.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
+    f.add_argument("--contrast", default=None, help="only this contrast's clusters")
+    f.add_argument("--cluster", type=int, nargs="+", default=None, metavar="K",
+                   help="these cluster numbers of --contrast (default: the significant ones)")
+    f.add_argument("--mask", type=Path, default=None,
+                   help="a region of yours: 3D NIfTI mask on the template grid")
+    f.add_argument("--window", type=float, nargs=2, default=None, metavar=("START", "STOP"),
+                   help="time window of the --mask region in seconds (default: all samples)")
+    f.add_argument("--out", type=Path, default=None,
+                   help="folder to write (default: RESULTS_followup beside the results)")
+    f.add_argument("--overwrite", action="store_true", help="replace an earlier follow-up")
     return p
 
 
@@ -158,6 +172,13 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "demo":
         return cmd_demo(args, command)
+    if args.command == "followup":
+        from .followup import followup
+        out = followup(args.results, contrast=args.contrast, clusters=args.cluster,
+                       mask=args.mask, window=args.window, out=args.out,
+                       overwrite=args.overwrite)
+        print(f"follow-up written to {out}; read {out / 'followup.md'}")
+        return EXIT_OK
     return EXIT_USAGE
 
 

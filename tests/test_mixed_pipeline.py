@@ -29,10 +29,22 @@ from _mixed_data import statsmodels_reml
 from test_mixed_check import _model, _unbalanced
 
 
+def _add_rare_effect(cohort, size=3.0):
+    """Invented test input: +size in a small block of sources and samples of every
+    'rare' map (so that rare_minus_frequent has a cluster to follow up)."""
+    maps = pd.read_csv(cohort / "maps.tsv", sep="\t", dtype=str)
+    for path in maps.path[maps.condition == "rare"]:
+        img = nib.load(str(cohort / path))
+        data = np.asanyarray(img.dataobj).copy()
+        data[2:4, 2:4, 1:3, 3:6] += size
+        nib.save(nib.Nifti1Image(data, img.affine, img.header), str(cohort / path))
+
+
 @pytest.fixture(scope="module")
 def results(tmp_path_factory):
     root = tmp_path_factory.mktemp("mixedrun")
     analysis = _unbalanced(root / "c")
+    _add_rare_effect(root / "c")
     _model(analysis, "mixed = true")
     body = analysis.read_text().replace('correction = "cluster-mass"', 'correction = "max-stat"')
     analysis.write_text(body)
@@ -129,3 +141,121 @@ def test_the_report_rebuilds_from_the_folder(results, capsys):
     assert main(["report", str(out)]) == 0
     assert (out / "report.html").read_text(encoding="utf-8") == before
     assert (out / "model" / "figures" / "fit_over_time.png").is_file()
+
+
+# ----------------------------------------------------------------------------
+# groupsrc followup
+# ----------------------------------------------------------------------------
+
+def _followup(results, tmp_path, *args):
+    out = tmp_path / "fu"
+    rc = main(["followup", str(results), "--out", str(out), *args])
+    return rc, out
+
+
+@pytest.mark.filterwarnings("ignore")
+def test_followup_of_a_cluster_means_and_refit(results, tmp_path, capsys):
+    """region_means.tsv against the maps and labels read with nibabel; the refit against
+    statsmodels' formula interface on that table (reference library); the caution."""
+    import statsmodels.formula.api as smf
+    cohort, out = results
+    rc, fu = _followup(out, tmp_path, "--contrast", "rare_minus_frequent", "--cluster", "1")
+    assert rc == 0, capsys.readouterr()
+    means = pd.read_csv(fu / "region_means.tsv", sep="\t")
+    labels = _img(out / "rare_minus_frequent" / "clusters.nii.gz")
+    maps = pd.read_csv(cohort / "maps.tsv", sep="\t", dtype=str)
+    win = slice(0, labels.shape[3])                  # the analysed window is every sample
+    expect = [np.asanyarray(nib.load(str(cohort / p)).dataobj)[..., win][labels == 1].mean()
+              for p in maps.path]
+    np.testing.assert_allclose(means["value"], expect, rtol=1e-5)
+    assert list(means["participant_id"]) == list(maps.participant_id)
+    assert {"condition", "session", "group", "age"} <= set(means.columns)
+    coefs = pd.read_csv(fu / "coefficients.tsv", sep="\t")
+    data = means.assign(rare=(means.condition == "rare").astype(float),
+                        patient=(means.group == "patient").astype(float))
+    ref = smf.mixedlm("value ~ rare * (patient + age)", data, groups=data["participant_id"]
+                      ).fit(reml=True)
+    fixed = coefs[coefs.kind == "fixed"].set_index("term")["estimate"]
+    np.testing.assert_allclose(fixed["Intercept"], ref.fe_params["Intercept"], rtol=1e-4,
+                               atol=1e-6)
+    np.testing.assert_allclose(fixed["group[T.patient]:condition[T.rare]"],
+                               ref.fe_params["rare:patient"], rtol=1e-4, atol=1e-6)
+    assert set(coefs.circular) == {"yes"}
+    regions = pd.read_csv(fu / "regions.tsv", sep="\t")
+    assert regions.loc[0, "region"] == "rare_minus_frequent_cluster1"
+    assert "Kriegeskorte" in regions.loc[0, "caution"]
+    assert "Kriegeskorte et al. 2009" in (fu / "followup.md").read_text()
+
+
+def test_followup_of_a_region_of_ones_own(results, tmp_path, capsys):
+    cohort, out = results
+    rc, fu = _followup(out, tmp_path, "--mask", str(cohort / "mask.nii.gz"),
+                       "--window", "0", "0.012")
+    assert rc == 0, capsys.readouterr()
+    regions = pd.read_csv(fu / "regions.tsv", sep="\t")
+    assert list(regions.origin) == ["mask"] and regions.loc[0, "n_samples"] == 4
+    assert set(pd.read_csv(fu / "coefficients.tsv", sep="\t").circular) == {"no"}
+    contrasts = pd.read_csv(fu / "coefficients.tsv", sep="\t").query("kind == 'contrast'")
+    assert len(contrasts) == 3
+    # a second follow-up into the same folder needs --overwrite, and then replaces it
+    rc, _ = _followup(out, tmp_path, "--mask", str(cohort / "mask.nii.gz"))
+    assert rc == 1 and "add --overwrite" in capsys.readouterr().err
+    rc, _ = _followup(out, tmp_path, "--mask", str(cohort / "mask.nii.gz"), "--overwrite")
+    assert rc == 0
+    assert pd.read_csv(fu / "regions.tsv", sep="\t").loc[0, "n_samples"] == 9
+
+
+@pytest.mark.parametrize("args,fragments", [
+    (["--contrast", "rare_minus"], ["--contrast rare_minus", "rare_minus_frequent"]),
+    (["--contrast", "age_slope", "--cluster", "999"], ["--cluster 999", "has no cluster 999"]),
+    (["--cluster", "1"], ["--cluster", "needs --contrast"]),
+    (["--mask", "MAP", "--window", "0", "0.01"], ["3D", "mask"]),
+    (["--mask", "MASK", "--window", "2", "3"], ["--window 2 3", "holds no sample"]),
+])
+def test_followup_problems_are_named(results, tmp_path, capsys, args, fragments):
+    cohort, out = results
+    maps = pd.read_csv(cohort / "maps.tsv", sep="\t", dtype=str)
+    args = [str(cohort / maps.path[0]) if a == "MAP" else str(cohort / "mask.nii.gz")
+            if a == "MASK" else a for a in args]
+    rc, fu = _followup(out, tmp_path, *args)
+    text = capsys.readouterr().err
+    assert rc == 1 and "Traceback" not in text
+    for f in fragments:
+        assert f in text, text
+    assert not fu.exists()
+
+
+def test_followup_never_writes_into_the_results_or_over_a_foreign_folder(results, tmp_path,
+                                                                          capsys):
+    cohort, out = results
+    assert main(["followup", str(out), "--out", str(out / "fu")]) == 1
+    assert "inside the results folder" in capsys.readouterr().err
+    other = tmp_path / "notes"
+    other.mkdir()
+    (other / "mine.txt").write_text("keep me")
+    assert main(["followup", str(out), "--mask", str(cohort / "mask.nii.gz"),
+                 "--out", str(other), "--overwrite"]) == 1
+    assert "not written by 'groupsrc followup'" in capsys.readouterr().err
+    assert (other / "mine.txt").read_text() == "keep me"
+
+
+def test_followup_refuses_inputs_changed_since_the_run(results, tmp_path, capsys):
+    import shutil
+    cohort, out = results
+    copy = tmp_path / "c"
+    shutil.copytree(cohort, copy)
+    record = json.loads((out / "run.json").read_text())
+    res = tmp_path / "res"
+    shutil.copytree(out, res)
+    # the copy's run record points at the copied analysis file; then one map changes
+    record["analysis_file"] = str(copy / "analysis.toml")
+    record["inputs_sha256"] = {k.replace(str(cohort), str(copy)): v
+                               for k, v in record["inputs_sha256"].items()}
+    (res / "run.json").write_text(json.dumps(record))
+    maps = pd.read_csv(copy / "maps.tsv", sep="\t", dtype=str)
+    img = nib.load(str(copy / maps.path[3]))
+    nib.save(nib.Nifti1Image(np.asanyarray(img.dataobj) + 1, img.affine, img.header),
+             str(copy / maps.path[3]))
+    rc = main(["followup", str(res), "--mask", str(copy / "mask.nii.gz")])
+    text = capsys.readouterr().err
+    assert rc == 1 and maps.path[3] in text and "changed since the run" in text
