@@ -223,7 +223,8 @@ def _with_blocks(spec, cohort, ids, inf):
 def _fit_mixed(prep, samples, timings):
     """Fit the mixed model once at every source x sample (``mixed = true``)."""
     from .stats.mixed import MixedCore
-    from .stats.mixed_fit import fit_features, variance_components
+    from .stats.mixed_fit import fit_features
+    from .stats.mixed_inference import variance_components
     if prep.mixed is None or not any(p.model == "mixed" for p in prep.plans):
         return None
     t0 = time.perf_counter()

@@ -14,11 +14,13 @@ For each kernel factory in KERNELS on small data:
 A factory returns ``(kernel, X, C, Y)``; :func:`_reference` gives the outside
 reference for that kind of kernel -- statsmodels OLS for the OLS kernel,
 statsmodels MixedLM for the mixed-model kernel (``X`` is then its
-``MixedDesign``).  The mixed kernel resamples with the variance components
-held at the observed data's estimates (groupsrc/stats/mixed_kernel.py), so its
-rearranged data sets are refitted by MixedLM with the covariance of the random
-effects held at those values (``free``); the observed one is refitted freely
-and then conditionally on its own REML estimates.  Its statistic is the z of
+``MixedDesign``).  The mixed kernel scores every data set, the observed one
+included, with the variance components held at the estimates of the model
+restricted to L b = 0 (groupsrc/stats/mixed_kernel.py): those estimates are
+checked against a free MixedLM fit of the restricted model, and the observed
+and rearranged data sets are refitted by MixedLM with the covariance of the
+random effects held at them (``free``); the estimate and its standard error
+are those of a free MixedLM fit of the full model.  The statistic is the z of
 equal p: the reference t is converted with scipy (t and normal tails) at the
 kernel's Satterthwaite df (those df are checked in test_mixed_satterthwaite).
 """
@@ -150,7 +152,7 @@ class _MixedReference:
     def __init__(self, kernel, design, L):
         self.kernel, self.d, self.L = kernel, design, np.atleast_2d(L)
         core = kernel.core
-        Lam = lambda_of(kernel.fit.theta, core.q)
+        Lam = lambda_of(kernel.null_fit().theta, core.q)
         self.Psi = core.psi_raw(np.einsum("ijf,kjf->ikf", Lam, Lam))   # relative, raw Z
 
     def _z(self, res, j):
@@ -187,7 +189,7 @@ class _MixedReference:
         z, est, se = [], [], []
         for j in range(Y.shape[1]):
             _, fixed = statsmodels_reml(Y[:, j], self.d)
-            z.append(self._z(fixed, j)[0])
+            z.append(self._z(self._fixed(Y[:, j].astype(float), j), j)[0])
             if self.L.shape[0] == 1:
                 est.append(float(self.L[0] @ np.asarray(fixed.fe_params)))
                 se.append(float(np.sqrt(self.L[0] @ fixed.cov_params()[:len(self.L[0]),
@@ -269,6 +271,26 @@ def test_observed_equals_a_direct_refit(case, tails):
     if kernel.kind == "t":
         np.testing.assert_allclose(obs.estimate, est, rtol=1e-5)
         np.testing.assert_allclose(obs.se, se, rtol=1e-4)
+
+
+MIXED = [name for name in KERNELS if name.startswith("mixed")]
+
+
+@pytest.mark.parametrize("name", MIXED)
+def test_mixed_null_model_variance_matches_statsmodels(name):
+    """The restricted model's variance components (relative to the residual variance)
+    against a free statsmodels MixedLM REML fit of X N, N a basis of {b : L b = 0}
+    (reference library; rtol 1e-3 as for the full model in test_mixed_core)."""
+    kernel, d, L, Y = KERNELS[name]()
+    from types import SimpleNamespace
+    L = np.atleast_2d(L)
+    Nc = np.linalg.svd(L)[2][np.linalg.matrix_rank(L):].T
+    Psi = _MixedReference(kernel, d, L).Psi
+    d0 = SimpleNamespace(X=np.asarray(d.X) @ Nc, Z=d.Z, groups=d.groups)
+    for j in range(Y.shape[1]):
+        best, _ = statsmodels_reml(Y[:, j], d0)
+        np.testing.assert_allclose(Psi[:, :, j], np.asarray(best.cov_re) / best.scale,
+                                   rtol=1e-3, atol=1e-6)
 
 
 def test_resampled_statistics_equal_direct_refits(case):

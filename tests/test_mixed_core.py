@@ -19,7 +19,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from groupsrc.stats import mixed_fit as mf
+from groupsrc.stats import mixed_fit
+from groupsrc.stats import mixed_inference as mf
 from groupsrc.stats.mixed import MixedCore, MixedDesign, lower_index
 
 from _mixed_data import simulate, statsmodels_reml, unbalanced_design
@@ -69,7 +70,7 @@ def test_gradient_and_hessian_match_finite_differences(slope):
 
 def _ours(design, Y, reml=True):
     core = MixedCore(design)
-    fit = mf.fit_features(core, Y, reml=reml)
+    fit = mixed_fit.fit_features(core, Y, reml=reml)
     vc = mf.variance_components(fit, Y)
     ses = []
     for j in range(core.p):
@@ -125,7 +126,7 @@ def test_constant_feature_has_its_own_code():
     Y = simulate(design, 4, seed=11)
     Y[:, 2] = 3.0
     core = MixedCore(design)
-    fit = mf.fit_features(core, Y)
+    fit = mixed_fit.fit_features(core, Y)
     assert fit.code[2] == 3 and np.all(fit.code[[0, 1, 3]] != 3)
     cs = mf.contrast_statistics(fit, Y, [0, 1, 0, 0, 0, 0])
     assert cs.z[2] == 0 and cs.p[2] == 1

@@ -18,12 +18,13 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from groupsrc.stats import mixed_fit as mf
+from groupsrc.stats import mixed_fit
+from groupsrc.stats import mixed_inference as mf
 from groupsrc.stats.mixed import MixedCore, MixedDesign
 
 
 def _fit(X, g, Y):
-    fit = mf.fit_features(MixedCore(MixedDesign(X, np.ones((len(g), 1)), g)), Y)
+    fit = mixed_fit.fit_features(MixedCore(MixedDesign(X, np.ones((len(g), 1)), g)), Y)
     return fit, fit.code == 0
 
 
@@ -91,3 +92,46 @@ def test_z_has_the_p_of_the_t():
     Fv = np.array([0.1, 2.0, 30.0, 4000.0])
     np.testing.assert_allclose(stats.norm.logsf(mf.z_of_f(Fv, 2, 9.0)),
                                stats.f.logsf(Fv, 2, 9.0), rtol=1e-8)
+
+
+def test_scored_z_is_the_exact_z_where_it_counts():
+    """The z maps and scores use the exact z (scipy t and normal tails) where |z| >= 3,
+    and Hill's normalizing transformation below: within 1.3e-4 of the exact z for
+    df >= 4 and 1e-6 for df >= 8 (checked here against scipy, not taken from the code)."""
+    t = np.concatenate([-np.geomspace(1e-3, 60, 400), np.geomspace(1e-3, 60, 400)])
+    for nu in (4.0, 7.3, 15.0, 42.0, 300.0):
+        exact = np.sign(t) * stats.norm.isf(stats.t.sf(np.abs(t), nu))
+        z = mf.scored_z(t, nu, mf.t_switch(nu))
+        big = np.abs(exact) >= 3 + 1e-9
+        np.testing.assert_allclose(z[big], exact[big], rtol=1e-9)
+        np.testing.assert_allclose(z[~big], exact[~big], atol=1.3e-4 if nu < 8 else 1e-6)
+        assert np.all(np.diff(z[400:]) > 0)                     # monotone in t
+
+
+def test_scoring_df_are_those_of_the_restricted_model():
+    """The permutation score (mixed_kernel) converts t to z at Satterthwaite df computed
+    at the fit of the model restricted to L b = 0, which has rank(L) fixed effects fewer
+    than the full model: in the balanced designs above the df are then n (paired; the
+    restricted model leaves the within-participant variance n df) and N - 1 (two groups
+    of participant means) -- the analytic identities of the full model plus one."""
+    rng = np.random.default_rng(6)
+    n = 12
+    g, cond = np.repeat(np.arange(n), 2), np.tile([0.0, 1.0], n)
+    Y = (1.5 * rng.standard_normal((n, 30)))[g] + 0.5 * cond[:, None] \
+        + rng.standard_normal((2 * n, 30))
+    X = np.c_[np.ones(2 * n), cond]
+    fit, ok = _fit(X, g, Y)
+    fit0, ok0 = _fit(X[:, :1], g, Y)
+    _, _, nu = mf.score_statistics(fit, fit0, Y, [0.0, 1.0])
+    assert (ok & ok0).sum() >= 20
+    np.testing.assert_allclose(nu[ok & ok0], n, rtol=1e-7)
+    N, k = 12, 3
+    g = np.repeat(np.arange(N), k)
+    grp = (g >= N // 2).astype(float)
+    Y = rng.standard_normal((N, 30))[g] + rng.standard_normal((N * k, 30))
+    X = np.c_[np.ones(N * k), grp]
+    fit, ok = _fit(X, g, Y)
+    fit0, ok0 = _fit(X[:, :1], g, Y)
+    _, _, nu = mf.score_statistics(fit, fit0, Y, [0.0, 1.0])
+    assert (ok & ok0).sum() >= 20
+    np.testing.assert_allclose(nu[ok & ok0], N - 1, rtol=1e-5)

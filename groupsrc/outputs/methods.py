@@ -40,15 +40,20 @@ REFERENCES = {
 
 #: the mixed model's resampling, what is held fixed and why the test stays valid
 MIXED_RESAMPLING = (
-    "For the mixed-model contrasts the variance components of each source and sample were "
-    "held at the observed data's estimates; every rearrangement re-estimated the fixed effects "
-    "(generalized least squares) and the residual variance at those variance components, and "
-    "so the t or F and its z (Satterthwaite df also held fixed). The rearrangements move whole "
-    "participants only {multilevel}: participants' residual vectors under the model without "
-    "the tested effect (Freedman-Lane {freedman}) are exchangeable or symmetric whatever fixed "
-    "weighting of their maps is applied, so holding the weighting fixed keeps the test valid "
-    "(it only decides how efficiently each participant's maps are combined), the observed "
-    "data are one of the rearrangements, and no model is refitted per rearrangement.")
+    "For the mixed-model contrasts the observed data and every rearrangement were scored "
+    "alike: at each source and sample the variance components were held at the REML "
+    "estimates of the model without the tested effect (fitted once), and each data set "
+    "re-estimated the fixed effects (generalized least squares) and the residual variance at "
+    "those variance components, giving the t or F and its z (through Satterthwaite df "
+    "computed once from that fit). The rearrangements move whole participants only "
+    "{multilevel}: participants' residual vectors under the model without the tested effect "
+    "(Freedman-Lane {freedman}) are exchangeable or symmetric, and variance components "
+    "estimated without the tested effect describe every rearrangement alike, so holding them "
+    "fixed keeps the test valid (it only decides how efficiently each participant's maps are "
+    "combined); estimates that had seen the tested effect would not, and would inflate the "
+    "maximum statistic. The observed data are one of the rearrangements, and no model is "
+    "refitted per rearrangement. Estimates, standard errors, t, df and uncorrected p of the "
+    "maps are those of the full model's own fit.")
 
 
 CORRECTION_TEXT = {

@@ -2,8 +2,10 @@
 
 One contrast ``L`` (one row: t; k rows: F) of a :class:`~.mixed_fit.MixedFit`
 behind the contract of :mod:`.kernels`.  The observed statistic is the z of
-equal p (see :mod:`.mixed_fit`); the t or F and the per-feature
-Satterthwaite df come along in ``Observed.test_statistic`` and ``df_map``.
+equal p (see :mod:`.mixed_inference`) of the contrast scored at the null
+model's variance components (below); the full fit's t or F and its
+per-feature Satterthwaite df come along in ``Observed.test_statistic`` and
+``df_map``.
 
 Resampling (two levels, Winkler et al. 2015, NeuroImage 123:253-268)
 --------------------------------------------------------------------
@@ -29,21 +31,30 @@ of the model restricted to ``L beta = 0``, rearranged data ``X beta_z + P
 r_z``.
 
 What is re-estimated per resample, and what is held fixed.  Held fixed per
-feature: the variance components (``theta``) of the observed data's fit, so
-the GLS weighting ``Vbar^{-1}``, and the Satterthwaite df that turn t into
-z.  Re-estimated per resample: the fixed effects by GLS, the residual
-variance ``sigma^2`` at those variance components, and so the t or F and its
-z.  Why the test stays valid: the rearrangements leave the null
-distribution of the Freedman-Lane data unchanged whatever fixed weighting is
-applied to them; holding the weighting fixed only decides which linear
+feature: the variance components ``theta0`` of the *null model* (the model
+restricted to ``L beta = 0``, fitted by REML once at every feature, see
+:meth:`MixedKernel.null_fit`), so the GLS weighting ``Vbar^{-1}``, and the
+Satterthwaite df computed at that fit (they depend on ``theta0`` and the
+design only).  Re-estimated per resample -- and for the observed data, which
+are scored the same way: the fixed effects by GLS, the residual variance
+``sigma^2`` of the full model at ``theta0``, and so the t or F and its z.  Why
+the test stays valid: the rearrangements leave the null distribution of the
+Freedman-Lane data unchanged, and ``theta0`` is estimated from the
+restricted model, in which the tested effect plays no part, so it describes
+the observed data and every rearrangement alike (to the approximation
+Freedman-Lane itself makes); a fixed weighting only decides which linear
 combination of each participant's maps carries the effect (an efficiency
-choice), so the rearrangement distribution of the statistic is its null
-distribution -- up to the approximation Freedman-Lane itself makes and the
-small dependence of ``theta`` on the data, which the null calibration on
-unbalanced noise cohorts (``tests/test_mixed_calibration.py``) checks.
+choice).  The full model's own estimates would not do: they are chosen with the
+tested effect in view, and where they happen to make the observed t large the
+rearrangements do not share it -- the maximum statistic then exceeds its
+rearrangement distribution far more often than alpha (seen in the null
+calibration).  The null calibration on unbalanced noise cohorts
+(``tests/test_mixed_calibration.py``) checks the family-wise error.
 Studentizing by the re-estimated ``sigma^2`` keeps features with different
 noise on one scale for the map-wide maximum.  Identity resample = the
-observed statistic.
+observed statistic.  Estimates, standard errors, t, df and uncorrected p of
+the maps come from the full model's REML fit (:func:`.contrast_statistics`);
+the z that forms clusters and maxima is the scored one.
 
 Cost.  With ``theta`` fixed, block-diagonal whitening commutes with
 whole-participant sign flips and permutations, so per feature the data
@@ -68,7 +79,10 @@ from scipy import sparse, special
 
 from . import mixed_linalg as la
 from .kernels import FEATURE_CHUNK, RES_BLOCK, FitInfo, Observed, StatisticKernel, one_blas_thread
-from .mixed_fit import MixedFit, contrast_statistics, z_of_f, z_of_t
+from .mixed import MixedCore, MixedDesign
+from .mixed_fit import MixedFit, fit_features
+from .mixed_inference import (contrast_statistics, score_statistics, scored_z, t_switch,
+                              z_of_f)
 from .resampling import Rearrangements, count_distinct_permutations, permutations, sign_flips
 
 #: fewest distinct whole-participant permutations before sign flips are used instead
@@ -105,6 +119,7 @@ class MixedKernel(StatisticKernel):
         self.n_units = self.core.N
         self.freedman_lane = self.core.p > self.L.shape[0]
         self._nu = None
+        self._fit0 = None
         self.rearr = None
         self.df = (float("nan"),) if self.kind == "t" else (self.L.shape[0], float("nan"))
         self._buffers = {}
@@ -124,13 +139,30 @@ class MixedKernel(StatisticKernel):
         return buf[:B]
 
     # -- observed -------------------------------------------------------------
+    def null_fit(self) -> MixedFit:
+        """The model restricted to L b = 0, fitted at every feature (once): its variance
+        components weight the scored statistic and the rearrangements."""
+        if self._fit0 is None:
+            Nz = _null_basis(self.L)
+            if Nz.shape[1] == 0:             # the contrast spans every fixed effect
+                self._fit0 = self.fit
+            else:
+                d = self.core.design
+                core0 = MixedCore(MixedDesign(np.asarray(d.X) @ Nz, d.Z, d.groups))
+                self._fit0 = fit_features(core0, self.Y, reml=self.fit.reml)
+        return self._fit0
+
     def observed(self, tails):
+        """Statistic: the scored z (null-model variance components, see the module
+        docstring); estimate, SE, t or F (``test_statistic``), its Satterthwaite df
+        (``df_map``) and p: the full REML fit."""
         cs = contrast_statistics(self.fit, self.Y, self.L, tails)
-        self._nu = cs.df
+        z0, _, nu0 = score_statistics(self.fit, self.null_fit(), self.Y, self.L)
+        self._nu = nu0
         med = round(float(np.median(cs.df[np.isfinite(cs.df)])), 3) \
             if np.isfinite(cs.df).any() else 0.0
         self.df = (med,) if self.kind == "t" else (cs.k, med)
-        return Observed(self.kind, self.df, cs.z, cs.estimate, cs.se, cs.std_effect, cs.p,
+        return Observed(self.kind, self.df, z0, cs.estimate, cs.se, cs.std_effect, cs.p,
                         scale="z", test_statistic=cs.statistic, df_map=cs.df)
 
     def threshold(self, forming_p, tails):
@@ -197,7 +229,8 @@ class MixedKernel(StatisticKernel):
         self.a = np.zeros((k, p, nch * self.fc), np.float32)
         self.rr = np.zeros(nch * self.fc, np.float32)
         self.nu = np.ones(nch * self.fc)
-        self.nu[:F] = np.where(np.isfinite(self._nu), self._nu, 1.0)
+        self.nu[:F] = np.where(np.isfinite(self._nu) & (self._nu > 0), self._nu, 1.0)
+        self.switch = t_switch(self.nu)
         if perm:
             self.LA = np.zeros((p, p, nch * self.fc), np.float32)
             self.hm = np.zeros((self.pm, nch * self.fc), np.float32)
@@ -234,8 +267,10 @@ class MixedKernel(StatisticKernel):
         p, q, N, f = core.p, core.q, core.N, b - a
         Yc = np.asarray(self.Y[:, a:b], np.float64)
         st = core.stats(Yc)
-        ev = core.evaluate(self.fit.theta[:, a:b], st, self.fit.reml, order=0)
-        live = ev.ok & (self.fit.code[a:b] != 3)
+        fit0 = self.null_fit()
+        ev = core.evaluate(fit0.theta[:, a:b], st, self.fit.reml, order=0)
+        live = ev.ok & (self.fit.code[a:b] != 3) & (fit0.code[a:b] != 3) \
+            & np.isfinite(self.nu[a:b]) & (self.nu[a:b] > 0)
         LA = np.where(live, ev.LA, np.eye(p)[:, :, None])
         A = la.mm(LA, la.T(LA))
         # Freedman-Lane: GLS fit of the model restricted to L b = 0
@@ -318,7 +353,7 @@ class MixedKernel(StatisticKernel):
         nu = self.nu[a:b]
         if self.kind == "t":
             t = U[0] * np.sqrt(m / rss)
-            return z_of_t(t.astype(np.float64), nu).astype(np.float32)
+            return scored_z(t.astype(np.float64), nu, self.switch[a:b]).astype(np.float32)
         k = len(U)
         Fv = sum(u * u for u in U) * (m / rss) / np.float32(k)
         return z_of_f(Fv.astype(np.float64), k, nu).astype(np.float32)

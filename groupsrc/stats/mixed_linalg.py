@@ -8,8 +8,9 @@ all features are handled at once and each feature's result depends on that
 feature's numbers only (no reduction across features, hence the same bits
 whatever the chunk of features it sits in).
 
-Only +, -, *, / and sqrt are used (IEEE, correctly rounded), plus ``log`` in
-:func:`chol_logdet`, which is never used in resampling.
+The products use ``numpy.einsum`` (fast for small leading axes); the
+triangular solves used while resampling (:func:`solve_lower`) use only +, -,
+*, / element by element, so a resample's bits do not depend on its batch.
 """
 
 from __future__ import annotations
@@ -17,34 +18,14 @@ from __future__ import annotations
 import numpy as np
 
 
-def _trail(*arrays):
-    return np.broadcast_shapes(*(a.shape[2:] for a in arrays))
-
-
 def mm(A, B):
     """Matrix product over the leading axes: (a, b, ...) @ (b, c, ...) -> (a, c, ...)."""
-    a, k = A.shape[:2]
-    c = B.shape[1]
-    out = np.empty((a, c) + _trail(A, B))
-    for i in range(a):
-        for j in range(c):
-            s = A[i, 0] * B[0, j]
-            for t in range(1, k):
-                s = s + A[i, t] * B[t, j]
-            out[i, j] = s
-    return out
+    return np.einsum("ab...,bc...->ac...", A, B)
 
 
 def mv(A, v):
     """Matrix times vector: (a, b, ...) @ (b, ...) -> (a, ...)."""
-    a, k = A.shape[:2]
-    out = np.empty((a,) + np.broadcast_shapes(A.shape[2:], v.shape[1:]))
-    for i in range(a):
-        s = A[i, 0] * v[0]
-        for t in range(1, k):
-            s = s + A[i, t] * v[t]
-        out[i] = s
-    return out
+    return np.einsum("ab...,b...->a...", A, v)
 
 
 def T(A):
