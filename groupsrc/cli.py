@@ -16,6 +16,7 @@ from pathlib import Path
 
 from . import __version__
 from .inputs.problems import InputError, ProblemList
+from .stats.backends import BackendUnavailable
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -28,11 +29,14 @@ def _parser():
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
 
     d = sub.add_parser("demo", help="build the demo cohort, run its analysis, write a report")
-    d.add_argument("--out", type=Path, default=Path("groupsrc_demo_results"),
-                   help="results folder (default: ./groupsrc_demo_results)")
+    d.add_argument("--out", type=Path, default=None,
+                   help="results folder (default: ./groupsrc_demo_results, with --surface "
+                        "./groupsrc_surface_demo_results)")
     d.add_argument("--cohort-dir", type=Path, default=None,
                    help="where to build the demo cohort (default: OUT/../groupsrc_demo_cohort)")
     d.add_argument("--small", action="store_true", help="a small, fast cohort (for tests)")
+    d.add_argument("--surface", action="store_true",
+                   help="the cortical-surface demo: GIfTI maps on a synthetic folded cortex")
     d.add_argument("--resamples", type=int, default=None)
     d.add_argument("--seed", type=int, default=None)
     d.add_argument("--workers", type=int, default=1)
@@ -51,6 +55,16 @@ def _parser():
     r.add_argument("--seed", type=int, default=None, help="override [inference] seed")
     r.add_argument("--workers", type=int, default=1, help="parallel workers (default 1)")
     r.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
+    r.add_argument("--resume", action="store_true",
+                   help="continue an interrupted run of the same analysis from its checkpoint")
+    r.add_argument("--scheduler", default=None, metavar="ADDRESS|local:N",
+                   help="run the resampling on Dask: a running scheduler's address "
+                        "(tcp://host:8786) or local:N for a local cluster of N workers")
+    r.add_argument("--memory", default=None, metavar="SIZE",
+                   help="bound the working set, e.g. 2G or 512M (the interpreter and its "
+                        "libraries, about 350 MiB, come on top)")
+    r.add_argument("--quiet", action="store_true",
+                   help="no progress bars or progress lines (problems are still printed)")
 
     rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
     rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
@@ -80,6 +94,18 @@ def _check_options(args, parser):
             parser.error(f"--{name} must be at least 1, got {v}")
     if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
         parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
+    from .stats.backends import parse_scheduler
+    from .stats.memory import parse_size
+    if getattr(args, "scheduler", None) is not None:
+        try:
+            parse_scheduler(args.scheduler)
+        except ValueError as exc:
+            parser.error(f"--scheduler: {exc}")
+    if getattr(args, "memory", None) is not None:
+        try:
+            args.memory = parse_size(args.memory)
+        except ValueError as exc:
+            parser.error(f"--memory: {exc}")
     from .stats.inference import SEED_LIMIT
     seed = getattr(args, "seed", None)
     if seed is not None and not 0 <= seed < SEED_LIMIT:
@@ -99,6 +125,12 @@ def main(argv=None) -> int:
         return _dispatch(args, argv)
     except InputError as exc:
         print(exc.problems.format(), file=sys.stderr)
+        return EXIT_DATA
+    except BackendUnavailable as exc:
+        print(f"1 problem found:\n  1. --scheduler {args.scheduler}: {exc} -> start the "
+              "scheduler and its workers first, check the address and port, or use "
+              "--scheduler local:N (or leave --scheduler out) to run on this machine",
+              file=sys.stderr)
         return EXIT_DATA
     except OSError as exc:
         # the file system refused (permission, disk full, ...): not a bug of ours
@@ -161,7 +193,9 @@ def _dispatch(args, argv) -> int:
         from .pipeline import run
         t = time.perf_counter()
         out = run(args.analysis, args.out, resamples=args.resamples, seed=args.seed,
-                  workers=args.workers, overwrite=args.overwrite, command=command)
+                  workers=args.workers, overwrite=args.overwrite, command=command,
+                  resume=args.resume, scheduler=args.scheduler, memory=args.memory,
+                  quiet=args.quiet)
         print(f"results written to {out} ({time.perf_counter() - t:.1f} s); "
               f"open {out / 'report.html'}")
         return EXIT_OK
@@ -200,7 +234,19 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     if s.get("sessions"):
         print(f"  sessions     : {', '.join(s['sessions'])}")
     print(f"  maps         : {s['maps']}")
-    print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
+    if "voxel_size_mm" in s:
+        print(f"  sources      : {s['sources']} (voxel {' x '.join(f'{v:g}' for v in s['voxel_size_mm'])} mm)")
+    else:
+        print(f"  sources      : {s['sources']} vertices ("
+              + ", ".join(f"{h} {p['sources']} of {p['vertices']}"
+                          for h, p in s["hemispheres"].items())
+              + f"; maps as {'CIFTI-2' if s['map_format'] == 'cifti' else 'GIfTI'})")
+        for name, n in s.get("ignored_parts", {}).items():
+            print(f"  not read     : {name} ({n} elements; only the cortex surfaces are "
+                  "analysed)")
+        for h, n in s.get("mask_vertices_without_data", {}).items():
+            print(f"  note         : {n} vertices of mask_{h} have no data in the maps and are "
+                  "not sources")
     print(f"  samples      : {s['samples']}, {s['time_range_ms'][0]:g} to "
           f"{s['time_range_ms'][1]:g} ms every {s['sampling_interval_ms']:g} ms")
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
@@ -243,7 +289,9 @@ def _print_mixed(prep):
 def cmd_demo(args, command) -> int:
     from .outputs.folder import check_target, sweep_stale
     from .simulate import build_demo_cohort, check_cohort_target
-    out = args.out.resolve()
+    surface = getattr(args, "surface", False)
+    out = (args.out or Path("groupsrc_surface_demo_results" if surface
+                            else "groupsrc_demo_results")).resolve()
     cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
     size = "small" if args.small else "default"
     # refuse before spending a minute on the simulation
@@ -256,9 +304,13 @@ def cmd_demo(args, command) -> int:
         pass
     if problems:
         raise InputError(problems)
-    print(f"building the {size} demo cohort in {cohort_dir} ...")
+    print(f"building the {size} {'surface ' if surface else ''}demo cohort in {cohort_dir} ...")
     t = time.perf_counter()
-    analysis = build_demo_cohort(cohort_dir, size=size)
+    if surface:
+        from .simulate.surface_build import build_surface_demo_cohort
+        analysis = build_surface_demo_cohort(cohort_dir, size=size)
+    else:
+        analysis = build_demo_cohort(cohort_dir, size=size)
     print(f"  built in {time.perf_counter() - t:.1f} s")
     rc = cmd_check(analysis)
     if rc != EXIT_OK or args.build_only:

@@ -25,7 +25,8 @@ from .inputs.mixed_design import (MixedModelDesign, build_mixed_design, incomple
                                   map_counts, plan_mixed_contrast)
 from .inputs.problems import InputError, ProblemList
 from .stats.results import AnalysisResult, ContrastResult
-from .inputs.settings import Settings, parse_settings
+from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
+from .inputs.tables import HEMISPHERE_PATHS
 
 log = logging.getLogger("groupsrc")
 
@@ -54,6 +55,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     reported together with those of the cohort and design.
     """
     problems = ProblemList(prior or [])
+    check_neighbors(settings, problems)
     if any(settings.cohort.get(k) is None for k in ("participants", "maps")):
         raise InputError(problems)
     try:
@@ -145,8 +147,10 @@ def _check_reduced_range(cohort, plans, settings, problems):
         return
     top = 0.0
     step = max(1, int(2e7 // max(1, cohort.Y.shape[2] * cohort.n_maps)))
+    from .stats.pages import release
     for a in range(0, cohort.Y.shape[1], step):
         top = max(top, float(np.abs(cohort.Y[:, a:a + step]).max()))
+        release(cohort.Y)
     for plan in plans:
         weight = sum(abs(float(v)) for v in (plan.within or {"all": 1.0}).values())
         if top * weight > _REDUCED_LIMIT:
@@ -158,48 +162,84 @@ def _check_reduced_range(cohort, plans, settings, problems):
                          "smaller within weights such as 1 and -1")
 
 
-def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None):
-    """Stages 2-5 on arrays: returns an AnalysisResult."""
+def inference_settings(settings, resamples=None, seed=None) -> dict:
+    """The [inference] settings after the command-line overrides."""
+    inf = dict(settings.inference)
+    inf.update({k: int(v) for k, v in (("resamples", resamples), ("seed", seed))
+                if v is not None})
+    return inf
+
+
+def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=None,
+            scheduler=None, memory=None, checkpoint=None):
+    """Stages 2-5 on arrays: returns an AnalysisResult.
+
+    ``progress``: a :func:`groupsrc.progress.reporter` (or True / None for a
+    bar on a terminal); ``scheduler``: run the resampling on Dask (an address
+    or ``local:N``); ``memory``: bytes the working set may take
+    (:mod:`groupsrc.stats.memory`); ``checkpoint``: a
+    :class:`groupsrc.stats.checkpoint.Checkpoint` saving (and resuming) the
+    resampling.
+    """
     from .stats.corrections import TfceOptions
     from .stats.inference import Execution, InferenceSpec, infer
     from .stats.kernels import OLSKernel
     from .stats.reduction import reduce_maps
 
     s, cohort, design = prep.settings, prep.cohort, prep.design
-    inf = dict(s.inference)
-    inf.update({k: int(v) for k, v in (("resamples", resamples), ("seed", seed))
-                if v is not None})
+    inf = inference_settings(s, resamples, seed)
     within_col = s.model.get("within")
     conditions = sorted(map(str, cohort.maps[within_col].unique())) if within_col else []
+    glm = prep.glm_design or design
     tf = inf["tfce"]
     spec = InferenceSpec(
         correction=inf["correction"], n_resamples=inf["resamples"], seed=inf["seed"],
         forming_p=inf["forming_p"], tails=inf["tails"], alpha=inf["alpha"],
         tfce=TfceOptions(tf["extent_power"], tf["height_power"], tf["steps"]))
-    execution = Execution(n_jobs=workers, progress=progress or False)
+    new_progress = _reporter(progress)
     adjacency = cohort.grid.adjacency(inf["neighbors"])
     samples = slice(int(prep.time_index[0]), int(prep.time_index[-1]) + 1)
+    n_features = cohort.grid.n_sources * (samples.stop - samples.start)
+    mixed = any(p.model == "mixed" for p in prep.plans)
+    plan_memory = _memory_plan(memory, len(glm.participants), n_features, workers, scheduler,
+                               s, mixed=mixed)
     results, timings = [], {}
-    fitted = _fit_mixed(prep, samples, timings)
+    fitted = _fit_mixed(prep, samples, timings,
+                        _stage(new_progress, "fitting the mixed model", "feature"))
     for plan in prep.plans:
         t0 = time.perf_counter()
+        execution = Execution(
+            backend="dask" if scheduler else "threads", n_jobs=workers,
+            scheduler=scheduler, map_budget=plan_memory.map_budget,
+            progress=_stage(new_progress, f"resampling {plan.name}", "resample") or False,
+            checkpoint=checkpoint.contrast(plan.name) if checkpoint is not None else None)
         if plan.model == "mixed":
-            results.append(_mixed_contrast(prep, plan, fitted, samples, spec, execution,
-                                           adjacency, inf, conditions))
+            t1 = t0
+            result = _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency,
+                                     inf, conditions)
         else:
-            glm = prep.glm_design or design
             ids = glm.participants
             W = reduction_matrix(cohort.maps, ids, within_col, plan.within, conditions)
-            data = reduce_maps(cohort.Y, W, samples)
+            data = reduce_maps(cohort.Y, W, samples, chunk_bytes=plan_memory.chunk_bytes,
+                               out=plan_memory.array((len(ids),) + (cohort.grid.n_sources,
+                                                     samples.stop - samples.start)),
+                               progress=_stage(new_progress, f"reducing {plan.name}", "source"))
+            t1 = time.perf_counter()
             kernel = OLSKernel(data.reshape(len(ids), -1), glm.X.to_numpy(),
                                plan.weights, scheme=plan.scheme)
-            results.append(ContrastResult(
+            kernel.allocate = plan_memory.array
+            result = ContrastResult(
                 name=plan.name, description=plan.description,
                 inference=infer(kernel, adjacency, _with_blocks(spec, cohort, ids, inf),
                                 execution),
                 data=data, participants=ids, design=glm.X, weights=plan.weights,
-                within=plan.within))
+                within=plan.within)
+        results.append(result)
         timings[plan.name] = round(time.perf_counter() - t0, 3)
+        log.info(f"contrast {plan.name}: "
+                 + (f"reduction {t1 - t0:.1f} s, " if plan.model != "mixed" else "")
+                 + f"model and {result.inference.n_resamples} resamples "
+                 f"{time.perf_counter() - t1:.1f} s")
     settings_dict = s.as_dict()
     settings_dict["inference"] = inf
     settings_dict["check_summary"] = prep.summary
@@ -220,7 +260,7 @@ def _with_blocks(spec, cohort, ids, inf):
     return dataclasses.replace(spec, blocks=blocks)
 
 
-def _fit_mixed(prep, samples, timings):
+def _fit_mixed(prep, samples, timings, progress=None):
     """Fit the mixed model once at every source x sample (``mixed = true``)."""
     from .stats.mixed import MixedCore
     from .stats.mixed_fit import fit_features
@@ -232,9 +272,10 @@ def _fit_mixed(prep, samples, timings):
     Yf = np.ascontiguousarray(Y[:, :, samples], dtype=np.float32).reshape(Y.shape[0], -1)
     core = MixedCore(prep.mixed.stats_design())
     reml = prep.settings.model.get("estimation", "reml") == "reml"
-    fit = fit_features(core, Yf, reml=reml)
+    fit = fit_features(core, Yf, reml=reml, progress=progress)
     vc = variance_components(fit, Yf)
     timings["mixed_model_fit"] = round(time.perf_counter() - t0, 3)
+    log.info(f"mixed model: {Yf.shape[1]} features fitted in {timings['mixed_model_fit']:.1f} s")
     shape = (Y.shape[1], Yf.shape[1] // Y.shape[1])
     summary = {"method": "REML" if reml else "ML", "counts": fit.counts(),
                "code": fit.code.reshape(shape), "iterations": fit.iterations.reshape(shape),
@@ -272,35 +313,148 @@ def _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency, inf
 
 
 def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
-        overwrite=False, progress=None, command=None) -> Path:
+        overwrite=False, progress=None, command=None, resume=False, scheduler=None,
+        memory=None, quiet=False) -> Path:
     """Whole pipeline; writes a results folder and returns its path.
 
     The results folder rules (what may be replaced, inputs never touched,
     staging and swap, cleanup after killed runs) are those of
-    :mod:`groupsrc.outputs.folder`.
+    :mod:`groupsrc.outputs.folder`.  The resampling is checkpointed beside
+    the results folder (:func:`checkpoint_folder`); ``resume`` continues an
+    interrupted run from there.
     """
     from .outputs import write_results
     from .outputs.folder import check_target, staged, sweep_stale
+    from .progress import reporter
 
     t_start = time.perf_counter()
+    new_progress = reporter(quiet=quiet) if progress is None else _reporter(progress)
     settings = parse_settings(analysis_path)
     out = Path(out_dir) if out_dir else settings.base / "results"
     for action in sweep_stale(out):
         log.info(action)
     # cheap check first (declared inputs), full check once every map is known
     check_target(out, overwrite=overwrite, inputs=declared_inputs(settings))
-    prep = prepare(settings, progress=progress)
+    prep = prepare(settings, progress=new_progress)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
-    result = analyse(prep, resamples=resamples, seed=seed, workers=workers, progress=progress)
+    log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
+             + (" (loading cache reused)" if prep.cohort.cache_hit else ""))
+    if scheduler:                  # an unanswering scheduler is refused before any work
+        from .stats.backends import dask_client
+        dask_client(scheduler)
+    checkpoint = open_checkpoint(out, prep, resamples, seed, resume)
+    try:
+        result = analyse(prep, resamples=resamples, seed=seed, workers=workers,
+                         progress=new_progress, scheduler=scheduler, memory=memory,
+                         checkpoint=checkpoint)
+    except BaseException:
+        if checkpoint.has_progress():
+            log.info(f"resampling progress is saved in {checkpoint.folder}; run the same "
+                     "command with --resume to continue")
+        else:
+            checkpoint.remove()
+        raise
+    finally:
+        if scheduler:
+            from .stats.backends import close_clients
+            close_clients()
     t_stats = time.perf_counter()
+    log.info(f"statistics done in {t_stats - t_loaded:.1f} s")
     record = run_record(settings, prep, result, command, workers)
     record["timings_s"] = {"load": round(t_loaded - t_start, 3),
                            "statistics": round(t_stats - t_loaded, 3),
                            "per_contrast": result.timings}
     with staged(out) as tmp:
         write_results(result, tmp, record)
+    checkpoint.remove()            # the results are in place: nothing left to resume
+    log.info(f"results written in {time.perf_counter() - t_stats:.1f} s")
     return out
+
+
+def checkpoint_folder(out) -> Path:
+    """Where the checkpoint of a run for results folder ``out`` lives.
+
+    A hidden sibling ``.OUT.groupsrc-checkpoint`` beside ``out``: never inside
+    an input (``out`` is checked against every input first), never inside
+    ``out`` (which is replaced as a whole), and not matched by the stale
+    staging / previous-results cleanup of :mod:`groupsrc.outputs.folder`,
+    so a later ``--resume`` finds it after a SIGKILL.  It is removed once the
+    results are in place, and replaced by the next run without ``--resume``.
+    """
+    out = Path(out)
+    return out.parent / f".{out.name}.groupsrc-checkpoint"
+
+
+def open_checkpoint(out, prep, resamples, seed, resume):
+    """Start a fresh checkpoint, or (``resume``) open the interrupted run's; a
+    checkpoint that cannot serve is an InputError saying why."""
+    from .stats.checkpoint import Checkpoint, CheckpointError
+    folder = checkpoint_folder(out)
+    fingerprint = {"inputs": dict(prep.cohort.inputs),
+                   "settings": _plain(dict(prep.settings.as_dict(),
+                                           inference=inference_settings(prep.settings,
+                                                                        resamples, seed)))}
+    try:
+        if resume:
+            cp = Checkpoint.resume(folder, fingerprint, __version__)
+            log.info(f"resuming the interrupted run from {folder}")
+            return cp
+        if (folder / "manifest.json").exists():
+            log.info(f"starting afresh: the checkpoint of an earlier interrupted run in {folder} "
+                     "is replaced (run with --resume to continue such a run instead)")
+        return Checkpoint.start(folder, fingerprint, __version__)
+    except CheckpointError as exc:
+        problems = ProblemList()
+        problems.add(str(folder), exc.what, exc.fix)
+        raise InputError(problems) from None
+
+
+def _plain(obj):
+    import json
+    return json.loads(json.dumps(obj, default=str))
+
+
+def _reporter(progress):
+    """A progress reporter from what callers pass: a reporter, True (bar or lines), or
+    False / None (nothing)."""
+    if callable(progress):
+        return progress
+    if progress:
+        from .progress import reporter
+        return reporter()
+    return None
+
+
+def _stage(new_progress, desc, unit):
+    """``f(done, total)`` reporting one stage through ``new_progress`` (or None)."""
+    if new_progress is None or getattr(new_progress, "mode", "") == "quiet":
+        return None
+    state = {}
+
+    def report(done, total):
+        bar = state.get("bar")
+        if bar is None:
+            bar = state["bar"] = new_progress(desc, total, unit)
+        bar.update(done)
+    return report
+
+
+def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixed=False):
+    from .stats.memory import MemoryTooSmall, plan
+    if memory is not None and mixed:
+        problems = ProblemList()
+        problems.add("--memory", "the memory bound covers the summary-statistic GLM only; the "
+                     "mixed model keeps every map and its per-participant products in memory",
+                     "run without --memory, or test the contrasts with model = \"glm\" "
+                     "(or mixed = false) when the bound is needed")
+        raise InputError(problems)
+    try:
+        return plan(memory, n_units, n_features, workers=workers, distributed=bool(scheduler))
+    except MemoryTooSmall as exc:
+        problems = ProblemList()
+        problems.add("--memory", str(exc), exc.fix)
+        raise InputError(problems) from None
 
 
 def declared_inputs(settings: Settings) -> list:
@@ -308,13 +462,15 @@ def declared_inputs(settings: Settings) -> list:
     and (best effort) the maps the maps table lists; the loading stage reports
     any problem with them."""
     paths = [settings.path] + [settings.resolve(settings.cohort.get(k)) for k in
-                               ("participants", "maps", "mask", "atlas", "atlas_labels")]
+                               ("participants", "maps", "mask", "atlas", "atlas_labels")
+                               + SURFACE_KEYS]
     mpath = settings.resolve(settings.cohort.get("maps"))
     if mpath is not None and mpath.is_file():
         try:
             table = pd.read_csv(mpath, sep="\t", dtype=str, keep_default_na=False,
-                                usecols=["path"])
-            paths += [mpath.parent / rel for rel in table["path"] if rel.strip()]
+                                usecols=lambda c: c in ("path",) + HEMISPHERE_PATHS)
+            paths += [mpath.parent / rel for col in table.columns for rel in table[col]
+                      if rel.strip()]
         except (ValueError, OSError, UnicodeDecodeError, pd.errors.ParserError):
             pass
     return [p for p in paths if p is not None]
@@ -325,7 +481,7 @@ def run_record(settings, prep, result, command, workers) -> dict:
     import importlib.metadata as md
     libs = {}
     for name in ("numpy", "scipy", "pandas", "nibabel", "statsmodels", "matplotlib",
-                 "formulaic", "joblib", "tqdm"):
+                 "formulaic", "joblib", "tqdm", "numba", "dask", "distributed"):
         try:
             libs[name] = md.version(name)
         except md.PackageNotFoundError:

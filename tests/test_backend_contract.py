@@ -18,8 +18,10 @@ from groupsrc.stats.backends import BACKENDS, NullJob, make_backend
 from groupsrc.stats.corrections import TfceOptions, make_correction
 from groupsrc.stats.kernels import OLSKernel
 
-#: how to build each backend for the test (default: make_backend(name, workers))
-FACTORIES = {}
+#: how to build each backend for the test (default: make_backend(name, workers)); the
+#: Dask backend runs on a local cluster of `workers` processes on the loopback interface
+FACTORIES = {"dask": lambda name, workers: make_backend(name, workers,
+                                                        scheduler=f"local:{workers}")}
 
 
 def _job(correction, scheme="sign-flip", m=70, seed=5):

@@ -194,6 +194,8 @@ ENGINE_PARAMETERS = {
     "blocks": "code: cohort (column exists, no missing values)",
     "nuisance": "code: default", "batch_size": "code: default", "n_jobs": "code: cli --workers",
     "progress": "code: cli", "step": "code: default", "backend": "code: default",
+    "scheduler": "code: cli --scheduler", "checkpoint": "code: cli --resume",
+    "map_budget": "code: cli --memory",
     "options": "code: the fields above",
 }
 

@@ -5,7 +5,11 @@ outside reference exists, the adjacency that reference gives for each neighbour
 kind.  Facts checked: adjacency is a symmetric relation without self loops
 (definition of an undirected neighbour graph, common practice); volume
 neighbours are those of scipy.ndimage.generate_binary_structure (reference
-library) and lie one voxel step apart (geometry).
+library) and lie one voxel step apart (geometry); surface neighbours are the
+vertex pairs that share a triangle side, read off the triangle list by a plain
+loop, restricted to in-mask vertices and never across hemispheres (mesh-edge
+definition), and their connected pieces are those of
+scipy.sparse.csgraph.connected_components on that reference graph.
 """
 
 from __future__ import annotations
@@ -16,8 +20,10 @@ import numpy as np
 import pandas as pd
 import pytest
 from scipy import ndimage, sparse
+from scipy.sparse.csgraph import connected_components
 
-from groupsrc.sources import SourceSpace, VolumeGrid
+from groupsrc.sources import Hemisphere, SourceSpace, SurfaceMesh, VolumeGrid
+from groupsrc.sources.surface import icosphere
 
 
 def _volume_reference(mask, kind):
@@ -55,7 +61,34 @@ def volume_irregular():
     return VolumeGrid.from_mask(mask, affine), mask
 
 
-SPACES = {"volume box": volume_box, "volume irregular, flipped x": volume_irregular}
+def _mesh_edge_reference(space):
+    """Neighbour pairs of sources: vertices sharing a triangle side (plain loop over
+    the triangle list), both in the mask, same hemisphere."""
+    labels = space.labels()
+    index = {(h, int(v)): k for k, (h, v) in enumerate(zip(labels.hemisphere, labels.vertex))}
+    pairs = set()
+    for h in space.hemispheres:
+        for a, b, c in h.triangles.tolist():
+            for u, w in ((a, b), (b, c), (c, a)):
+                if (h.name, u) in index and (h.name, w) in index:
+                    pairs.add((index[(h.name, u)], index[(h.name, w)]))
+                    pairs.add((index[(h.name, w)], index[(h.name, u)]))
+    r, c = np.array(sorted(pairs)).T
+    n = space.n_sources
+    return sparse.csr_matrix((np.ones(r.size, bool), (r, c)), shape=(n, n))
+
+
+def surface_two_hemispheres():
+    """Two subdivided icosahedra 80 mm apart, a patch of the right one masked out."""
+    v, f = icosphere(2)
+    left = Hemisphere.from_arrays("left", 40 * v - [40, 0, 0], f)
+    right = Hemisphere.from_arrays("right", 40 * v + [40, 0, 0], f, mask=v[:, 0] > -0.6)
+    space = SurfaceMesh((left, right))
+    return space, _mesh_edge_reference(space)
+
+
+SPACES = {"volume box": volume_box, "volume irregular, flipped x": volume_irregular,
+          "surface, two hemispheres, masked": surface_two_hemispheres}
 
 
 @pytest.fixture(params=list(SPACES), ids=list(SPACES))
@@ -130,3 +163,17 @@ def test_face_neighbours_are_one_voxel_apart(space):
     d = np.linalg.norm(sp.coords_mm[A.row] - sp.coords_mm[A.col], axis=1)
     # geometry: face neighbours differ by one step along one voxel axis
     assert np.all(np.isclose(d[:, None], sp.voxel_size[None, :]).any(axis=1))
+
+
+def test_surface_neighbours_are_the_mesh_edges(space):
+    sp, ref = space
+    if not isinstance(sp, SurfaceMesh):
+        pytest.skip("surface reference")
+    A = sparse.csr_matrix(sp.adjacency("edge"), dtype=bool)
+    assert (A != ref).nnz == 0                               # plain mesh-edge reference
+    n_ref, lab_ref = connected_components(ref, directed=False)    # scipy.sparse.csgraph
+    n, lab = connected_components(A, directed=False)
+    assert n == n_ref and (pd.crosstab(lab, lab_ref).to_numpy() > 0).sum() == n
+    hemi = sp.labels().hemisphere.to_numpy()
+    rows, cols = A.nonzero()
+    assert np.all(hemi[rows] == hemi[cols])                  # hemispheres never joined

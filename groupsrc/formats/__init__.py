@@ -1,8 +1,9 @@
 """File formats: the only place that reads or writes map files.
 
-One module per format (:mod:`.nifti` for volumes); :func:`format_for` picks
-the module that handles a path by its suffix, so a new format (GIfTI,
-CIFTI-2) is one more module in ``FORMATS``.  Each format module provides, for
+One module per format (:mod:`.nifti` for volumes, :mod:`.gifti` and
+:mod:`.cifti` for surfaces); :func:`format_for` picks the module that handles
+a path by its suffix, trying the modules in order (CIFTI-2 first: a
+``.dtseries.nii`` name also ends in ``.nii``).  Each format module provides, for
 the input edge, ``read_header(path)`` (lazy, raises ValueError with a
 readable reason), ``read_data(header)`` and ``time_axis_from_header``; and,
 for results, a result-map class (``RESULT_MAPS``, by source-space kind) with
@@ -14,10 +15,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from . import nifti
+from . import cifti, gifti, nifti
+from .surface_maps import SurfaceMaps
 
-#: format modules, tried in order; each lists the file suffixes it reads
-FORMATS = (nifti,)
+#: format modules, tried in order (CIFTI-2 before NIfTI: ".dtseries.nii" ends in ".nii");
+#: each lists the file suffixes it reads
+FORMATS = (cifti, gifti, nifti)
 
 
 def format_for(path):
@@ -61,8 +64,20 @@ def result_maps_in(folder, kind, time_axis=None):
     return maps.read_space(folder, time_axis)
 
 
-#: result-map writers/readers by source-space kind
-RESULT_MAPS = {"volume": nifti.VolumeMaps}
+def expected_result_files(maps, summary: dict):
+    """(space files, stem -> file names) that a saved folder of ``maps``' kind holds.
 
-__all__ = ["FORMATS", "RESULT_MAPS", "format_for", "known_suffixes", "read_header",
-           "result_maps", "result_maps_in", "nifti"]
+    A format whose file names depend on the saved space (a surface: which
+    hemispheres, GIfTI or CIFTI-2) answers from the folder's summary; the
+    others from their class constants.
+    """
+    if hasattr(maps, "expected_files"):
+        return maps.expected_files(summary)
+    return list(maps.SPACE_FILES), maps.files
+
+
+#: result-map writers/readers by source-space kind
+RESULT_MAPS = {"volume": nifti.VolumeMaps, "surface": SurfaceMaps}
+
+__all__ = ["FORMATS", "RESULT_MAPS", "expected_result_files", "format_for", "known_suffixes",
+           "read_header", "result_maps", "result_maps_in", "cifti", "gifti", "nifti"]

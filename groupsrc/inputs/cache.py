@@ -149,17 +149,40 @@ def load_cached(cache_dir: Path, key: str):
     return arr, meta
 
 
+def _tmp_data(cache_dir: Path, key: str) -> Path:
+    return (Path(cache_dir) / key).with_suffix(f".f32.tmp{os.getpid()}")
+
+
+def create(cache_dir: Path, key: str, shape):
+    """A writable memmap for a new entry at a temporary name (None when the cache
+    cannot be written): the maps are decoded straight into it, so loading never
+    holds the whole array in memory; :func:`store` then commits it."""
+    try:
+        Path(cache_dir).mkdir(parents=True, exist_ok=True)
+        return np.memmap(_tmp_data(cache_dir, key), dtype=np.float32, mode="w+",
+                         shape=tuple(shape))
+    except (OSError, ValueError):
+        return None
+
+
 def store(cache_dir: Path, key: str, array: np.ndarray, meta: dict):
-    """Write an entry atomically and return it re-opened as a read-only memmap."""
+    """Write an entry atomically and return it re-opened as a read-only memmap.
+
+    ``array`` may be the memmap of :func:`create` (then it is renamed into
+    place, not copied).  An entry that cannot be written is dropped."""
     cache_dir = Path(cache_dir)
+    tmp = _tmp_data(cache_dir, key)
     try:
         cache_dir.mkdir(parents=True, exist_ok=True)
         base = cache_dir / key
-        tmp = base.with_suffix(f".f32.tmp{os.getpid()}")
-        mm = np.memmap(tmp, dtype=np.float32, mode="w+", shape=array.shape)
-        mm[:] = array
-        mm.flush()
-        del mm
+        if isinstance(array, np.memmap) and array.filename \
+                and os.path.realpath(array.filename) == os.path.realpath(tmp):
+            array.flush()
+        else:
+            mm = np.memmap(tmp, dtype=np.float32, mode="w+", shape=array.shape)
+            mm[:] = array
+            mm.flush()
+            del mm
         os.replace(tmp, base.with_suffix(".f32"))
         meta = dict(meta, shape=list(array.shape))
         tmpm = base.with_suffix(f".json.tmp{os.getpid()}")
@@ -169,3 +192,10 @@ def store(cache_dir: Path, key: str, array: np.ndarray, meta: dict):
         return array
     return np.memmap(base.with_suffix(".f32"), dtype=np.float32, mode="r",
                      shape=array.shape)
+
+
+def discard(array) -> None:
+    """Remove the temporary file of a :func:`create` memmap that is not stored."""
+    name = getattr(array, "filename", None)
+    if name and ".f32.tmp" in str(name):
+        Path(name).unlink(missing_ok=True)

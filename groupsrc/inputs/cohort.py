@@ -19,12 +19,13 @@ import numpy as np
 import pandas as pd
 
 from . import cache as _cache
+from . import surface_cohort
 from ..sources import TimeAxis, VolumeGrid
 from .. import formats
 from ..formats.nifti import (DecodeError, affine_difference, read_data, read_header, read_mask,
                              read_sources)
 from .problems import InputError, ProblemList
-from .settings import Settings
+from .settings import Settings, is_surface
 from .tables import ID, MISSING, check_tables, read_table, rows_text
 
 
@@ -40,10 +41,15 @@ class Cohort:
     cache_hit: bool = False
     #: optional atlas: {"labels": (n_sources,) int array (0 = none), "names": {int: str}}
     atlas: dict | None = None
+    #: facts about the inputs that ``check`` prints (e.g. CIFTI-2 parts not read)
+    notes: dict = field(default_factory=dict)
 
     @property
     def n_maps(self) -> int:
         return int(self.Y.shape[0])
+
+
+_SURFACE_FORMATS = {"gifti": "GIfTI", "cifti": "CIFTI-2"}
 
 
 def check_headers(settings, maps, mpath, problems):
@@ -66,6 +72,12 @@ def check_headers(settings, maps, mpath, problems):
             continue
         except ValueError as exc:
             problems.add(f"{row} ({p})", str(exc), "give a NIfTI-1/2 file (.nii or .nii.gz)")
+            continue
+        if getattr(h, "format", "nifti") != "nifti":
+            problems.add(f"{row} ({p})", f"is a {_SURFACE_FORMATS[h.format]} surface map, but "
+                         "the analysis file names no template mesh",
+                         "for surface maps give mesh_left / mesh_right under [cohort] "
+                         "(README, Surfaces); for volumes give NIfTI maps")
             continue
         if len(h.shape) != 4:
             problems.add(f"{row} ({p})", f"is {len(h.shape)}D with shape {h.shape}; a 4D map "
@@ -182,6 +194,13 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
     """Load and validate everything; raise InputError listing every problem."""
     problems = ProblemList()
     parts, maps, ppath, mpath = check_tables(settings, problems)
+    if is_surface(settings.cohort):
+        return _surface_cohort(settings, parts, maps, mpath, problems, progress, use_cache)
+    if maps is not None and "path" not in maps.columns:
+        problems.add(mpath, "names one file per hemisphere (path_left / path_right), but the "
+                     "analysis file names no template mesh",
+                     "give mesh_left / mesh_right under [cohort] (README, Surfaces)")
+        raise InputError(problems)
     headers, ref = (None, None)
     if maps is not None:
         headers, ref = check_headers(settings, maps, mpath, problems)
@@ -237,11 +256,15 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         bad, broken = {int(k): v for k, v in meta.get("nonfinite", {}).items()}, {}
         cache_hit = True
     else:
-        Y, grid, bad, broken = _decode(headers, ref, mask, progress)
+        Y, grid, bad, broken = _decode(
+            headers, ref, mask, progress,
+            allocate=(lambda shape: _cache.create(cache_dir, key, shape)) if use_cache else None)
         cache_hit = False
         if not bad and not broken:
             Y = _cache.store(cache_dir, key, Y,
                              {"flat_index": grid.flat_index.tolist(), "nonfinite": {}})
+        else:
+            _cache.discard(Y)
     _decode_problems(problems, maps, mpath, headers, bad, broken)
     if grid.n_sources == 0 and not broken:
         problems.add(mpath, "no source is finite in every map", "give a mask")
@@ -257,6 +280,18 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
     return Cohort(participants=parts.set_index(ID, drop=False),
                   maps=maps.reset_index(drop=True), grid=grid, time_axis=time_axis, Y=Y,
                   inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+
+
+def _surface_cohort(settings, parts, maps, mpath, problems, progress, use_cache) -> Cohort:
+    """The surface branch: meshes, per-hemisphere maps (inputs/surface_cohort.py)."""
+    got = surface_cohort.load_surface(settings, maps, mpath, problems, progress=progress,
+                                      use_cache=use_cache)
+    if parts is None:
+        raise InputError(problems)
+    return Cohort(participants=parts.set_index(ID, drop=False),
+                  maps=maps.reset_index(drop=True), grid=got.space, time_axis=got.time_axis,
+                  Y=got.Y, inputs=got.inputs, cache_hit=got.cache_hit, atlas=got.atlas,
+                  notes=got.notes)
 
 
 def _read_mask(mask_path, ref, problems):
@@ -359,9 +394,22 @@ def _read_atlas(settings, ref, problems):
     return {"labels": labels, "names": names}
 
 
-def _decode(headers, ref, mask, progress):
-    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}."""
-    from tqdm.auto import tqdm
+def _decode(headers, ref, mask, progress, allocate=None):
+    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}.
+
+    ``progress``: a :func:`groupsrc.progress.reporter`, or True/False/None (a bar
+    on a terminal); ``allocate(shape)`` gives the array Y is decoded into (e.g.
+    the cache's memory-mapped file, whose pages are handed back map by map).
+    """
+    from ..progress import track
+    from ..stats.pages import release
+    if callable(progress):
+        new = None if getattr(progress, "mode", "") == "quiet" else progress
+
+        def tqdm(items, desc, unit, disable):
+            return track(items, new, desc, len(items), unit)
+    else:
+        from tqdm.auto import tqdm
     if progress is None:
         progress = sys.stderr.isatty()
     n_t = ref.shape[3]
@@ -379,7 +427,9 @@ def _decode(headers, ref, mask, progress):
             mask &= np.isfinite(data).all(axis=3)
             mask &= ~(data == 0).all(axis=3)
     grid = VolumeGrid.from_mask(mask, ref.affine)
-    Y = np.empty((len(headers), grid.n_sources, n_t), dtype=np.float32)
+    shape = (len(headers), grid.n_sources, n_t)
+    Y = allocate(shape) if allocate is not None else None
+    Y = np.empty(shape, dtype=np.float32) if Y is None else Y
     flat = grid.flat_index
     bad = {}
     for i, h in enumerate(tqdm(headers, desc="loading maps", unit="map", disable=not progress)):
@@ -393,6 +443,7 @@ def _decode(headers, ref, mask, progress):
         nonfinite = int((~np.isfinite(Y[i])).sum())
         if nonfinite:
             bad[i] = nonfinite
+        release(Y)
     return Y, grid, bad, broken
 
 
@@ -403,8 +454,14 @@ def summary(cohort: Cohort, settings: Settings) -> dict:
            "sources": cohort.grid.n_sources, "samples": cohort.time_axis.n,
            "time_range_ms": [round(cohort.time_axis.times[0] * 1e3, 3),
                              round(cohort.time_axis.times[-1] * 1e3, 3)],
-           "sampling_interval_ms": round(cohort.time_axis.dt * 1e3, 6),
-           "voxel_size_mm": [round(float(v), 3) for v in cohort.grid.voxel_size]}
+           "sampling_interval_ms": round(cohort.time_axis.dt * 1e3, 6)}
+    if cohort.grid.kind == "volume":
+        out["voxel_size_mm"] = [round(float(v), 3) for v in cohort.grid.voxel_size]
+    else:
+        out["hemispheres"] = {h.name: {"vertices": h.n_vertices, "sources": int(h.sources.size)}
+                              for h in cohort.grid.hemispheres}
+        out["map_format"] = cohort.grid.maps_format
+    out.update(cohort.notes)
     if "group" in parts.columns:
         out["per_group"] = {str(k): int(v) for k, v in parts["group"].value_counts().sort_index().items()}
     within = settings.model.get("within")

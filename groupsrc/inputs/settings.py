@@ -18,7 +18,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
-from ..sources import VolumeGrid
+from ..sources import SurfaceMesh, VolumeGrid
 from ..stats.corrections import CORRECTIONS as _CORRECTIONS
 from ..stats.inference import SEED_LIMIT, TAILS
 from .problems import InputError, Problem, ProblemList, closest
@@ -27,7 +27,12 @@ from .textfile import TextFileError, read_text
 
 #: the choices come from the parts that implement them (one definition each)
 CORRECTIONS = tuple(_CORRECTIONS)
-NEIGHBORS = VolumeGrid.neighbor_kinds
+#: neighbour kinds of every source space (each space accepts only its own; checked
+#: against the analysis's space by :func:`check_neighbors`)
+NEIGHBORS = tuple(dict.fromkeys(VolumeGrid.neighbor_kinds + SurfaceMesh.neighbor_kinds))
+#: [cohort] keys of a surface analysis, per hemisphere (see README, "Surfaces")
+SURFACE_KEYS = ("mesh_left", "mesh_right", "mask_left", "mask_right", "atlas_left",
+                "atlas_right")
 #: Most rearrangements accepted: the engine holds the whole set in memory (one row of
 #: n indices per rearrangement), and p-values are resolved to 1 / resamples.
 MAX_RESAMPLES = 1_000_000
@@ -60,6 +65,10 @@ def _names(v) -> bool:
 ESTIMATIONS = ("reml", "ml")
 #: the model a contrast is tested with
 MODELS = ("glm", "mixed")
+
+
+def _gifti_name(v) -> bool:
+    return v.strip().lower().endswith(".gii")
 
 
 @dataclass(frozen=True)
@@ -110,6 +119,27 @@ SCHEMA = {
         "cache": Key(str, None, "folder for the loading cache; default ~/.cache/groupsrc"),
         "atlas": Key(str, None, "labelled atlas NIfTI on the template grid (integer labels)"),
         "atlas_labels": Key(str, None, "TSV with columns index and name for the atlas labels"),
+        "mesh_left": Key(str, None, "template mesh of the left hemisphere (GIfTI surface, mm); "
+                         "a mesh makes the analysis a surface analysis", _gifti_name,
+                         "must name a GIfTI surface file (.gii)",
+                         'e.g. mesh_left = "template/left.surf.gii"'),
+        "mesh_right": Key(str, None, "template mesh of the right hemisphere (GIfTI surface, mm)",
+                          _gifti_name, "must name a GIfTI surface file (.gii)",
+                          'e.g. mesh_right = "template/right.surf.gii"'),
+        "mesh_closed": Key(bool, True, "the template meshes are closed surfaces (every edge in "
+                           "two triangles); false for meshes with a cut"),
+        "mask_left": Key(str, None, "per-vertex source mask of the left hemisphere (GIfTI, "
+                         "nonzero = source)", _gifti_name, "must name a GIfTI file (.gii)",
+                         'e.g. mask_left = "template/left.mask.shape.gii"'),
+        "mask_right": Key(str, None, "per-vertex source mask of the right hemisphere (GIfTI)",
+                          _gifti_name, "must name a GIfTI file (.gii)",
+                          'e.g. mask_right = "template/right.mask.shape.gii"'),
+        "atlas_left": Key(str, None, "GIfTI label file of the left hemisphere as atlas",
+                          _gifti_name, "must name a GIfTI label file (.gii)",
+                          'e.g. atlas_left = "template/left.label.gii"'),
+        "atlas_right": Key(str, None, "GIfTI label file of the right hemisphere as atlas",
+                           _gifti_name, "must name a GIfTI label file (.gii)",
+                           'e.g. atlas_right = "template/right.label.gii"'),
     },
     "model": {
         "between": Key(str, "1", "Wilkinson right-hand side over participants columns"),
@@ -151,7 +181,8 @@ SCHEMA = {
         "time_window": Key(list, None, "[start, stop] in seconds; default: all samples",
                            _window_ok, "expected [start, stop], two numbers of seconds with "
                            "start < stop", "e.g. time_window = [0.0, 0.6]"),
-        "neighbors": Key(str, "face", " | ".join(NEIGHBORS), choices=NEIGHBORS),
+        "neighbors": Key(str, None, " | ".join(NEIGHBORS) + "; default: the source space's "
+                         "first kind (face on a volume, edge on a surface)", choices=NEIGHBORS),
         "blocks": Key(str, None, "participants column defining exchangeability blocks"),
         "tfce": Key(dict, None, "the [inference.tfce] table"),
     },
@@ -162,8 +193,10 @@ SCHEMA = {
         "height_power": Key(NUMBER, 2.0, "TFCE height exponent (H in Smith & Nichols 2009)",
                             _positive, "the TFCE height exponent must be a positive number",
                             "use the usual 2 (Smith & Nichols 2009)"),
-        "steps": Key(int, 100, "TFCE number of height steps per map",
-                     lambda v: v >= 10, "must be at least 10", "use 100"),
+        "steps": Key(int, None, "TFCE height steps per map for the stepped sum; "
+                     "default: the exact integral at the data values",
+                     lambda v: v >= 10, "must be at least 10",
+                     "use 100, or leave it out for the exact integral"),
     },
 }
 
@@ -327,6 +360,7 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
     if (cohort.get("atlas") is None) != (cohort.get("atlas_labels") is None):
         problems.add(f"{where} [cohort]", "'atlas' and 'atlas_labels' go together",
                      "give both the atlas image and its lookup table, or neither")
+    _check_surface_keys(cohort, where, problems)
 
     _check_mixed_keys(model, where, problems)
     contrasts = []
@@ -346,6 +380,52 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
     return Settings(path=Path(path), title=top.get("title", SCHEMA[""]["title"].default),
                     cohort=cohort, model=model, contrasts=contrasts, inference=inference,
                     raw=raw)
+
+
+def is_surface(cohort: dict) -> bool:
+    """A surface analysis: the analysis file names a template mesh."""
+    return any(cohort.get(k) is not None for k in ("mesh_left", "mesh_right"))
+
+
+def _check_surface_keys(cohort, where, problems):
+    """Surface keys go with their hemisphere's mesh; volume-only keys are not for surfaces."""
+    for hemi in ("left", "right"):
+        for key in (f"mask_{hemi}", f"atlas_{hemi}"):
+            if cohort.get(key) is not None and cohort.get(f"mesh_{hemi}") is None:
+                problems.add(f"{where} [cohort] {key}", f"is given without mesh_{hemi}",
+                             f"add mesh_{hemi} (the template mesh the {hemi} maps lie on), "
+                             f"or remove {key}")
+    if is_surface(cohort):
+        for key, alt in (("mask", "mask_left / mask_right"), ("atlas", "atlas_left / "
+                         "atlas_right"), ("atlas_labels", "atlas_left / atlas_right")):
+            if cohort.get(key) is not None:
+                problems.add(f"{where} [cohort] {key}", "is a volume key; this analysis is on "
+                             "a surface (it names a template mesh)",
+                             f"give {alt} (GIfTI files per hemisphere) instead")
+
+
+def space_class(settings: "Settings"):
+    """The kind of source space the analysis file describes (a mesh: a surface)."""
+    return SurfaceMesh if is_surface(settings.cohort) else VolumeGrid
+
+
+def check_neighbors(settings: "Settings", problems: ProblemList) -> None:
+    """[inference] neighbors against the analysis's source space; fills in its default.
+
+    The analysis file may name any kind some source space knows (``NEIGHBORS``);
+    the value must be one of the kinds of its own space (a volume unless it
+    names a template mesh).  Unset, it becomes that space's first kind.
+    """
+    space = space_class(settings)
+    value = settings.inference.get("neighbors")
+    kinds = tuple(space.neighbor_kinds)
+    if value is None:
+        settings.inference["neighbors"] = kinds[0]
+    elif value not in kinds:
+        problems.add(f"{settings.path} [inference] neighbors",
+                     f"'{value}' is not a neighbour kind of a {space.kind} source space "
+                     f"(those are: {', '.join(kinds)})",
+                     f"use neighbors = \"{kinds[0]}\" or leave it out")
 
 
 #: Names Windows reserves for devices; a results folder cannot carry them.

@@ -265,9 +265,19 @@ def _check_participants(settings, parts, ppath, problems):
     return _typed_columns(parts, [c for c in cols if c in parts.columns], ppath, problems)
 
 
+#: maps-table columns of surface maps in GIfTI: one file per hemisphere (README, "Surfaces")
+HEMISPHERE_PATHS = ("path_left", "path_right")
+
+
+def map_path_columns(maps: pd.DataFrame) -> list:
+    """The columns of ``maps`` naming map files: 'path', or path_left / path_right."""
+    cols = [c for c in HEMISPHERE_PATHS if c in maps.columns]
+    return cols if cols and "path" not in maps.columns else ["path"]
+
+
 def _check_maps(settings, maps, mpath, problems):
     within = settings.model.get("within")
-    need = [ID, "path"] + ([within] if within else [])
+    need = [ID] + map_path_columns(maps) + ([within] if within else [])
     for col in need:
         if col not in maps.columns:
             problems.add(f"{mpath} column '{col}'", "required column missing",

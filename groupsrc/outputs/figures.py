@@ -35,7 +35,9 @@ OUTLINE_CLUSTER = "#ffffff"
 
 STYLE = {"font.size": 7.5, "axes.titlesize": 8.5, "axes.labelsize": 7.5,
          "xtick.labelsize": 7, "ytick.labelsize": 7, "legend.fontsize": 7,
-         "svg.fonttype": "none", "axes.spines.top": False, "axes.spines.right": False}
+         "svg.fonttype": "none", "axes.spines.top": False, "axes.spines.right": False,
+         # fixed salt for the SVG element ids, so equal figures give equal files
+         "svg.hashsalt": "groupsrc"}
 
 
 def diverging_cmap():
@@ -69,11 +71,16 @@ def new_figure(height_mm, width_in=WIDTH_IN):
 
 
 def save(fig, base: Path) -> list:
-    """Write ``base``.png and ``base``.svg; return both paths."""
+    """Write ``base``.png and ``base``.svg; return both paths.
+
+    The layout is computed once, for the PNG, and then frozen, so the SVG
+    (the same figure, as vectors) does not lay the figure out a second time.
+    """
     base = Path(base)
-    out = [save_figure(fig, base.with_suffix(".png"), dpi=DPI, facecolor="white"),
-           save_figure(fig, base.with_suffix(".svg"), facecolor="white")]
-    return out
+    png = save_figure(fig, base.with_suffix(".png"), dpi=DPI, facecolor="white")
+    fig.set_layout_engine("none")
+    svg = save_figure(fig, base.with_suffix(".svg"), facecolor="white")
+    return [png, svg]
 
 
 def _stat_range(values, kind):

@@ -3,6 +3,7 @@
 
 from __future__ import annotations
 
+import gzip
 import json
 from pathlib import Path
 
@@ -19,6 +20,12 @@ def write_json(path, obj) -> Path:
 
 def write_tsv(path, frame) -> Path:
     """Tidy table as TSV: tab separated, header row, 'n/a' for missing values."""
+    if str(path).endswith(".gz"):
+        # gzip without a time stamp or file name, so equal tables give equal files
+        text = frame.to_csv(sep="\t", index=False, na_rep="n/a", float_format="%.7g")
+        with atomic_path(path) as tmp:
+            tmp.write_bytes(gzip.compress(text.encode("utf-8"), compresslevel=6, mtime=0))
+        return Path(path)
     with atomic_path(path) as tmp:
         frame.to_csv(tmp, sep="\t", index=False, na_rep="n/a", float_format="%.7g")
     return Path(path)
@@ -26,6 +33,8 @@ def write_tsv(path, frame) -> Path:
 
 def save_figure(fig, path, **kwargs) -> Path:
     path = Path(path)
+    if path.suffix == ".svg":       # no creation date: equal figures give equal files
+        kwargs.setdefault("metadata", {"Date": None})
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format=path.suffix.lstrip("."), **kwargs)
     return path

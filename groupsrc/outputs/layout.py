@@ -109,12 +109,13 @@ def check_results_folder(results: Path) -> None:
             problems.add(results / SUMMARY_FILE, f"unknown source space "
                          f"'{space_kind(summary)}'", "use the groupsrc version that wrote it")
             raise InputError(problems)
-        for name in maps.SPACE_FILES:
+        space_files, files_of = formats.expected_result_files(maps, summary)
+        for name in space_files:
             if not (results / name).is_file():
                 problems.add(results / name, "missing from the results folder", _FIX_DAMAGED)
         for c in summary.get("contrasts", []):
             names = list(CONTRAST_TABLES) + [f for stem in CONTRAST_MAPS
-                                             for f in maps.files(stem)]
+                                             for f in files_of(stem)]
             for name in names:
                 if not (results / c / name).is_file():
                     problems.add(results / c / name, "missing from the results folder",

@@ -71,6 +71,26 @@ TAILS_TEXT = {"two": "two-sided", "greater": "one-sided (positive effects)",
               "less": "one-sided (negative effects)"}
 NEIGHBOUR_TEXT = {"face": "face (6-connected)", "edge": "face and edge (18-connected)",
                   "vertex": "face, edge and corner (26-connected)"}
+#: neighbour kinds on a surface (mesh edges; hemispheres never joined)
+SURFACE_NEIGHBOUR_TEXT = {"edge": "mesh-edge (vertices joined by a triangle edge, the two "
+                                  "hemispheres never joined)"}
+
+
+def _neighbour_text(summary, inf):
+    if summary.get("space", {}).get("kind") == "surface":
+        return SURFACE_NEIGHBOUR_TEXT.get(inf.get("neighbors") or "edge", inf.get("neighbors"))
+    return NEIGHBOUR_TEXT.get(inf.get("neighbors") or "face", inf.get("neighbors"))
+
+
+def _space_text(summary, coh):
+    """'a common template grid of N sources' (volume) or the surface's equivalent."""
+    space = summary.get("space", {})
+    if space.get("kind") == "surface":
+        hemis = [h["name"] for h in space.get("hemispheres", [])]
+        return (f"a common template surface of {coh.get('sources', '?')} sources (the "
+                f"vertices of the {_join(hemis)} hemisphere{'s' if len(hemis) > 1 else ''} "
+                "within the source mask)")
+    return f"a common template grid of {coh.get('sources', '?')} sources"
 
 
 def _join(items):
@@ -105,7 +125,7 @@ def methods_text(summary: dict, contrasts: list) -> str:
     win = summary.get("window", {})
     parts = [f"Source maps of {who}"
              + (f" in {len(conds)} conditions ({_join(conds)})" if conds else "")
-             + f" were analysed on a common template grid of {coh.get('sources', '?')} sources, "
+             + f" were analysed on {_space_text(summary, coh)}, "
              f"from {win.get('start_ms', '?'):g} to {win.get('end_ms', '?'):g} ms "
              f"({win.get('n', '?')} samples every {win.get('dt_ms', '?'):g} ms), with groupsrc "
              f"{version}."]
@@ -165,7 +185,7 @@ def methods_text(summary: dict, contrasts: list) -> str:
                      + ("; upper tail for F" if any(c["kind"] == "F" for c in contrasts) else "")
                      + "; "
                      + "; ".join(thr) + "), connecting "
-                     f"{NEIGHBOUR_TEXT.get(inf.get('neighbors', 'face'), inf.get('neighbors'))} "
+                     f"{_neighbour_text(summary, inf)} "
                      "neighbouring sources at the same sample and the same source at adjacent "
                      "samples.")
     elif correction == "tfce":
@@ -173,8 +193,9 @@ def methods_text(summary: dict, contrasts: list) -> str:
             or inf.get("tfce") or {}
         parts.append(f"TFCE used the extent exponent E = {tf.get('extent_power', 0.5)} and "
                      f"the height exponent H = {tf.get('height_power', 2.0)} of Smith & Nichols, "
-                     f"{tf.get('steps', 100)} height steps per map, and "
-                     f"{NEIGHBOUR_TEXT.get(inf.get('neighbors', 'face'))} neighbours.")
+                     + (f"{tf['steps']} height steps per map, and " if tf.get("steps")
+                        else "the exact height integral at the data values, and ")
+                     + f"{_neighbour_text(summary, inf)} neighbours.")
     has_f = any(c["kind"] == "F" for c in contrasts)
     has_t = any(c["kind"] == "t" for c in contrasts)
     if has_t:

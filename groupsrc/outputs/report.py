@@ -25,6 +25,7 @@ from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_res
                      open_maps, read_json, read_tsv, read_values, times_ms)
 from .methods import methods_text
 from .mixed_outputs import df_text, model_figures, model_section
+from .surface_figures import surface_figures
 from .tables import COLUMNS
 
 MAX_CLUSTER_FIGURES = 6
@@ -44,10 +45,16 @@ CAUTIONS = [
 ]
 
 CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
-                "t_end_ms", "t_peak_ms", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
+                "t_end_ms", "t_peak_ms", "peak_hemisphere", "peak_vertex", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
                 "estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "std_effect_at_peak",
                 "std_effect_ci_low", "std_effect_ci_high", "atlas_label_at_peak"]
 
+SURFACE_CHECKS_TEXT = ("Every input check passed before the statistics ran: the template "
+                       "meshes are manifold (and closed, unless declared open), every map "
+                       "read with one value per template vertex and one time axis, no NaN or "
+                       "infinite value at a source, no duplicate or orphan table row, every "
+                       "model column present with at least two participants per factor level, "
+                       "and a full-rank design matrix.")
 CHECKS_TEXT = ("Every input check passed before the statistics ran: each map read as a 4D "
                "NIfTI on one template grid (same shape and affine) with one time axis, no NaN "
                "or infinite value inside the mask, no duplicate or orphan table row, every "
@@ -109,7 +116,7 @@ def projection_figures(grid, stat, labels, clusters, reported, times, name, kind
 
 
 #: the figure of the statistic in space, by source-space kind
-SPATIAL_FIGURES = {"volume": projection_figures}
+SPATIAL_FIGURES = {"volume": projection_figures, "surface": surface_figures}
 
 
 def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
@@ -279,6 +286,11 @@ def _cohort_rows(coh: dict, win: dict) -> list:
     rows += [("maps", coh.get("maps", "?")), ("sources", coh.get("sources", "?"))]
     if coh.get("voxel_size_mm"):
         rows.append(("voxel size (mm)", " x ".join(f"{v:g}" for v in coh["voxel_size_mm"])))
+    for h, part in (coh.get("hemispheres") or {}).items():
+        rows.append((f"  {h} hemisphere", f"{part['sources']} of {part['vertices']} vertices"))
+    if coh.get("map_format"):
+        rows.append(("map files", {"gifti": "GIfTI, one file per hemisphere",
+                                   "cifti": "CIFTI-2 dense time series"}[coh["map_format"]]))
     if coh.get("time_range_ms"):
         rows.append(("input samples", f"{coh.get('samples', '?')}, {coh['time_range_ms'][0]:g} "
                      f"to {coh['time_range_ms'][1]:g} ms"))
@@ -329,7 +341,8 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
         "version": str(summary.get("groupsrc_version")),
         "cautions": CAUTIONS,
         "cohort_rows": _cohort_rows(summary.get("cohort", {}), summary.get("window", {})),
-        "checks": CHECKS_TEXT if st.get("check_summary") else None,
+        "checks": ((SURFACE_CHECKS_TEXT if summary.get("space", {}).get("kind") == "surface"
+                    else CHECKS_TEXT) if st.get("check_summary") else None),
         "model_rows": [(k, v) for k, v in st.get("model", {}).items()
                        if v not in (None, "", [])],
         "contrast_table": table_view(contrast_rows),
@@ -361,6 +374,22 @@ def build_report(results_dir) -> Path:
     return render_report(results_dir)
 
 
+def _all_contrast_figures(results, maps, summary, cs_list):
+    """Each contrast's figures, drawn in parallel worker processes (forked, one per
+    contrast, at most one per core) where the system allows, else one after the other.
+    Figures are the same either way: each contrast's are drawn by one process."""
+    import multiprocessing
+    import os
+    workers = min(len(cs_list), os.cpu_count() or 1)
+    if workers < 2 or "fork" not in multiprocessing.get_all_start_methods():
+        return [contrast_figures(results, maps, summary, cs) for cs in cs_list]
+    from concurrent.futures import ProcessPoolExecutor
+    context = multiprocessing.get_context("fork")
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+        futures = [pool.submit(contrast_figures, results, maps, summary, cs) for cs in cs_list]
+        return [f.result() for f in futures]
+
+
 def render_report(results_dir) -> Path:
     """Draw figures, methods.md and report.html of a folder the writer is filling
     (its run record comes last, so it is not required here)."""
@@ -368,7 +397,7 @@ def render_report(results_dir) -> Path:
     summary = read_json(results / SUMMARY_FILE)
     maps = open_maps(results, summary)
     cs_list = [read_json(results / n / "summary.json") for n in summary["contrasts"]]
-    figs = [contrast_figures(results, maps, summary, cs) for cs in cs_list]
+    figs = _all_contrast_figures(results, maps, summary, cs_list)
     mfigs = model_figures(results, maps, summary, times_ms(summary["window"]))
     md = methods_text(summary, cs_list)
     write_text(results / METHODS_FILE, md)

@@ -40,6 +40,8 @@ COLUMNS = {
         "t_start_ms": "first sample time of the cluster (ms)",
         "t_end_ms": "last sample time of the cluster (ms)",
         "t_peak_ms": "time of the largest |statistic| in the cluster (ms)",
+        "peak_hemisphere": "hemisphere of the peak: left or right (surfaces only)",
+        "peak_vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only)",
         "peak_x_mm": "x world coordinate of the peak (mm, template space)",
         "peak_y_mm": "y world coordinate of the peak (mm)",
         "peak_z_mm": "z world coordinate of the peak (mm)",
@@ -57,6 +59,8 @@ COLUMNS = {
         "contrast": "contrast name",
         "cluster": "cluster number",
         "peak": "peak number within the cluster (1 = largest |statistic|)",
+        "hemisphere": "hemisphere of the peak: left or right (surfaces only)",
+        "vertex": "vertex index of the peak in its hemisphere's template mesh, from 0 (surfaces only)",
         "x_mm": "x world coordinate (mm)",
         "y_mm": "y world coordinate (mm)",
         "z_mm": "z world coordinate (mm)",
@@ -87,6 +91,27 @@ COLUMNS = {
         "share": "fraction of the cluster's sources in that region (0..1)",
     },
 }
+
+#: columns written only for a surface source space (they locate a source on its mesh)
+SURFACE_COLUMNS = {"clusters.tsv": ("peak_hemisphere", "peak_vertex"),
+                   "peaks.tsv": ("hemisphere", "vertex")}
+
+
+def table_columns(table: str, space, atlas=None) -> list:
+    """The columns of ``table`` for this source space (and atlas, for clusters.tsv)."""
+    surface = getattr(space, "kind", "volume") == "surface"
+    return [c for c in COLUMNS[table]
+            if (surface or c not in SURFACE_COLUMNS.get(table, ()))
+            and (c != "atlas_label_at_peak" or atlas)]
+
+
+def _mesh_place(space, s) -> dict:
+    """{'hemisphere': ..., 'vertex': ...} of source ``s`` on a surface, else {}."""
+    if getattr(space, "kind", "volume") != "surface":
+        return {}
+    lab = space.labels()
+    return {"hemisphere": str(lab.hemisphere.iat[s]), "vertex": int(lab.vertex.iat[s])}
+
 
 def columns_markdown() -> str:
     """COLUMNS as Markdown tables, one per file, for the README."""
@@ -202,7 +227,7 @@ def _peak_of(stat, labels, k):
 def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -> pd.DataFrame:
     """clusters.tsv rows for one contrast (columns of ``COLUMNS['clusters.tsv']``)."""
     inf = contrast.inference
-    cols = [c for c in COLUMNS["clusters.tsv"] if c != "atlas_label_at_peak" or atlas]
+    cols = table_columns("clusters.tsv", grid, atlas)
     table = inf.clusters
     if table is None or len(table) == 0:
         return pd.DataFrame(columns=cols)
@@ -228,6 +253,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
                "t_start_ms": tms[smp[0]], "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t],
                "peak_x_mm": coords[s, 0], "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2],
                "peak_stat": stat[s, t], "peak_df": float(df[-1])}
+        row.update({f"peak_{k}": v for k, v in _mesh_place(grid, s).items()})
         g = float(inf.std_effect[s, t])
         if inf.kind == "t":
             est, se = float(inf.estimate[s, t]), float(inf.se[s, t])
@@ -329,7 +355,7 @@ def peak_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, adjacency, min_s
                max_per_cluster=10) -> pd.DataFrame:
     """peaks.tsv: local maxima of |statistic| per cluster, at least
     ``min_separation_mm`` apart in space, largest first."""
-    cols = list(COLUMNS["peaks.tsv"])
+    cols = table_columns("peaks.tsv", grid)
     inf = contrast.inference
     labels = np.asarray(inf.cluster_labels)
     if not np.any(labels > 0):
@@ -356,7 +382,8 @@ def peak_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, adjacency, min_s
             rows.append({"contrast": contrast.name, "cluster": int(k), "peak": j,
                          "x_mm": coords[s, 0], "y_mm": coords[s, 1], "z_mm": coords[s, 2],
                          "time_ms": tms[t], "statistic": stat[s, t],
-                         "estimate": est[s, t] if inf.kind == "t" else np.nan})
+                         "estimate": est[s, t] if inf.kind == "t" else np.nan,
+                         **_mesh_place(grid, s)})
     return pd.DataFrame(rows, columns=cols)
 
 

@@ -188,7 +188,7 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
                for c in analysis.contrasts]
     frames = [w["clusters"] for w in written if len(w["clusters"])]
     all_clusters = (pd.concat(frames, ignore_index=True) if frames
-                    else pd.DataFrame(columns=list(tables.COLUMNS["clusters.tsv"])[:-1]))
+                    else pd.DataFrame(columns=tables.table_columns("clusters.tsv", grid)))
     write_tsv(out / ALL_CLUSTERS, all_clusters)
     if analysis.model is not None:
         write_model(analysis, maps, out / MODEL_DIR)

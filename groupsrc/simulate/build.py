@@ -81,10 +81,10 @@ def _check_target(out: Path) -> None:
         raise InputError(problems)
 
 
-def _install(staging: Path, out: Path) -> None:
+def _install(staging: Path, out: Path, entries=OWN_ENTRIES) -> None:
     """Move the built entries into ``out``, replacing only a previous build's entries."""
     out.mkdir(parents=True, exist_ok=True)
-    for name in OWN_ENTRIES:
+    for name in entries:
         src, dst = staging / name, out / name
         if not src.exists():
             continue

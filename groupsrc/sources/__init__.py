@@ -5,7 +5,8 @@ statistics and outputs use them through the contract in :mod:`.base`.
 """
 
 from .base import SourceSpace
+from .surface import Hemisphere, SurfaceMesh
 from .timeaxis import TimeAxis
 from .volume import VolumeGrid
 
-__all__ = ["SourceSpace", "TimeAxis", "VolumeGrid"]
+__all__ = ["Hemisphere", "SourceSpace", "SurfaceMesh", "TimeAxis", "VolumeGrid"]

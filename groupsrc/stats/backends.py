@@ -18,7 +18,16 @@ serial   batches one after the other in the calling thread
 threads  products in the calling thread, labelling of each batch's maps on
          ``workers`` threads, pipelined with the next batch's products
 processes whole batches on ``workers`` joblib process workers (loky)
+dask      whole batches as tasks on a Dask distributed cluster: a running
+          scheduler (``scheduler="tcp://host:port"``) or a local cluster
+          started here (``scheduler="local:N"``, N single-threaded worker
+          processes on the loopback interface); the job (kernel with its
+          data, correction) is scattered to every worker once per contrast
 ======== ====================================================================
+
+BLAS threads: every product runs under :func:`.kernels.one_blas_thread`, and
+the process and Dask workers run one task per process, so ``workers``
+processes never start ``workers x cores`` BLAS threads between them.
 """
 
 from __future__ import annotations
@@ -57,18 +66,23 @@ class NullJob:
         return lo, pos, neg
 
     def pieces(self, B, workers):
-        """Split B maps into work items for ``workers`` (whole stacking groups)."""
-        group = self.correction.group_size(B)
-        n_groups = -(-B // group)
-        step = max(1, -(-n_groups // workers)) * group
+        """Split B maps into one work item per worker."""
+        step = max(1, -(-B // workers))
         return [(a, min(B, a + step)) for a in range(0, B, step)]
 
 
-def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16):
+def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16, budget=None,
+               tasks=1):
     """Default batch size: a whole number of product blocks (at least one) whose
-    maps fit ``MEMORY_BUDGET`` across ``buffers`` buffers alive at once."""
-    fit = MEMORY_BUDGET / max(1, buffers) // (4.0 * n_features) if needs_maps else 256
+    maps fit ``budget`` bytes (default ``MEMORY_BUDGET``) across ``buffers``
+    buffers alive at once, and small enough to give at least ``tasks`` batches
+    (so that workers taking whole batches share the work evenly)."""
+    budget = MEMORY_BUDGET if budget is None else budget
+    fit = budget / max(1, buffers) // (4.0 * n_features) if needs_maps else 256
     B = max(block, int(fit) // block * block)
+    if tasks > 1:
+        share = -(-n_resamples // tasks)
+        B = min(B, max(block, -(-share // block) * block))
     return int(max(1, min(n_resamples, B)))
 
 
@@ -86,6 +100,11 @@ class Backend(ABC):
     @property
     def buffers(self) -> int:
         """Map buffers alive at once (for the batch-size budget)."""
+        return 1
+
+    @property
+    def tasks(self) -> int:
+        """Batches wanted at least, for an even share between workers."""
         return 1
 
     @abstractmethod
@@ -150,6 +169,10 @@ class ProcessBackend(Backend):
     def buffers(self):
         return self.workers
 
+    @property
+    def tasks(self):
+        return 4 * self.workers
+
     def run(self, job, batches, collect):
         if self.workers == 1:
             return SerialBackend().run(job, batches, collect)
@@ -159,13 +182,122 @@ class ProcessBackend(Backend):
             collect(*out)
 
 
+class BackendUnavailable(RuntimeError):
+    """The backend cannot run here (e.g. no Dask scheduler answers); the message says why
+    and what to do."""
+
+
+#: seconds to wait for a Dask scheduler to answer
+CONNECT_TIMEOUT = 10.0
+_CLIENTS: dict = {}
+
+
+def _run_batch(job, lo, hi):
+    return job.run_batch(lo, hi)
+
+
+def parse_scheduler(text):
+    """("local", N) for ``local:N`` / ``local``, else ("address", text); ValueError if bad."""
+    text = str(text).strip()
+    if text == "local" or text.startswith("local:"):
+        n = text.partition(":")[2] or "1"
+        if not n.isdigit() or int(n) < 1:
+            raise ValueError(f"'{text}' is not local:N with N a positive whole number")
+        return "local", int(n)
+    if not text or any(c.isspace() for c in text):
+        raise ValueError(f"'{text}' is not a scheduler address such as tcp://host:8786")
+    return "address", text
+
+
+def dask_client(scheduler, timeout=CONNECT_TIMEOUT):
+    """A Dask client for ``scheduler`` (kept for the life of the process, see
+    :func:`close_clients`); BackendUnavailable when none can be had in ``timeout`` s."""
+    client = _CLIENTS.get(scheduler)
+    if client is not None:
+        return client
+    kind, value = parse_scheduler(scheduler)
+    try:
+        import logging
+        from distributed import Client, LocalCluster
+    except ImportError as exc:  # pragma: no cover - a dependency
+        raise BackendUnavailable(f"Dask distributed is not installed ({exc})") from None
+    try:
+        if kind == "local":
+            cluster = LocalCluster(n_workers=value, threads_per_worker=1, processes=True,
+                                   host="127.0.0.1", dashboard_address=":0",
+                                   silence_logs=logging.ERROR)
+            client = Client(cluster, timeout=timeout)
+            client._groupsrc_cluster = cluster
+        else:
+            client = Client(value, timeout=timeout)
+    except (OSError, TimeoutError, ValueError) as exc:
+        what = (f"no Dask scheduler answered at {value} within {timeout:g} s"
+                if kind == "address" else f"a local Dask cluster could not start ({exc})")
+        raise BackendUnavailable(what) from None
+    _CLIENTS[scheduler] = client
+    return client
+
+
+def close_clients():
+    """Close every Dask client (and local cluster) this process opened."""
+    while _CLIENTS:
+        _, client = _CLIENTS.popitem()
+        cluster = getattr(client, "_groupsrc_cluster", None)
+        try:
+            client.close()
+            if cluster is not None:
+                cluster.close()
+        except Exception:  # pragma: no cover - closing must never fail a run
+            pass
+
+
+class DaskBackend(Backend):
+    """Batches as tasks on a Dask distributed cluster; the job is scattered once."""
+
+    name = "dask"
+
+    def __init__(self, workers: int = 1, scheduler=None, timeout=CONNECT_TIMEOUT):
+        super().__init__(workers)
+        self.scheduler = scheduler or f"local:{self.workers}"
+        parse_scheduler(self.scheduler)
+        self.timeout = timeout
+
+    @property
+    def buffers(self):
+        return 1                 # one batch per worker process, each with its own memory
+
+    @property
+    def tasks(self):
+        return 4 * self.workers
+
+    def run(self, job, batches, collect):
+        if not batches:
+            return
+        from distributed import as_completed
+        client = dask_client(self.scheduler, self.timeout)
+        shared = client.scatter(job, broadcast=True, hash=False)
+        futures = [client.submit(_run_batch, shared, a, b, pure=False) for a, b in batches]
+        try:
+            for fut in as_completed(futures):
+                collect(*fut.result())
+                fut.release()
+        finally:
+            client.cancel(futures)
+            del shared
+
+
+import atexit  # noqa: E402  (registered once the clients exist)
+atexit.register(close_clients)
+
 #: the backends, by name
-BACKENDS = {b.name: b for b in (SerialBackend, ThreadBackend, ProcessBackend)}
+BACKENDS = {b.name: b for b in (SerialBackend, ThreadBackend, ProcessBackend, DaskBackend)}
 
 
-def make_backend(name: str, workers: int = 1) -> Backend:
+def make_backend(name: str, workers: int = 1, **options) -> Backend:
+    """The backend ``name`` with ``workers``; ``options`` go to its constructor
+    (``scheduler`` for dask)."""
     try:
         cls = BACKENDS[name]
     except KeyError:
         raise ValueError(f"backend must be one of {tuple(BACKENDS)}, got {name!r}") from None
-    return cls(workers)
+    return cls(workers, **options)

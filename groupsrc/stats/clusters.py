@@ -8,9 +8,11 @@ on event-related responses (Maris & Oostenveld 2007, J Neurosci Methods
 164:177-190).
 
 The work follows the number ``K`` of supra-threshold points, not the grid:
-the neighbours of the ``K`` points are gathered from the CSR arrays with
-vectorised numpy, pairs with both ends supra-threshold are kept, and
-``scipy.sparse.csgraph.connected_components`` labels the K-node graph.
+a compiled union-find (:mod:`.unionfind`) joins each supra-threshold point
+with its supra-threshold neighbours, so liberal thresholds cost in
+proportion to the points they pass.  The labelling equals
+``scipy.sparse.csgraph.connected_components`` on the same graph
+(``tests/test_scale_labelling.py``).
 
 Examples
 --------
@@ -30,7 +32,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 from scipy import sparse
-from scipy.sparse.csgraph import connected_components
+
+from . import unionfind
 
 
 def check_adjacency(adjacency, n_sources):
@@ -67,49 +70,21 @@ def _upper(adjacency):
     return up
 
 
-def _neighbour_pairs(idx, shape, adjacency, supra_flat, code=None):
-    """Edges (a, b), a < b, between supra points (positions in ``idx``).
-
-    With ``code`` (int8 per flat point, 0 = not supra), only points with the
-    same nonzero code are joined (e.g. +1 / -1 for the two signs).
-    """
-    S, T = shape
-    # int32 arithmetic when it fits: these arrays hold ~K * degree entries
-    it = np.int32 if S * T < 2 ** 31 - 1 else np.int64
-    idx_i = idx.astype(it, copy=False)
-    s = idx_i // T
-    t = idx_i - s * T
-    # each undirected spatial edge once: neighbours with a larger source index
+def _up_csr(adjacency):
+    """int32 CSR arrays of the upper triangle, for the compiled union-find."""
     up = _upper(adjacency)
-    indptr = up.indptr.astype(it, copy=False)
-    indices = up.indices.astype(it, copy=False)
-    start = indptr[s]
-    deg = indptr[s + 1] - start
-    total = int(deg.sum())
-    # position in ``indices`` of each gathered neighbour
-    offs = np.repeat(start - (np.cumsum(deg, dtype=it) - deg), deg)
-    offs += np.arange(total, dtype=it)
-    nb_flat = indices[offs]
-    nb_flat *= T
-    nb_flat += np.repeat(t, deg)
-    if code is None:
-        keep = supra_flat[nb_flat]
-    else:
-        keep = code[nb_flat] == np.repeat(code[idx_i], deg)
-    a_sp = np.repeat(np.arange(idx.size, dtype=it), deg)[keep]
-    b_sp = np.searchsorted(idx_i, nb_flat[keep])
-    # time: the next sample of the same source is the next flat index
-    if T > 1:
-        nxt = (t < T - 1)
-        if code is None:
-            nxt[nxt] = supra_flat[idx[nxt] + 1]
-        else:
-            nxt[nxt] = code[idx[nxt] + 1] == code[idx[nxt]]
-        a_t = np.nonzero(nxt)[0]
-        b_t = a_t + 1
-    else:
-        a_t = b_t = np.zeros(0, np.int64)
-    return np.concatenate([a_sp, a_t]), np.concatenate([b_sp, b_t])
+    return up.indptr.astype(np.int32, copy=False), up.indices.astype(np.int32, copy=False)
+
+
+def label_codes(code, adjacency, n_times):
+    """Components of the points with equal nonzero ``code`` (flat int8, C order).
+
+    Returns ``idx`` (flat indices of the coded points, ascending), ``comp``
+    (component numbers 0..n-1 by first appearance) and ``n``; compiled
+    union-find (:mod:`.unionfind`), cost following the coded points.
+    """
+    ptr, ind = _up_csr(adjacency)
+    return unionfind.label_codes(np.ascontiguousarray(code, np.int8), ptr, ind, int(n_times))
 
 
 def components(supra, adjacency):
@@ -119,15 +94,7 @@ def components(supra, adjacency):
     (their component numbers) and the number of components.
     """
     supra = np.asarray(supra, dtype=bool)
-    shape = supra.shape
-    flat = supra.reshape(-1)
-    idx = np.flatnonzero(flat)
-    K = idx.size
-    if K == 0:
-        return idx, np.zeros(0, np.int64), 0
-    a, b = _neighbour_pairs(idx, shape, adjacency, flat)
-    g = sparse.coo_matrix((np.ones(a.size, np.int8), (a, b)), shape=(K, K)).tocsr()
-    n, comp = connected_components(g, directed=False)
+    idx, comp, n = label_codes(supra.reshape(-1).view(np.int8), adjacency, supra.shape[1])
     return idx, comp, int(n)
 
 
@@ -215,14 +182,10 @@ def signed_cluster_scores(stat, threshold, adjacency, signs=(1, -1)):
         code = (flat > threshold).view(np.int8)
     else:
         code = -(flat < -threshold).view(np.int8)
-    idx = np.flatnonzero(code.view(bool))
-    K = idx.size
-    if K == 0:
+    idx, comp, n = label_codes(code, adjacency, shape[1])
+    if n == 0:
         z = np.zeros(0)
         return SignedClusters(idx, z.astype(np.int64), z.astype(np.int8), z, z.astype(np.int64))
-    a, b = _neighbour_pairs(idx, shape, adjacency, None, code=code)
-    g = sparse.coo_matrix((np.ones(a.size, np.int8), (a, b)), shape=(K, K)).tocsr()
-    n, comp = connected_components(g, directed=False)
     vals = flat[idx].astype(np.float64)
     mass = np.bincount(comp, weights=vals, minlength=n)
     extent = np.bincount(comp, minlength=n)

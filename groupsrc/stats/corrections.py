@@ -31,29 +31,24 @@ from dataclasses import dataclass
 
 import numpy as np
 import pandas as pd
-from scipy import sparse
-
-from .clusters import (cluster_scores, components_by_sign, cluster_table,
-                       signed_cluster_scores)
+from . import unionfind
+from .clusters import _up_csr, cluster_scores, components_by_sign, cluster_table
 from .fdr import fdr_bh
 from .resampling import null_p_values
-from .tfce import E_DEFAULT, H_DEFAULT, STEPS_DEFAULT, check_parameters
+from .tfce import E_DEFAULT, H_DEFAULT, check_parameters
 from .tfce import tfce as tfce_map
-from .tfce import tfce_stack
-
-#: maps smaller than this many features are labelled several at a time
-STACK_FEATURES = 100_000
-
+from .tfce import tfce_batch
 
 @dataclass(frozen=True)
 class TfceOptions:
     """TFCE settings: ``extent_power`` and ``height_power`` are the exponents the
     paper writes E and H (Smith & Nichols 2009: E = 0.5, H = 2); the height
-    integral uses ``steps`` steps per map, or the fixed ``step`` when given."""
+    integral is exact (heights at the data values) unless ``steps`` steps per
+    map, or the fixed ``step``, ask for the stepped sum (see :mod:`.tfce`)."""
 
     extent_power: float = E_DEFAULT
     height_power: float = H_DEFAULT
-    steps: int = STEPS_DEFAULT
+    steps: int | None = None
     step: float | None = None
 
     def __post_init__(self):
@@ -114,39 +109,10 @@ class Correction:
         self.adj = adjacency
         self.threshold = threshold
         self.tfce = tfce
-        self._stacked = {}
-
-    def __getstate__(self):
-        state = dict(self.__dict__)
-        state["_stacked"] = {}
-        return state
 
     # -- resampling side ------------------------------------------------------
-    def group_size(self, n_maps):
-        """Maps labelled together (small maps are stacked into one labelling)."""
-        F = self.shape[0] * self.shape[1]
-        return max(1, min(n_maps, STACK_FEATURES // max(1, F)))
-
-    def stacked_adjacency(self, copies):
-        """Block-diagonal adjacency of ``copies`` source spaces (cached per size)."""
-        adj = self._stacked.get(copies)
-        if adj is None:
-            adj = sparse.csr_matrix(sparse.block_diag([self.adj] * copies, format="csr"))
-            adj.sort_indices()
-            self._stacked[copies] = adj
-        return adj
-
-    def null_extremes(self, maps, lo, hi):
+    def null_extremes(self, maps, lo, hi):  # pragma: no cover - map-based corrections
         """(max_pos, max_neg) score arrays of maps[lo:hi] (maps: (B, S*T))."""
-        B = hi - lo
-        pos, neg = np.zeros(B), np.zeros(B)
-        group = self.group_size(B)
-        for a in range(0, B, group):
-            b = min(B, a + group)
-            pos[a:b], neg[a:b] = self._score_stack(maps[lo + a:lo + b])
-        return pos, neg
-
-    def _score_stack(self, maps):  # pragma: no cover - map-based corrections override
         raise NotImplementedError
 
     # -- observed side --------------------------------------------------------
@@ -167,19 +133,13 @@ class ClusterMass(Correction):
     def _values(self, sc):
         return sc.mass if self.score == "mass" else sc.sign * sc.extent.astype(float)
 
-    def _score_stack(self, maps):
-        g = maps.shape[0]
-        S, T = self.shape
-        st = maps.reshape(g * S, T)
-        sc = signed_cluster_scores(st, self.threshold, self.stacked_adjacency(g),
-                                   signs(self.kind, self.tails))
-        pos, neg = np.zeros(g), np.zeros(g)
-        if sc.mass.size:
-            owner = np.zeros(sc.mass.size, np.int64)
-            owner[sc.comp] = sc.idx // (S * T)
-            vals = self._values(sc)
-            np.maximum.at(pos, owner, vals)
-            np.minimum.at(neg, owner, vals)
+    def null_extremes(self, maps, lo, hi):
+        """Compiled labelling and scoring of maps[lo:hi] (:mod:`.unionfind`)."""
+        want = signs(self.kind, self.tails)
+        pos, neg = np.zeros(hi - lo), np.zeros(hi - lo)
+        ptr, ind = _up_csr(self.adj)
+        unionfind.cluster_extremes(maps[lo:hi], float(self.threshold), 1 in want, -1 in want,
+                                   self.score == "mass", ptr, ind, self.shape[1], pos, neg)
         return pos, neg
 
     def outcome(self, stat_map, null_max, alpha):
@@ -217,15 +177,13 @@ class Tfce(Correction):
             return -tfce_map(-st, self.adj, two_sided=False, **kw)
         return tfce_map(st, self.adj, two_sided=True, **kw)
 
-    def _score_stack(self, maps):
-        g = maps.shape[0]
-        st = maps.reshape((g,) + self.shape)
+    def null_extremes(self, maps, lo, hi):
+        """Compiled one-pass TFCE of maps[lo:hi], extremes only (:mod:`.tfce`)."""
         two = not (self.kind == "F" or self.tails in ("greater", "less"))
         less = self.kind == "t" and self.tails == "less"
-        tf = tfce_stack(-st if less else st, self.stacked_adjacency(2 * g if two else g),
-                        two_sided=two, **self.tfce.keywords())
-        tf = (-tf if less else tf).reshape(g, -1)
-        return np.maximum(tf.max(axis=1), 0.0), np.minimum(tf.min(axis=1), 0.0)
+        pos, neg = tfce_batch(maps[lo:hi], self.adj, two_sided=two, scale=-1.0 if less else 1.0,
+                              extremes=True, **self.tfce.keywords())
+        return pos, neg
 
     def outcome(self, stat_map, null_max, alpha):
         obs = self.enhance(stat_map)

@@ -107,6 +107,15 @@ class Execution:
     progress: object = field(default=False, metadata={
         "check": lambda v: isinstance(v, bool) or callable(v),
         "rule": "True/False, or a callable f(done, total)"})
+    scheduler: str | None = field(default=None, metadata={
+        "check": lambda v: v is None or isinstance(v, str),
+        "rule": "None, a Dask scheduler address, or local:N (backend dask)"})
+    checkpoint: object = field(default=None, metadata={
+        "check": lambda v: v is None or hasattr(v, "begin"),
+        "rule": "None or a checkpoint.ContrastProgress"})
+    map_budget: float | None = field(default=None, metadata={
+        "check": lambda v: v is None or (isinstance(v, (int, float)) and v > 0),
+        "rule": "None or the bytes the resampled maps may take (all workers together)"})
 
     def __post_init__(self):
         _check_fields(self)
@@ -154,8 +163,10 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
         return _result(kernel, obs, outcome, null, spec, threshold, shape, None, None)
     rearr = kernel.rearrangements(spec.n_resamples, spec.seed, spec.blocks)
     kernel.prepare(rearr)
+    fixed = dict(seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
+                 exact=bool(rearr.exact), freedman_lane=bool(kernel.freedman_lane))
     null, batch = _null(NullJob(kernel, correction), rearr.n_resamples, kernel, correction,
-                        spec, execution)
+                        spec, execution, fixed)
     outcome = correction.outcome(stat_map, null["max_stat"].to_numpy(), spec.alpha)
     record = ResamplingRecord(
         seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
@@ -209,23 +220,38 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip", nuisance=Non
 # the null distribution
 # ----------------------------------------------------------------------------
 
-def _null(job, m, kernel, correction, spec, execution):
-    backend = make_backend(execution.backend, execution.n_jobs)
+def _null(job, m, kernel, correction, spec, execution, fixed):
+    options = {"scheduler": execution.scheduler} if execution.backend == "dask" else {}
+    backend = make_backend(execution.backend, execution.n_jobs, **options)
     B = execution.batch_size or auto_batch(m, kernel.n_features, correction.needs_maps,
-                                           backend.buffers)
-    batches = [(a, min(m, a + B)) for a in range(0, m, B)]
-    report = _progress(execution.progress, m)
+                                           backend.buffers, budget=execution.map_budget,
+                                           tasks=backend.tasks)
     pos, neg = np.zeros(m), np.zeros(m)
-    done = [0]
+    done = np.zeros(m, bool)
+    saved = execution.checkpoint
+    if saved is not None:                # resume the finished batches, keep their size
+        B = saved.begin(dict(fixed, batch_size=B), m)
+        pos[:], neg[:], done[:] = saved.pos, saved.neg, saved.done
+    batches = [(a, min(m, a + B)) for a in range(0, m, B) if not done[a:a + B].all()]
+    report = _progress(execution.progress, m)
+    count = [int(done.sum())]
 
     def collect(lo, bpos, bneg):
         pos[lo:lo + bpos.size] = bpos
         neg[lo:lo + bneg.size] = bneg
-        done[0] += bpos.size
+        count[0] += bpos.size
+        if saved is not None:
+            saved.add(lo, bpos, bneg)
         if report is not None:
-            report(done[0], m)
+            report(count[0], m)
 
-    backend.run(job, batches, collect)
+    if report is not None:
+        report(count[0], m)          # the stage starts (its rate is timed from here)
+    try:
+        backend.run(job, batches, collect)
+    finally:
+        if saved is not None:
+            saved.flush(force=True)
     null = pd.DataFrame({"resample": np.arange(m),
                          "max_stat": max_from(pos, neg, kernel.kind, spec.tails),
                          "max_pos": pos, "max_neg": neg})

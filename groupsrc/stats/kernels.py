@@ -60,6 +60,7 @@ arithmetic.
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
@@ -178,20 +179,26 @@ def one_blas_thread():
     return _BLAS_CONTROLLER.limit(limits=1, user_api="blas")
 
 
-def _residualise(Yf, q_nui, chunk=8192):
-    """Residuals of Yf (n, F) on the orthonormal columns ``q_nui`` (float32)."""
-    R = np.empty_like(Yf)
+def _residualise(Yf, q_nui, chunk=8192, allocate=None):
+    """Residuals of Yf (n, F) on the orthonormal columns ``q_nui`` (float32), in an
+    array from ``allocate(shape)`` (default in memory; see :mod:`.memory`)."""
+    from .pages import release
+    R = np.empty_like(Yf) if allocate is None else allocate(Yf.shape)
     for a in range(0, Yf.shape[1], chunk):
         y = Yf[:, a:a + chunk].astype(np.float64)
         R[:, a:a + chunk] = y - q_nui @ (q_nui.T @ y)
+        release(Yf)
+        release(R)
     return R
 
 
 def _sum_squares(R, chunk=8192):
+    from .pages import release
     rr = np.empty(R.shape[1], np.float64)
     for a in range(0, R.shape[1], chunk):
         y = R[:, a:a + chunk].astype(np.float64)
         rr[a:a + chunk] = np.einsum("ij,ij->j", y, y)
+        release(R)
     return rr.astype(np.float32)
 
 
@@ -204,7 +211,30 @@ def _norms_raw_and_residual(Yf, q_nui, chunk=8192):
         r = y - q_nui @ (q_nui.T @ y)
         yy[a:a + chunk] = np.einsum("ij,ij->j", y, y)
         rr[a:a + chunk] = np.einsum("ij,ij->j", r, r)
+        _release(Yf)
     return yy, rr
+
+
+def _release(a):
+    from .pages import release
+    release(a)
+
+
+def _by_chunks(fit, Yf, X, C, chunk=65536):
+    """``fit(Yf, X, C)`` over feature chunks of a memory-mapped ``Yf`` (pages handed
+    back after each chunk), the per-feature arrays joined; in one call otherwise."""
+    if not isinstance(Yf, np.memmap) and not isinstance(getattr(Yf, "base", None), np.memmap):
+        return fit(Yf, X, C)
+    parts = []
+    for a in range(0, Yf.shape[1], chunk):
+        parts.append(fit(np.array(Yf[:, a:a + chunk]), X, C))
+        _release(Yf)
+    first = parts[0]
+    joined = {f.name: (np.concatenate([getattr(p, f.name) for p in parts])
+                       if isinstance(getattr(first, f.name), np.ndarray)
+                       else getattr(first, f.name))
+              for f in dataclasses.fields(first)}
+    return type(first)(**joined)
 
 
 def _invariant(q_nui, rearr, tol=1e-8):
@@ -271,6 +301,9 @@ class OLSKernel(StatisticKernel):
         False -> rearrange the raw data.
     """
 
+    #: allocates the residuals, ``allocate(shape)`` (None: in memory; see :mod:`.memory`)
+    allocate = None
+
     def __init__(self, Y, X, contrast, *, scheme="sign-flip", nuisance=None):
         self.Y = Y
         self.X = np.asarray(X, np.float64)
@@ -297,11 +330,11 @@ class OLSKernel(StatisticKernel):
         Yf, X, C = self.Y, self.X, self.C
         nan = np.full(self.n_features, np.nan)
         if self.kind == "t":
-            fit = glm.t_contrast(Yf, X, C)
+            fit = _by_chunks(glm.t_contrast, Yf, X, C)
             stat, est, se = fit.t, fit.estimate, fit.se
             effect = glm.cohens_d(fit.estimate, fit.sigma, fit.df)
         else:
-            fit = glm.f_contrast(Yf, X, C)
+            fit = _by_chunks(glm.f_contrast, Yf, X, C)
             stat, est, se = fit.F, nan, nan
             effect = glm.partial_eta_squared(fit.F, fit.df1, fit.df2)
         return Observed(self.kind, self.df, stat, est, se, effect,
@@ -327,7 +360,7 @@ class OLSKernel(StatisticKernel):
         use_fl = self.nuisance is not False and b.q_nuisance.shape[1] > 0
         self.freedman_lane = use_fl and not _invariant(b.q_nuisance, rearr)
         if self.freedman_lane:
-            R, Q = _residualise(Yf, b.q_nuisance), b.q
+            R, Q = _residualise(Yf, b.q_nuisance, allocate=self.allocate), b.q
             rr = _sum_squares(R)
         elif use_fl:
             # Nuisance space invariant under every rearrangement: Q_nuisance' P R_z = 0
@@ -340,7 +373,7 @@ class OLSKernel(StatisticKernel):
             if np.all(yy <= _RAW_RATIO ** 2 * rr64):
                 R, rr = Yf, rr64.astype(np.float32)
             else:
-                R = _residualise(Yf, b.q_nuisance)
+                R = _residualise(Yf, b.q_nuisance, allocate=self.allocate)
                 rr = _sum_squares(R)
         else:
             R, Q = Yf, b.q
@@ -388,12 +421,17 @@ class OLSKernel(StatisticKernel):
         mx = np.full(B, -np.inf)
         mn = np.full(B, np.inf)
         fc = min(FEATURE_CHUNK, F)
+        on_disk = isinstance(self.R, np.memmap) or isinstance(getattr(self.R, "base", None),
+                                                               np.memmap)
         with one_blas_thread():
             Gs = [self._block_rows(k) for k in ks]
             pad = None
             for a in range(0, F, fc):
                 b = min(F, a + fc)
                 Rc = self.R[:, a:b]
+                if on_disk:                         # read the chunk, hand its pages back
+                    Rc = np.array(Rc)
+                    _release(self.R)
                 if b - a < fc:                      # last chunk: zero-padded copy
                     pad = np.zeros((n, fc), np.float32) if pad is None else pad
                     pad[:, :b - a] = Rc

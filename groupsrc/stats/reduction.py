@@ -21,15 +21,33 @@ import numpy as np
 CHUNK_ELEMENTS = 2e7
 
 
-def reduce_maps(Y, W, samples: slice) -> np.ndarray:
-    """``W @ Y[:, :, samples]`` as float32 (n_participants, n_sources, n_samples)."""
+def reduce_maps(Y, W, samples: slice, *, chunk_bytes=None, out=None,
+                progress=None) -> np.ndarray:
+    """``W @ Y[:, :, samples]`` as float32 (n_participants, n_sources, n_samples).
+
+    ``chunk_bytes`` bounds the float64 working copy of each source chunk
+    (default ``8 x CHUNK_ELEMENTS``); ``out`` receives the result (e.g. an
+    array on disk, :mod:`.memory`); ``progress(done, total)`` is told the
+    sources done.  Pages of memory-mapped inputs and outputs are handed back
+    after each chunk, so the resident set stays at about one chunk.
+    """
+    from .pages import release
     W = np.asarray(W, np.float64)
     n_maps, S, _ = Y.shape
     T = len(range(*samples.indices(Y.shape[2])))
-    out = np.empty((W.shape[0], S, T), dtype=np.float32)
-    step = max(1, int(CHUNK_ELEMENTS // max(1, n_maps * T)))
+    if out is None:
+        out = np.empty((W.shape[0], S, T), dtype=np.float32)
+    elements = CHUNK_ELEMENTS if chunk_bytes is None else max(1.0, chunk_bytes / 8.0)
+    step = max(1, int(elements // max(1, n_maps * T)))
+    if progress is not None:
+        progress(0, S)
     for a in range(0, S, step):
         b = min(S, a + step)
         block = np.asarray(Y[:, a:b, samples], dtype=np.float64)
         out[:, a:b, :] = np.tensordot(W, block, axes=(1, 0)).astype(np.float32)
+        del block
+        release(Y)
+        release(out)
+        if progress is not None:
+            progress(b, S)
     return out

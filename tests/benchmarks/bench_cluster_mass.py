@@ -82,10 +82,10 @@ def main():
         batch = res.resampling.batch_size
     # fixed cost (observed fit, residual norms, observed clusters): one resample
     setup = []
+    del res
     for rep in range(a.repeats):
-        del res
         t0 = time.perf_counter()
-        res = run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation",
+        run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation",
                             correction="cluster-mass", n_resamples=1, seed=rep,
                             forming_p=a.forming_p,
                             n_jobs=a.jobs)

@@ -1,0 +1,271 @@
+"""Surface figures: lateral and medial views of each hemisphere, drawn with matplotlib.
+
+:func:`surface_figures` is the ``SPATIAL_FIGURES["surface"]`` entry of the
+report: for each distinct peak time of the reported clusters (at most
+``MAX_VIEWS``) the statistic at that time on the template meshes, with every
+reported cluster present at that time outlined along mesh edges.
+
+How a view is drawn (orthographic projection, no 3D toolkit):
+
+* the camera looks along -x or +x with z up: a lateral view of the left
+  hemisphere is seen from the left (anterior to the left of the image), its
+  medial view from the right (anterior to the right), and mirrored for the
+  right hemisphere; "A" and "P" mark anterior and posterior;
+* triangles facing away from the viewer are dropped (the mesh is oriented
+  outwards first, by the sign of its enclosed volume), the rest are painted
+  far to near (painter's algorithm);
+* each triangle's colour is the colour of the mean of its three vertices'
+  values, shaded by a Lambert factor ``0.35 + 0.65 max(0, n . l)`` for a light
+  from the viewer's side and above (common practice), so the folds stay
+  visible whatever the statistic;
+* cluster outlines are the edges between triangles whose three vertices are
+  all in a reported cluster and triangles that are not, drawn as thin quads
+  inside the same far-to-near painting, so a fold in front hides them.
+
+Colours: signed statistics (t) use ColorBrewer's RdBu reversed (red
+positive, blue negative, near white at zero; a diverging scheme ColorBrewer
+marks as colour-blind safe), so the shading of the folds stays readable
+where the statistic is small; F uses its upper half (white to red).  This
+differs on purpose from the volume projections' map, which is dark at zero.
+Points in no cluster at the time shown are faded toward light grey, so the
+clusters stand out while the rest of the map stays visible; vertices that are
+not sources (outside the mask, e.g. the medial wall) are mid grey.  The triangle layer is rasterised in the SVG (text stays vector),
+so a 20,000-vertex mesh gives a file of moderate size.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import matplotlib
+import numpy as np
+from matplotlib.collections import PolyCollection
+from matplotlib.colors import LinearSegmentedColormap, Normalize
+
+from . import figures
+
+MAX_VIEWS = 4
+NOT_SOURCE = np.array([0.55, 0.55, 0.55])
+#: points in no cluster at the time shown are faded this far toward FADED
+FADE, FADED = 0.7, np.array([0.86, 0.86, 0.86])
+OUTLINE = "#000000"
+AMBIENT, DIFFUSE = 0.35, 0.65
+#: (title, camera direction from the object to the viewer) per hemisphere
+VIEWS = {"left": (("lateral", (-1.0, 0.0, 0.0)), ("medial", (1.0, 0.0, 0.0))),
+         "right": (("lateral", (1.0, 0.0, 0.0)), ("medial", (-1.0, 0.0, 0.0)))}
+UP = np.array([0.0, 0.0, 1.0])
+
+
+def surface_cmap(kind):
+    """RdBu reversed for t; its white-to-red half for F (see the module docstring)."""
+    base = matplotlib.colormaps["RdBu_r"]
+    if kind == "t":
+        return base
+    return LinearSegmentedColormap.from_list("groupsrc_f_surface", base(np.linspace(0.5, 1, 128)))
+
+
+# ----------------------------------------------------------------------------
+# geometry of a view
+# ----------------------------------------------------------------------------
+
+def outward_triangles(vertices, triangles):
+    """Triangles ordered so their normals point out (by the enclosed volume's sign)."""
+    v = np.asarray(vertices, float)
+    t = np.asarray(triangles, np.int64)
+    signed = np.einsum("ij,ij->i", v[t[:, 0]], np.cross(v[t[:, 1]], v[t[:, 2]])).sum()
+    return t[:, ::-1] if signed < 0 else t
+
+
+def boundary_edges(triangles, inside):
+    """Mesh edges between triangles wholly inside a vertex set and triangles that are not.
+
+    ``inside`` is a bool per vertex; returns (E, 2) vertex pairs along the
+    outline of the set (an edge of the mesh's border counts when its one
+    triangle is inside).
+    """
+    t = np.asarray(triangles, np.int64)
+    full = inside[t].all(axis=1)
+    if not full.any():
+        return np.zeros((0, 2), np.int64)
+    sides = np.concatenate([t[:, [0, 1]], t[:, [1, 2]], t[:, [2, 0]]])
+    sides.sort(axis=1)
+    flag = np.tile(full, 3)
+    edges, inv = np.unique(sides, axis=0, return_inverse=True)
+    inv = inv.reshape(-1)
+    n_in = np.bincount(inv, weights=flag, minlength=len(edges))
+    n_all = np.bincount(inv, minlength=len(edges))
+    return edges[(n_in >= 1) & (n_in < n_all) | ((n_all == 1) & (n_in == 1))]
+
+
+def _camera(direction):
+    d = np.asarray(direction, float)
+    d /= np.linalg.norm(d)
+    right = np.cross(UP, d)
+    right /= np.linalg.norm(right)
+    up = np.cross(d, right)
+    return d, right, up
+
+
+def view_polygons(vertices, triangles, face_rgb, direction, outline=None, outline_width=1.0):
+    """(polygons (N, 4, 2), colours (N, 3)) of one view, painted far to near.
+
+    ``face_rgb``: (F, 3) colour per triangle before shading; ``outline``:
+    (E, 2) vertex pairs drawn as quads ``outline_width`` wide (data units).
+    """
+    v = np.asarray(vertices, float)
+    d, right, up = _camera(direction)
+    xy = np.column_stack([v @ right, v @ up])
+    depth = v @ d
+    n = np.cross(v[triangles[:, 1]] - v[triangles[:, 0]], v[triangles[:, 2]] - v[triangles[:, 0]])
+    n /= np.maximum(np.linalg.norm(n, axis=1, keepdims=True), 1e-12)
+    facing = n @ d
+    keep = facing > 0
+    light = d + 0.6 * up - 0.3 * right
+    light /= np.linalg.norm(light)
+    shade = AMBIENT + DIFFUSE * np.clip(n[keep] @ light, 0.0, 1.0)
+    tri = triangles[keep]
+    polys = [np.concatenate([xy[tri], xy[tri[:, :1]]], axis=1)]          # 4th point closes
+    colours = [np.clip(face_rgb[keep] * shade[:, None], 0, 1)]
+    depths = [depth[tri].mean(axis=1)]
+    if outline is not None and len(outline):
+        seen = np.zeros(len(v), bool)
+        seen[tri.ravel()] = True
+        outline = outline[seen[outline].all(axis=1)]     # edges of front-facing triangles only
+    if outline is not None and len(outline):
+        a, b = xy[outline[:, 0]], xy[outline[:, 1]]
+        along = b - a
+        perp = np.column_stack([-along[:, 1], along[:, 0]])
+        perp *= (outline_width / 2) / np.maximum(np.linalg.norm(perp, axis=1, keepdims=True), 1e-12)
+        polys.append(np.stack([a - perp, b - perp, b + perp, a + perp], axis=1))
+        colours.append(np.tile(matplotlib.colors.to_rgb(OUTLINE), (len(outline), 1)))
+        # just in front of the triangles along the edge, so a nearer fold still hides it
+        depths.append(depth[outline].max(axis=1) + 1e-3 * np.ptp(depth))
+    polys, colours, depths = (np.concatenate(x) for x in (polys, colours, depths))
+    order = np.argsort(depths, kind="stable")
+    return polys[order], colours[order]
+
+
+# ----------------------------------------------------------------------------
+# the figure
+# ----------------------------------------------------------------------------
+
+def vertex_colours(space, values, kind, vlim, strong=None):
+    """{hemisphere: (V, 3) rgb}: the colour map at sources, grey elsewhere.
+
+    Sources not in ``strong`` (bool per source; default all) are faded toward
+    light grey (FADE of the way), so the map's pattern stays visible but the
+    points in clusters stand out.
+    """
+    cmap, norm = surface_cmap(kind), Normalize(*vlim)
+    strong = np.ones(space.n_sources, bool) if strong is None else np.asarray(strong, bool)
+    out = {}
+    for h in space.hemispheres:
+        rgb = np.tile(NOT_SOURCE, (h.n_vertices, 1))
+        part = space.source_slice(h.name)
+        col = cmap(norm(np.nan_to_num(np.asarray(values, float)[part])))[:, :3]
+        weak = ~strong[part]
+        col[weak] = (1 - FADE) * col[weak] + FADE * FADED
+        rgb[h.sources] = col
+        out[h.name] = rgb
+    return out
+
+
+def views_figure(space, values, inside, kind, title, base: Path, vlim=None, strong=None) -> list:
+    """Lateral and medial views of each hemisphere of per-source ``values``.
+
+    ``inside``: bool per source, the points outlined (reported clusters);
+    ``strong``: bool per source, the points shown in full colour (others
+    faded; default all).  Returns the written paths (PNG and SVG).
+    """
+    vlim = vlim if vlim is not None else figures._stat_range(values, kind)
+    rgb = vertex_colours(space, values, kind, vlim, strong)
+    hemis = space.hemispheres
+    fig = figures.new_figure(62 * len(hemis) + 14)
+    gs = fig.add_gridspec(len(hemis), 2)
+    axes = []
+    extent = max(np.ptp(np.column_stack([h.vertices[:, 1], h.vertices[:, 2]]), axis=0).max()
+                 for h in hemis)
+    for i, h in enumerate(hemis):
+        t = outward_triangles(h.vertices, h.triangles)
+        face = rgb[h.name][t].mean(axis=1)
+        member = np.zeros(h.n_vertices, bool)
+        member[h.sources] = np.asarray(inside, bool)[space.source_slice(h.name)]
+        edges = boundary_edges(t, member)
+        for j, (view, direction) in enumerate(VIEWS[h.name]):
+            ax = fig.add_subplot(gs[i, j])
+            axes.append(ax)
+            polys, colours = view_polygons(h.vertices, t, face, direction, edges,
+                                           outline_width=0.012 * extent)
+            coll = PolyCollection(polys, facecolors=colours, edgecolors=colours,
+                                  linewidths=0.25, rasterized=True)
+            coll.set_in_layout(False)
+            ax.add_collection(coll)
+            lo, hi = polys.reshape(-1, 2).min(axis=0), polys.reshape(-1, 2).max(axis=0)
+            pad = 0.03 * extent
+            ax.set_xlim(lo[0] - pad, hi[0] + pad)
+            ax.set_ylim(lo[1] - pad, hi[1] + pad)
+            ax.set_aspect("equal")
+            ax.set_axis_off()
+            ax.set_title(f"{h.name} hemisphere, {view}")
+            d, right, _ = _camera(direction)
+            front_right = right[1] > 0           # +y (anterior) to the right of the image
+            ax.text(0.0, 0.0, "P" if front_right else "A", transform=ax.transAxes,
+                    weight="bold", ha="left", va="bottom")
+            ax.text(1.0, 0.0, "A" if front_right else "P", transform=ax.transAxes,
+                    weight="bold", ha="right", va="bottom")
+    sm = matplotlib.cm.ScalarMappable(norm=Normalize(*vlim), cmap=surface_cmap(kind))
+    cb = fig.colorbar(sm, ax=axes, shrink=0.8, aspect=30, pad=0.02)
+    cb.set_label("t" if kind == "t" else "F")
+    fig.suptitle(title, fontsize=8.5)
+    return figures.save(fig, base)
+
+
+def _sample_index(times, value_ms):
+    return int(np.abs(np.asarray(times, float) - float(value_ms)).argmin())
+
+
+def _views(clusters, reported, times):
+    """[(sample, [clusters peaking there])] for the first MAX_VIEWS distinct peak samples."""
+    out = {}
+    for k in reported:
+        r = clusters.loc[clusters["cluster"] == k].iloc[0]
+        out.setdefault(_sample_index(times, r["t_peak_ms"]), []).append(k)
+    return list(out.items())[:MAX_VIEWS]
+
+
+def _title(name, kind, time_ms, ks, clusters):
+    if not ks:
+        return f"{name}: {kind} at its largest |{kind}|, {time_ms:g} ms (no cluster reported)"
+    ps = clusters.set_index("cluster").loc[ks, "p_corrected"].to_numpy(float)
+    which = (f"cluster {ks[0]}" if len(ks) == 1 else
+             "clusters " + ", ".join(str(k) for k in ks[:-1]) + f" and {ks[-1]}")
+    ptxt = (f" (p = {ps[0]:.3g})" if len(ks) == 1 and np.isfinite(ps[0]) else
+            f" (p <= {np.nanmax(ps):.3g})" if np.isfinite(ps).all() else "")
+    return f"{name}: {kind} at {time_ms:g} ms, peak of {which}{ptxt}"
+
+
+def surface_figures(space, stat, labels, clusters, reported, times, name, kind, figdir) -> list:
+    """The report's spatial figures of a surface: [(caption, png path)].
+
+    One figure per distinct peak time of the reported clusters (at most
+    MAX_VIEWS), so clusters peaking at the same sample share one figure.
+    """
+    vlim = figures._stat_range(stat, kind)
+    views = _views(clusters, reported, times)
+    if not views:
+        s, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
+        views = [(int(t), [])]
+    out = []
+    for t_idx, ks in views:
+        base = figdir / (f"surface_cluster{ks[0]:02d}" if ks else "surface_peak")
+        inside = np.isin(labels[:, t_idx], reported) if reported else np.zeros(len(stat), bool)
+        views_figure(space, stat[:, t_idx], inside, kind,
+                     _title(name, kind, times[t_idx], ks, clusters), base, vlim=vlim,
+                     strong=labels[:, t_idx] > 0)
+        out.append((f"The {kind} map at {times[t_idx]:g} ms on the template surface: lateral "
+                    "and medial views of each hemisphere (A: anterior, P: posterior), shaded "
+                    "to show the folds; full colour: points in a cluster at that time, faded: "
+                    "the rest; dark grey: not a source (outside the mask); black outlines: "
+                    "reported clusters at that time, along mesh edges.",
+                    base.with_suffix(".png")))
+    return out

@@ -1,0 +1,109 @@
+"""Progress of the long stages (loading, reduction, resampling) on stderr.
+
+Three modes, chosen once per run by :func:`reporter`:
+
+* ``bar`` -- stderr is a terminal: a bar with the rate and the time left
+  (tqdm), one per stage;
+* ``lines`` -- stderr is not a terminal (a batch job's log): one line at
+  every ~10% with the rate and the time left, so a log file stays short;
+* ``quiet`` -- ``--quiet``: nothing.
+
+A reporter is a callable ``new(desc, total, unit)`` returning a
+:class:`Progress`; the statistics see only ``progress(done, total)``.
+Like :mod:`groupsrc.atomic` this module imports nothing from the package.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+
+#: the lines mode prints at every this share of the total
+LINE_STEP = 0.10
+
+
+class Progress:
+    """One stage's progress: ``update(done)``, ``close()``; also ``progress(done, total)``."""
+
+    def __init__(self, desc, total, unit, mode, stream=None):
+        self.desc, self.total, self.unit, self.mode = desc, max(0, int(total)), unit, mode
+        self.stream = stream
+        self.t0 = time.monotonic()
+        self.start = None          # done count when this process began (resumed runs)
+        self.next_line = LINE_STEP
+        self.bar = None
+        if mode == "bar":
+            from tqdm import tqdm
+            self.bar = tqdm(total=self.total, desc=desc, unit=unit, file=self._out(),
+                            leave=False, dynamic_ncols=True)
+
+    def _out(self):
+        return self.stream if self.stream is not None else sys.stderr
+
+    def __call__(self, done, total=None):
+        self.update(done)
+
+    def update(self, done):
+        done = int(done)
+        if self.start is None:
+            self.start = done if done < self.total else 0
+        if self.bar is not None:
+            self.bar.n = done
+            self.bar.refresh()
+        elif self.mode == "lines" and self.total:
+            share = done / self.total
+            if share >= self.next_line or done >= self.total:
+                while self.next_line <= share:
+                    self.next_line += LINE_STEP
+                print(f"groupsrc: {self.desc}: {share:4.0%} ({done}/{self.total} {self.unit}s)"
+                      f"{self._rate(done)}", file=self._out(), flush=True)
+        if done >= self.total:
+            self.close()
+
+    def _rate(self, done):
+        spent = time.monotonic() - self.t0
+        work = done - (self.start or 0)
+        if spent <= 0 or work <= 0:
+            return ""
+        rate = work / spent
+        left = (self.total - done) / rate
+        return f", {rate:.3g} {self.unit}s/s, {_duration(left)} left"
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+            self.bar = None
+
+
+def _duration(seconds):
+    seconds = max(0.0, float(seconds))
+    if seconds < 90:
+        return f"{seconds:.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
+def reporter(quiet=False, stream=None):
+    """``new(desc, total, unit) -> Progress`` for this run (see the module docstring)."""
+    out = stream if stream is not None else sys.stderr
+    mode = "quiet" if quiet else ("bar" if getattr(out, "isatty", lambda: False)() else "lines")
+
+    def new(desc, total, unit="item"):
+        return Progress(desc, total, unit, mode, stream)
+    new.mode = mode
+    return new
+
+
+def track(iterable, new, desc, total, unit="item"):
+    """Iterate while reporting through ``new`` (a :func:`reporter`); ``new`` may be None."""
+    if new is None:
+        yield from iterable
+        return
+    p = new(desc, total, unit)
+    try:
+        for i, item in enumerate(iterable):
+            yield item
+            p.update(i + 1)
+    finally:
+        p.close()

@@ -1,0 +1,139 @@
+"""The working-set bound (``--memory``): how big batches and chunks may be, and
+whether the per-participant arrays live on disk.
+
+Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
+
+* per-feature results: about ``PER_FEATURE`` x F (the observed statistic,
+  estimate, standard error, effect, p-values, labels; float64);
+* the resampled maps of the batches alive at once: ``B x F x 4`` per buffer;
+* the reduced data and their residuals, ``2 x n x F x 4``: in memory while
+  they fit half of what is left, else in files (memory-mapped, read chunk by
+  chunk with the pages handed back after each chunk, :func:`release`);
+* chunk buffers of the reduction and the products.
+
+``--memory`` bounds these; the interpreter and its libraries (about
+``FIXED_OVERHEAD`` bytes: numpy, scipy, pandas, numba, matplotlib) come on
+top.  The smallest bound that works holds one product block of
+``RES_BLOCK`` resampled maps per buffer plus the per-feature results; below
+it :class:`MemoryTooSmall` says the minimum.  Without ``--memory`` the
+defaults of :mod:`.backends` and :mod:`.reduction` apply and every array is
+in memory.
+"""
+
+from __future__ import annotations
+
+import atexit
+import os
+import re
+import shutil
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .kernels import RES_BLOCK
+from .pages import release  # noqa: F401  (re-exported)
+
+#: bytes per feature held outside the batches (observed maps, results and their
+#: temporaries, float64; measured with tests/benchmarks/bench_memory.py)
+PER_FEATURE = 20 * 8
+#: the interpreter and its libraries, not counted by --memory (measured, rounded up)
+FIXED_OVERHEAD = 350 * 2 ** 20
+#: bytes of the maps read per reduction chunk, at most and at least
+CHUNK_MAX, CHUNK_MIN = 64 * 2 ** 20, 256 * 2 ** 10
+_UNITS = {"": 1, "b": 1, "k": 2 ** 10, "kb": 10 ** 3, "kib": 2 ** 10, "m": 2 ** 20,
+          "mb": 10 ** 6, "mib": 2 ** 20, "g": 2 ** 30, "gb": 10 ** 9, "gib": 2 ** 30,
+          "t": 2 ** 40, "tb": 10 ** 12, "tib": 2 ** 40}
+
+
+class MemoryTooSmall(ValueError):
+    """``--memory`` below what one batch needs; ``fix`` names the minimum."""
+
+    def __init__(self, what, fix):
+        super().__init__(what)
+        self.fix = fix
+
+
+def parse_size(text) -> int:
+    """Bytes of a size such as ``512M``, ``4G``, ``2.5GiB``, ``8000000`` (M, G: 2^20, 2^30;
+    MB, GB: 10^6, 10^9); ValueError when it is not one."""
+    m = re.fullmatch(r"\s*([0-9]+(?:\.[0-9]+)?)\s*([A-Za-z]*)\s*", str(text))
+    if not m or m.group(2).lower() not in _UNITS:
+        raise ValueError(f"'{text}' is not a size such as 512M, 4G or 2.5GiB")
+    value = float(m.group(1)) * _UNITS[m.group(2).lower()]
+    if value < 1:
+        raise ValueError(f"'{text}' is not a positive size")
+    return int(value)
+
+
+def size_text(n) -> str:
+    for unit, div in (("GiB", 2 ** 30), ("MiB", 2 ** 20), ("KiB", 2 ** 10)):
+        if n >= div:
+            return f"{n / div:.4g} {unit}"
+    return f"{int(n)} bytes"
+
+
+@dataclass
+class Plan:
+    """Sizes for one run: ``chunk_bytes`` per reduction chunk, ``map_budget`` for
+    the resampled maps, and ``array(shape)`` that allocates a float32 array in
+    memory or on disk."""
+
+    chunk_bytes: float | None = None
+    map_budget: float | None = None
+    on_disk: bool = False
+
+    def array(self, shape):
+        if not self.on_disk:
+            return np.empty(shape, np.float32)
+        return _disk_array(shape)
+
+
+def minimum(n_features, buffers=2) -> int:
+    """The smallest working set that runs: one product block per buffer, the
+    per-feature results and the smallest chunks."""
+    return int(PER_FEATURE * n_features + RES_BLOCK * 4 * n_features * buffers
+               + 2 * CHUNK_MIN)
+
+
+def plan(memory, n_units, n_features, *, workers=1, distributed=False) -> Plan:
+    """The sizes that keep the working set within ``memory`` bytes (None: defaults)."""
+    if memory is None:
+        return Plan()
+    buffers = 1 if distributed else (2 if workers > 1 else 1)
+    if not distributed and workers > 1:
+        buffers = max(buffers, 2)
+    low = minimum(n_features, buffers)
+    if memory < low:
+        raise MemoryTooSmall(
+            f"{size_text(memory)} is below what one batch needs: {RES_BLOCK} resampled maps "
+            f"of {n_features:,} source x sample points per buffer and the result maps take "
+            f"at least {size_text(low)}", f"give --memory {size_text(low)} or more")
+    chunk = float(min(CHUNK_MAX, max(CHUNK_MIN, memory / 32)))
+    left = memory - PER_FEATURE * n_features - 2 * chunk
+    data = 2 * 4.0 * n_units * n_features
+    on_disk = data > left / 2
+    budget = left - (0 if on_disk else data)
+    return Plan(chunk_bytes=chunk, map_budget=max(budget, RES_BLOCK * 4.0 * n_features * buffers),
+                on_disk=on_disk)
+
+
+# ----------------------------------------------------------------------------
+# arrays on disk
+# ----------------------------------------------------------------------------
+
+_WORK: list = []
+
+
+def _work_dir() -> Path:
+    if not _WORK:
+        _WORK.append(Path(tempfile.mkdtemp(prefix="groupsrc-work-")))
+        atexit.register(shutil.rmtree, _WORK[0], True)
+    return _WORK[0]
+
+
+def _disk_array(shape):
+    fd, path = tempfile.mkstemp(suffix=".f32", dir=_work_dir())
+    os.close(fd)
+    return np.memmap(path, dtype=np.float32, mode="w+", shape=tuple(shape))

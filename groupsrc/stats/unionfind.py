@@ -1,0 +1,422 @@
+"""Compiled union-find over the space x time graph: cluster labelling and TFCE.
+
+The inner loops are compiled with numba (``nogil=True``, so threads run maps
+in parallel; ``cache=True``, so a compiled function is written beside this
+module and reused by the next process instead of being compiled again).
+
+The graph
+---------
+Points are flat indices ``v = s * T + t`` over ``(n_sources, n_times)`` in C
+order.  Two points are neighbours when they are the same sample at sources
+joined by the source adjacency (CSR ``indptr`` / ``indices``, symmetric, no
+self loops) or the same source at adjacent samples (Maris & Oostenveld 2007,
+J Neurosci Methods 164:177-190) -- the graph of :mod:`.clusters`.
+
+Labelling
+---------
+:func:`label_codes` joins neighbouring points that carry the same nonzero
+code (+1 / -1: the two signs, never joined to each other) with a union-find
+(union by size, path halving).  Its cost follows the number ``K`` of coded
+points times their degree, plus one pass over the map to find them: it does
+not collapse at liberal thresholds the way a per-level or per-graph
+construction does.  Components are numbered in order of their first point
+(flat C order), the numbering ``scipy.sparse.csgraph.connected_components``
+gives on the same graph.  :func:`cluster_extremes` fuses labelling and
+scoring for the null distribution: per map, the largest positive and most
+negative cluster score, sums taken in flat order (as ``numpy.bincount``).
+
+TFCE in one pass (the component tree)
+-------------------------------------
+TFCE (Smith & Nichols 2009, NeuroImage 44:83-98) of a point ``v`` is
+``integral_0^{x_v} e(h)^E h^H dh`` where ``e(h)`` is the size of ``v``'s
+component in ``{x >= h}``.  Points are visited from the highest value down;
+each visit creates a node of the *component tree* and every merge of two
+components closes their nodes and opens a new one.  Between two consecutive
+events a node's component is constant, so a node alive over heights
+``(d, u]`` with ``n`` points contributes ``n^E (G(u) - G(d))`` to each of its
+points, where ``G`` is the antiderivative of the height weight.  A point's
+TFCE is the sum over the nodes from its leaf to the root, one top-down pass
+over the nodes (parents are always created after their children).  Cost:
+one sort of the supra-zero points plus near-linear merging.
+
+* exact: ``G(h) = h^(H+1) / (H+1)`` -- the integral itself, heights at the
+  data values, no discretisation.
+* stepped: heights ``h_k = k dh`` and ``G(h) = sum_{k <= L(h)} h_k^H dh`` with
+  ``L(h) = floor(h / dh)`` (a relative slack of 1e-9 for points sitting on a
+  level): the right-endpoint sum ``sum_k e_k^E h_k^H dh`` over the levels a
+  point reaches, the usual discretisation.  It differs from the exact value
+  by ``O(dh)`` and converges to it as ``dh -> 0`` (``tests/test_scale_tfce.py``).
+
+Two-sided maps: positive and negative points are visited in one pass in the
+order of ``|x|`` and never joined across signs; the result carries the sign.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+_JIT = dict(nogil=True, cache=True)
+#: rank of a point not (yet) visited
+_NOT_YET = np.int32(2 ** 31 - 1)
+
+
+@njit(**_JIT)
+def _find(parent, x):
+    while parent[x] != x:
+        parent[x] = parent[parent[x]]          # path halving
+        x = parent[x]
+    return x
+
+
+@njit(**_JIT)
+def _union(parent, size, a, b):
+    ra = _find(parent, a)
+    rb = _find(parent, b)
+    if ra == rb:
+        return ra
+    if size[ra] < size[rb]:
+        ra, rb = rb, ra
+    parent[rb] = ra
+    size[ra] += size[rb]
+    return ra
+
+
+@njit(**_JIT)
+def _join_forward(code, up_ptr, up_idx, T, parent, size):
+    """Union every coded point with its forward neighbours of the same code.
+
+    ``up_ptr`` / ``up_idx``: the upper triangle (u > s) of the source
+    adjacency, so each spatial edge is seen once; in time the next sample.
+    """
+    F = code.size
+    for v in range(F):
+        c = code[v]
+        if c == 0:
+            continue
+        s = v // T
+        t = v - s * T
+        if t + 1 < T and code[v + 1] == c:
+            _union(parent, size, v, v + 1)
+        for j in range(up_ptr[s], up_ptr[s + 1]):
+            u = np.int64(up_idx[j]) * T + t
+            if code[u] == c:
+                _union(parent, size, v, u)
+
+
+@njit(**_JIT)
+def label_codes(code, up_ptr, up_idx, T):
+    """Components of the coded points: (idx, comp, n).
+
+    ``code`` (F,) int8, 0 = not in a cluster; ``idx`` the flat indices of the
+    coded points (ascending), ``comp`` their component numbers 0..n-1 in
+    order of first appearance.
+    """
+    F = code.size
+    parent = np.empty(F, np.int64)
+    size = np.empty(F, np.int64)
+    K = 0
+    for v in range(F):
+        if code[v] != 0:
+            parent[v] = v
+            size[v] = 1
+            K += 1
+    _join_forward(code, up_ptr, up_idx, T, parent, size)
+    idx = np.empty(K, np.int64)
+    comp = np.empty(K, np.int64)
+    number = size                        # reused: -1 on roots not yet numbered
+    for v in range(F):
+        if code[v] != 0 and parent[v] == v:
+            number[v] = -1
+    n = 0
+    i = 0
+    for v in range(F):
+        if code[v] == 0:
+            continue
+        r = _find(parent, v)
+        if number[r] == -1:              # first point of its component: next number
+            number[r] = -2 - n
+            n += 1
+        idx[i] = v
+        comp[i] = -2 - number[r]
+        i += 1
+    return idx, comp, n
+
+
+@njit(**_JIT)
+def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_idx, T,
+                     pos, neg):
+    """Per map: largest positive and most negative cluster score (mass or signed extent).
+
+    ``maps`` (B, F); clusters are ``x > threshold`` (when ``want_pos``) and
+    ``x < -threshold`` (when ``want_neg``).  ``pos`` / ``neg`` (B,) receive
+    the extremes (0 when there is no cluster of that sign).
+    """
+    B, F = maps.shape
+    code = np.zeros(F, np.int8)
+    parent = np.empty(F, np.int64)
+    size = np.empty(F, np.int64)
+    acc = np.zeros(F, np.float64)
+    for b in range(B):
+        x = maps[b]
+        for v in range(F):
+            xv = x[v]
+            c = 0
+            if want_pos and xv > threshold:
+                c = 1
+            elif want_neg and xv < -threshold:
+                c = -1
+            code[v] = c
+            if c != 0:
+                parent[v] = v
+                size[v] = 1
+                acc[v] = 0.0
+        _join_forward(code, up_ptr, up_idx, T, parent, size)
+        # scores summed in flat order, as numpy.bincount over the points would
+        for v in range(F):
+            if code[v] != 0:
+                r = _find(parent, v)
+                if by_mass:
+                    acc[r] += x[v]
+                else:
+                    acc[r] += code[v]
+        hi = 0.0
+        lo = 0.0
+        for v in range(F):
+            if code[v] != 0 and parent[v] == v:
+                if acc[v] > hi:
+                    hi = acc[v]
+                if acc[v] < lo:
+                    lo = acc[v]
+        pos[b] = hi
+        neg[b] = lo
+
+
+# ----------------------------------------------------------------------------
+# TFCE
+# ----------------------------------------------------------------------------
+
+@njit(**_JIT)
+def _height_weight(h, H, step, prefix):
+    """G(h): the antiderivative (exact) or the level sum (stepped) of h^H."""
+    if step <= 0.0:
+        if H == 2.0:
+            return h * h * h / 3.0
+        return h ** (H + 1.0) / (H + 1.0)
+    L = np.int64(np.floor(h / step + 1e-9))
+    if L < 1:
+        return 0.0
+    if L >= prefix.size:
+        L = prefix.size - 1
+    return prefix[L]
+
+
+@njit(**_JIT)
+def _extent_weight(n, E):
+    if E == 0.5:
+        return np.sqrt(n)
+    return n ** E
+
+
+@njit(**_JIT)
+def _radix_order(vals, order, src):
+    """Positions of ``vals`` (non-negative float64) from the largest down.
+
+    LSD radix sort on the IEEE bit patterns (monotone for non-negative
+    floats), four passes of 16 bits; ties come out in reverse position order.
+    Writes into ``order`` (at least ``vals.size``; ``src`` of the same size is
+    scratch) and returns its first ``K``.
+    """
+    K = vals.size
+    src = src[:K]
+    dst = order[:K]
+    bits = vals.view(np.uint64)
+    for i in range(K):
+        src[i] = i
+    count = np.empty(65537, np.int64)
+    for shift in range(0, 64, 16):
+        count[:] = 0
+        for i in range(K):
+            count[((bits[src[i]] >> np.uint64(shift)) & np.uint64(0xFFFF)) + 1] += 1
+        if count[1 + ((bits[src[0]] >> np.uint64(shift)) & np.uint64(0xFFFF))] == K:
+            continue                  # one digit value for every key: nothing to move
+        for j in range(65536):
+            count[j + 1] += count[j]
+        for i in range(K):
+            k = (bits[src[i]] >> np.uint64(shift)) & np.uint64(0xFFFF)
+            dst[count[k]] = src[i]
+            count[k] += 1
+        src, dst = dst, src
+    out = dst
+    for i in range(K):
+        out[i] = src[K - 1 - i]
+    return out
+
+
+def tfce_workspace(F):
+    """Scratch arrays for :func:`_tfce_into` on maps of ``F`` points, reused across
+    maps: no allocation per map (large allocations and their page faults serialise
+    threads)."""
+    return (np.empty(F, np.float64), np.empty(F, np.int8), np.empty(F, np.int32),
+            np.empty(F, np.int32), np.empty(F, np.int32), np.empty(F, np.int32),
+            np.empty(2 * F, np.int32), np.empty(2 * F, np.float64),
+            np.empty(2 * F, np.float64), np.empty(F, np.int32), np.empty(F, np.float64),
+            np.empty(F, np.int32))
+
+
+@njit(**_JIT)
+def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
+    """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see the module docstring).
+
+    ``scale`` multiplies the map first (-1 for lower-tailed use); ``steps`` /
+    ``dh``: exact integral when both are <= 0, else the stepped sum with the
+    fixed step ``dh`` or ``max|x| / steps``.  ``ws``: :func:`tfce_workspace`.
+    """
+    a, sgn, parent, rank, rootnode, leaf, nparent, ntop, nval, pts_ws, vals_ws, scratch = ws
+    F = x.size
+    top = 0.0
+    for v in range(F):
+        xv = scale * x[v]
+        if xv > 0.0:
+            a[v] = xv
+            sgn[v] = 1
+        elif two_sided and xv < 0.0:
+            a[v] = -xv
+            sgn[v] = -1
+        else:
+            a[v] = 0.0
+            sgn[v] = 0
+        if a[v] > top:
+            top = a[v]
+        out[v] = 0.0
+    if top == 0.0:
+        return
+    step = 0.0
+    if dh > 0.0:
+        step = dh
+    elif steps > 0:
+        step = top / steps
+    prefix = np.zeros(1, np.float64)
+    if step > 0.0:
+        n_lev = np.int64(np.floor(top / step + 1e-9)) + 2
+        prefix = np.zeros(n_lev, np.float64)
+        for k in range(1, n_lev):
+            hk = k * step
+            prefix[k] = prefix[k - 1] + hk ** H * step
+        for v in range(F):            # below the first level: no contribution
+            if sgn[v] != 0 and a[v] < step:
+                sgn[v] = 0
+    K = 0
+    for v in range(F):
+        if sgn[v] != 0:
+            K += 1
+    if K == 0:
+        return
+    pts = pts_ws[:K]
+    vals = vals_ws[:K]
+    i = 0
+    for v in range(F):
+        if sgn[v] != 0:
+            pts[i] = v
+            vals[i] = a[v]
+            i += 1
+    order = _radix_order(vals, rank, scratch)   # descending height
+    # work in rank space: point i is the i-th highest.  P[i] its flat index, A[i] its
+    # height; rank[v] = 2 i + (1 if negative), so one read gives "visited yet?" and sign
+    P = parent
+    A = a                                     # the heights by rank (a is no longer needed)
+    for i in range(K):
+        P[i] = pts[order[i]]
+        A[i] = vals[order[i]]
+    for v in range(F):
+        rank[v] = _NOT_YET
+    for i in range(K):
+        rank[P[i]] = 2 * i + (1 if sgn[P[i]] < 0 else 0)
+    up = pts                                  # union-find over ranks (reuses pts)
+    size = leaf                               # component sizes by root rank
+    nn = 0
+    for i in range(K):
+        v = np.int64(P[i])
+        g = _height_weight(A[i], H, step, prefix)
+        bit = rank[v] & 1
+        up[i] = i
+        size[i] = 1
+        rootnode[i] = -1                      # a single point: no node until needed
+        ri = np.int64(i)                      # the root of i's component
+        s = v // T
+        t = v - s * T
+        j0 = adj_ptr[s]
+        deg = adj_ptr[s + 1] - j0
+        for d in range(-1, deg + 1):
+            if d == -1:
+                if t == 0:
+                    continue
+                u = v - 1
+            elif d == deg:
+                if t + 1 >= T:
+                    continue
+                u = v + 1
+            else:
+                u = np.int64(adj_idx[j0 + d]) * T + t
+            ru = rank[u]
+            if ru >= 2 * i or (ru & 1) != bit:
+                continue
+            rj = np.int64(_find(up, ru >> 1))
+            if rj == ri:
+                continue
+            # close the nodes of both components at this height (a node opened at
+            # this same height has length zero); the merged component opens here
+            for r0 in (rj, ri):
+                nd = rootnode[r0]
+                if nd >= 0:
+                    nparent[nd] = nn
+                    if ntop[nd] != g:
+                        nval[nd] = _extent_weight(size[r0], E) * (ntop[nd] - g)
+            ri = np.int64(_union(up, size, rj, ri))
+            rootnode[ri] = nn
+            ntop[nn] = g
+            nval[nn] = 0.0
+            nparent[nn] = -1
+            nn += 1
+        if rootnode[ri] < 0:                  # no neighbour yet: a node of its own
+            rootnode[ri] = nn
+            ntop[nn] = g
+            nval[nn] = 0.0
+            nparent[nn] = -1
+            nn += 1
+        vals[i] = rootnode[ri]                # the point's leaf node
+    for i in range(K):                        # components still open at height 0
+        if up[i] == i:
+            nd = rootnode[i]
+            nval[nd] = _extent_weight(size[i], E) * ntop[nd]
+    for nd in range(nn - 1, -1, -1):  # top-down: a parent is always created after its children
+        if nparent[nd] >= 0:
+            nval[nd] += nval[nparent[nd]]
+    for i in range(K):
+        v = P[i]
+        out[v] = (1 - 2 * (rank[v] & 1)) * nval[np.int64(vals[i])] * scale
+
+
+@njit(**_JIT)
+def tfce_maps(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
+    """TFCE of every map of ``maps`` (B, F) into ``out`` (B, F) float64."""
+    for b in range(maps.shape[0]):
+        _tfce_into(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out[b], ws)
+
+
+@njit(**_JIT)
+def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, pos, neg,
+                  buf, ws):
+    """Per map: the largest positive and most negative TFCE value (0 when none)."""
+    B, F = maps.shape
+    for b in range(B):
+        _tfce_into(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, buf, ws)
+        hi = 0.0
+        lo = 0.0
+        for v in range(F):
+            if buf[v] > hi:
+                hi = buf[v]
+            if buf[v] < lo:
+                lo = buf[v]
+        pos[b] = hi
+        neg[b] = lo

@@ -1,0 +1,81 @@
+"""Bounded memory (groupsrc.stats.memory): a run whose per-participant data are twice
+the --memory setting gives the in-memory run's result bit for bit (the project's own
+promise, DESIGN.md: the result never depends on how the work is split); sizes and the
+refusal below the minimum."""
+
+import numpy as np
+import pytest
+
+from groupsrc.sources import VolumeGrid
+from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats.inference import Execution, InferenceSpec, infer
+from groupsrc.stats.kernels import OLSKernel
+from groupsrc.stats.memory import MemoryTooSmall, minimum, parse_size, plan
+from groupsrc.stats.reduction import reduce_maps
+
+
+def _problem(n=200, seed=0):
+    rng = np.random.default_rng(seed)
+    grid = VolumeGrid.from_mask(np.ones((10, 10, 10), bool), np.eye(4))
+    T = 20
+    Y = rng.standard_normal((2 * n, grid.n_sources, T)).astype(np.float32)   # two conditions
+    Y[::2] += 0.15
+    W = np.zeros((n, 2 * n))
+    W[np.arange(n), 2 * np.arange(n)] = 1
+    W[np.arange(n), 2 * np.arange(n) + 1] = -1
+    X = np.c_[np.ones(n), rng.standard_normal(n)]
+    return grid, Y, W, X
+
+
+def _run(grid, Y, W, X, memory, correction):
+    n_features = grid.n_sources * Y.shape[2]
+    p = plan(memory, W.shape[0], n_features, workers=2)
+    data = reduce_maps(Y, W, slice(0, Y.shape[2]), chunk_bytes=p.chunk_bytes,
+                       out=p.array((W.shape[0], grid.n_sources, Y.shape[2])))
+    kernel = OLSKernel(data.reshape(W.shape[0], -1), X, [1.0, 0.0], scheme="sign-flip")
+    kernel.allocate = p.array
+    spec = InferenceSpec(correction=correction, n_resamples=64, seed=4, forming_p=0.01,
+                         tfce=TfceOptions())
+    res = infer(kernel, grid.adjacency("face"), spec,
+                Execution(n_jobs=2, map_budget=p.map_budget))
+    return p, data, res
+
+
+@pytest.mark.parametrize("correction", ["cluster-mass", "tfce"])
+def test_bounded_run_equals_in_memory_run(correction):
+    grid, Y, W, X = _problem()
+    n_features = grid.n_sources * Y.shape[2]
+    data_bytes = W.shape[0] * n_features * 4
+    memory = data_bytes // 2                    # the data are twice the setting
+    assert memory >= minimum(n_features)
+    p, data, bounded = _run(grid, Y, W, X, memory, correction)
+    assert p.on_disk and isinstance(data, np.memmap)
+    assert bounded.resampling.batch_size < 64   # several batches
+    _, _, free = _run(grid, Y, W, X, None, correction)
+    assert free.resampling.batch_size == 64
+    for col in ("max_stat", "max_pos", "max_neg"):
+        np.testing.assert_array_equal(bounded.null[col], free.null[col])
+    np.testing.assert_array_equal(bounded.statistic, free.statistic)
+    np.testing.assert_array_equal(bounded.p_corrected, free.p_corrected)
+    np.testing.assert_array_equal(bounded.cluster_labels, free.cluster_labels)
+
+
+def test_below_the_minimum_is_refused_naming_it():
+    with pytest.raises(MemoryTooSmall) as info:
+        plan(1_000_000, 40, 1_250_000)
+    assert "below what one batch needs" in str(info.value)
+    assert "--memory" in info.value.fix and "MiB or more" in info.value.fix
+    plan(minimum(1_250_000, 1), 40, 1_250_000)          # the minimum itself works
+
+
+@pytest.mark.parametrize("text,value", [("512M", 512 * 2 ** 20), ("4G", 4 * 2 ** 30),
+                                        ("2.5GiB", int(2.5 * 2 ** 30)), ("8000000", 8000000),
+                                        ("3GB", 3 * 10 ** 9)])
+def test_sizes(text, value):
+    assert parse_size(text) == value
+
+
+@pytest.mark.parametrize("text", ["", "abc", "-1G", "4 parsecs", "0"])
+def test_bad_sizes(text):
+    with pytest.raises(ValueError):
+        parse_size(text)
