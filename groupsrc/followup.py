@@ -155,6 +155,12 @@ def _mask_region(mask, window, maps, summary, problems):
             problems.add("--window", "needs --mask", "give the region as --mask FILE")
         return None
     path = Path(mask)
+    if getattr(grid, "kind", "volume") != "volume":
+        problems.add(f"--mask {path}", "a region of one's own is read as a 3D NIfTI mask on a "
+                     f"volume grid; these results are on a {grid.kind} source space",
+                     "follow up their clusters with --contrast NAME [--cluster K ...] (surface "
+                     "masks are not read by followup yet)")
+        return None
     try:
         vol, affine = read_mask(path)
     except FileNotFoundError:

@@ -38,7 +38,7 @@ def _job(correction, scheme, m=70, seed=5):
     return NullJob(kernel, corr), m
 
 
-@pytest.mark.parametrize("correction", ["cluster-mass", "max-stat"])
+@pytest.mark.parametrize("correction", ["cluster-mass", "tfce", "max-stat"])
 @pytest.mark.parametrize("scheme", ["sign-flip", "permutation"])
 @pytest.mark.parametrize("name", list(BACKENDS))
 def test_every_backend_gives_the_serial_null_bit_for_bit(name, scheme, correction):
