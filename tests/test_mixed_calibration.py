@@ -15,7 +15,7 @@ tests/test_null_calibration.py).
 
 Quick version (default suite): max-stat, 80 datasets x 100 resamples,
 interval [1, 8] for Binomial(80, 0.05) -- it catches gross miscalibration only.
-Long version (about 15 minutes on 2 cores):
+Long version (about 2 to 3 minutes on 2 cores):
 
     .venv/bin/python -m pytest -m slow tests/test_mixed_calibration.py
 
@@ -87,4 +87,6 @@ def test_fwer_long(contrast, correction, request):
         pytest.skip("long calibration: run  pytest -m slow tests/test_mixed_calibration.py")
     lo, hi = stats.binom.interval(0.95, 400, ALPHA)      # scipy.stats binomial interval
     hits = _rejections(contrast, correction, 400, 200)
+    print(f"\nmixed model, {contrast} effect, {correction}: {hits} of 400 null data sets "
+          f"rejected (interval [{lo:g}, {hi:g}])")
     assert lo <= hits <= hi, (contrast, correction, hits, (lo, hi))
