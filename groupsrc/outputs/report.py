@@ -214,7 +214,8 @@ def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
         if mixed:                       # one row per map: draw each distinct row once
             design = design[~design.duplicated()]
         base = figdir / "design"
-        design_figure(design, cs["weights"], f"{name}: design and contrast", base)
+        design_figure(design, cs["weights"], f"{name}: design and contrast", base,
+                      row_label="distinct map row" if mixed else "participant")
         out.append((("The mixed model's fixed-effects design, each distinct map row once "
                      "(labelled with the first participant who has it)" if mixed else
                      "The between-participant design") + ", one panel per coefficient "
