@@ -1,4 +1,4 @@
-"""Command line: ``groupsrc demo | check | run | report``.
+"""Command line: ``groupsrc demo | check | run | report | followup``.
 
 Exit codes: 0 success, 1 a problem with the data or design (every problem
 listed), 2 a usage error.
@@ -68,6 +68,20 @@ def _parser():
 
     rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
     rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
+
+    f = sub.add_parser("followup", help="region means per map and a statsmodels mixed-model "
+                       "refit, for significant clusters or a region of yours")
+    f.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
+    f.add_argument("--contrast", default=None, help="only this contrast's clusters")
+    f.add_argument("--cluster", type=int, nargs="+", default=None, metavar="K",
+                   help="these cluster numbers of --contrast (default: the significant ones)")
+    f.add_argument("--mask", type=Path, default=None,
+                   help="a region of yours: 3D NIfTI mask on the template grid")
+    f.add_argument("--window", type=float, nargs=2, default=None, metavar=("START", "STOP"),
+                   help="time window of the --mask region in seconds (default: all samples)")
+    f.add_argument("--out", type=Path, default=None,
+                   help="folder to write (default: RESULTS_followup beside the results)")
+    f.add_argument("--overwrite", action="store_true", help="replace an earlier follow-up")
     return p
 
 
@@ -192,6 +206,13 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "demo":
         return cmd_demo(args, command)
+    if args.command == "followup":
+        from .followup import followup
+        out = followup(args.results, contrast=args.contrast, clusters=args.cluster,
+                       mask=args.mask, window=args.window, out=args.out,
+                       overwrite=args.overwrite)
+        print(f"follow-up written to {out}; read {out / 'followup.md'}")
+        return EXIT_OK
     return EXIT_USAGE
 
 
@@ -236,9 +257,38 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
     print(f"  design       : {prep.design.X.shape[0]} participants x "
           f"{prep.design.X.shape[1]} coefficients: {', '.join(prep.design.X.columns)}")
+    if prep.mixed is not None:
+        _print_mixed(prep)
     for plan in prep.plans:
-        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}] {plan.description}")
+        model = ", mixed model" if plan.model == "mixed" else ""
+        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}{model}] "
+              f"{plan.description}")
     return EXIT_OK
+
+
+def _print_mixed(prep):
+    """What check says about the mixed model: its columns, the maps per participant,
+    the empty cells, and the participants GLM contrasts leave out."""
+    s, md = prep.summary, prep.mixed
+    method = prep.settings.model.get("estimation", "reml").upper()
+    print(f"  mixed model  : {method}, {len(md.X)} maps x {md.X.shape[1]} coefficients: "
+          f"{', '.join(md.X.columns)}")
+    print(f"  random       : {', '.join(md.z_names)} per participant")
+    per = s.get("maps_per_participant", {})
+    dist = {}
+    for pid, k in per.items():
+        dist.setdefault(k, []).append(pid)
+    parts = []
+    for k in sorted(dist):
+        who = dist[k]
+        names = f" ({', '.join(who)})" if len(who) <= 3 else ""
+        parts.append(f"{len(who)} with {k} map{'s' if k != 1 else ''}{names}")
+    print(f"  maps/person  : {'; '.join(parts)}")
+    empty = s.get("empty_cells", [])
+    print("  empty cells  : " + (", ".join(f"{p} {c}" for p, c in empty) if empty else "none"))
+    if s.get("glm_excluded"):
+        print(f"  GLM contrasts: leave out {', '.join(s['glm_excluded'])} (no map of every "
+              "condition; the mixed model uses their maps)")
 
 
 def cmd_demo(args, command) -> int:

@@ -20,7 +20,9 @@ import pandas as pd
 
 from . import __version__
 from .inputs.cohort import Cohort, load_cohort, summary
-from .inputs.design import Design, build_design, plan_contrast, reduction_matrix
+from .inputs.design import ID, Design, build_design, plan_contrast, reduction_matrix
+from .inputs.mixed_design import (MixedModelDesign, build_mixed_design, incomplete_participants,
+                                  map_counts, plan_mixed_contrast)
 from .inputs.problems import InputError, ProblemList
 from .stats.results import AnalysisResult, ContrastResult
 from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
@@ -37,6 +39,13 @@ class Prepared:
     plans: list
     time_index: np.ndarray
     summary: dict
+    #: the mixed model's map-level design (``mixed = true``)
+    mixed: MixedModelDesign | None = None
+    #: the design of GLM contrasts: all participants, or (``mixed = true``) those with
+    #: a map of every condition
+    glm_design: Design | None = None
+    #: participants the GLM contrasts leave out (listed by check, report and methods)
+    glm_excluded: list | None = None
 
 
 def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
@@ -49,11 +58,6 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     check_neighbors(settings, problems)
     if any(settings.cohort.get(k) is None for k in ("participants", "maps")):
         raise InputError(problems)
-    if settings.model.get("mixed"):
-        problems.add(f"{settings.path} [model] mixed",
-                     "the mass-univariate mixed model is not available in this version",
-                     "set mixed = false: the summary-statistic GLM averages sessions within "
-                     "participants, which is exact for balanced designs")
     try:
         cohort = load_cohort(settings, progress=progress)
     except InputError as exc:
@@ -65,17 +69,25 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
             design = build_design(settings, parts, problems, f"{settings.path} [model] between")
             if design is not None:
                 for spec in settings.contrasts:
-                    plan_contrast(spec, design, problems, f"{settings.path} contrast '{spec.name}'")
+                    if _model_of(spec, settings) == "glm":   # mixed ones need the maps
+                        plan_contrast(spec, design, problems,
+                                      f"{settings.path} contrast '{spec.name}'")
         raise InputError(problems) from None
     parts = cohort.participants.reset_index(drop=True)
     where = f"{settings.path} [model] between"
     design = build_design(settings, parts, problems, where)
+    mixed, glm_design, excluded = _models(settings, cohort, parts, design, problems, where)
     plans = []
-    if design is not None:
-        for spec in settings.contrasts:
-            plan = plan_contrast(spec, design, problems, f"{settings.path} contrast '{spec.name}'")
-            if plan is not None:
-                plans.append(plan)
+    for spec in settings.contrasts:
+        cwhere = f"{settings.path} contrast '{spec.name}'"
+        if _model_of(spec, settings) == "mixed":
+            plan = plan_mixed_contrast(spec, design, mixed, problems, cwhere) \
+                if mixed is not None else None
+        else:
+            plan = plan_contrast(spec, glm_design, problems, cwhere) \
+                if glm_design is not None else None
+        if plan is not None:
+            plans.append(plan)
     if design is None and not problems:
         problems.add(where, "the design could not be built",
                      "check the formula and the columns it names")
@@ -90,7 +102,38 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
         _check_reduced_range(cohort, plans, settings, problems)
     if problems:
         raise InputError(problems)
-    return Prepared(settings, cohort, design, plans, tindex, summary(cohort, settings))
+    summ = summary(cohort, settings)
+    if settings.model.get("mixed"):
+        summ.update(map_counts(cohort.maps, design.participants, settings.model.get("within")))
+        summ["mixed_columns"] = list(mixed.X.columns)
+        summ["random_effects"] = list(mixed.z_names)
+        summ["glm_excluded"] = list(excluded)
+    return Prepared(settings, cohort, design, plans, tindex, summ, mixed, glm_design, excluded)
+
+
+def _model_of(spec, settings) -> str:
+    return spec.model or ("mixed" if settings.model.get("mixed") else "glm")
+
+
+def _models(settings, cohort, parts, design, problems, where):
+    """The mixed design (``mixed = true``) and the GLM contrasts' design.
+
+    With ``mixed = true`` the GLM contrasts (``model = "glm"``) use only the
+    participants that have a map of every condition: the summary-statistic
+    approach needs them all.  They are listed, never dropped silently.
+    """
+    if design is None or not settings.model.get("mixed"):
+        return None, design, []
+    mixed = build_mixed_design(settings, design, cohort.maps, problems, f"{settings.path} [model]")
+    glm_specs = [s for s in settings.contrasts if _model_of(s, settings) == "glm"]
+    excluded = incomplete_participants(cohort.maps, design.participants,
+                                       settings.model.get("within")) if glm_specs else []
+    glm_design = design
+    if excluded:
+        keep = parts[~parts[ID].astype(str).isin(excluded)].reset_index(drop=True)
+        glm_design = build_design(settings, keep, problems,
+                                  f"{where} (GLM contrasts, participants with every condition)")
+    return mixed, glm_design, excluded
 
 
 #: largest magnitude the reduced maps may reach: the resampling squares float32
@@ -147,45 +190,56 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     inf = inference_settings(s, resamples, seed)
     within_col = s.model.get("within")
     conditions = sorted(map(str, cohort.maps[within_col].unique())) if within_col else []
-    participants = design.participants
-    blocks = (cohort.participants.loc[participants, inf["blocks"]].astype(str).to_numpy()
-              if inf.get("blocks") else None)
+    glm = prep.glm_design or design
     tf = inf["tfce"]
     spec = InferenceSpec(
         correction=inf["correction"], n_resamples=inf["resamples"], seed=inf["seed"],
-        forming_p=inf["forming_p"], tails=inf["tails"], alpha=inf["alpha"], blocks=blocks,
+        forming_p=inf["forming_p"], tails=inf["tails"], alpha=inf["alpha"],
         tfce=TfceOptions(tf["extent_power"], tf["height_power"], tf["steps"]))
     new_progress = _reporter(progress)
     adjacency = cohort.grid.adjacency(inf["neighbors"])
     samples = slice(int(prep.time_index[0]), int(prep.time_index[-1]) + 1)
     n_features = cohort.grid.n_sources * (samples.stop - samples.start)
-    plan_memory = _memory_plan(memory, len(participants), n_features, workers, scheduler, s)
+    mixed = any(p.model == "mixed" for p in prep.plans)
+    plan_memory = _memory_plan(memory, len(glm.participants), n_features, workers, scheduler,
+                               s, mixed=mixed)
     results, timings = [], {}
+    fitted = _fit_mixed(prep, samples, timings,
+                        _stage(new_progress, "fitting the mixed model", "feature"))
     for plan in prep.plans:
         t0 = time.perf_counter()
-        W = reduction_matrix(cohort.maps, participants, within_col, plan.within, conditions)
-        data = reduce_maps(cohort.Y, W, samples, chunk_bytes=plan_memory.chunk_bytes,
-                           out=plan_memory.array((len(participants),) + (cohort.grid.n_sources,
-                                                 samples.stop - samples.start)),
-                           progress=_stage(new_progress, f"reducing {plan.name}", "source"))
-        t1 = time.perf_counter()
-        kernel = OLSKernel(data.reshape(len(participants), -1), design.X.to_numpy(),
-                           plan.weights, scheme=plan.scheme)
-        kernel.allocate = plan_memory.array
         execution = Execution(
             backend="dask" if scheduler else "threads", n_jobs=workers,
             scheduler=scheduler, map_budget=plan_memory.map_budget,
             progress=_stage(new_progress, f"resampling {plan.name}", "resample") or False,
             checkpoint=checkpoint.contrast(plan.name) if checkpoint is not None else None)
-        inference = infer(kernel, adjacency, spec, execution)
-        results.append(ContrastResult(
-            name=plan.name, description=plan.description,
-            inference=inference, data=data,
-            participants=participants, design=design.X, weights=plan.weights,
-            within=plan.within))
+        if plan.model == "mixed":
+            t1 = t0
+            result = _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency,
+                                     inf, conditions)
+        else:
+            ids = glm.participants
+            W = reduction_matrix(cohort.maps, ids, within_col, plan.within, conditions)
+            data = reduce_maps(cohort.Y, W, samples, chunk_bytes=plan_memory.chunk_bytes,
+                               out=plan_memory.array((len(ids),) + (cohort.grid.n_sources,
+                                                     samples.stop - samples.start)),
+                               progress=_stage(new_progress, f"reducing {plan.name}", "source"))
+            t1 = time.perf_counter()
+            kernel = OLSKernel(data.reshape(len(ids), -1), glm.X.to_numpy(),
+                               plan.weights, scheme=plan.scheme)
+            kernel.allocate = plan_memory.array
+            result = ContrastResult(
+                name=plan.name, description=plan.description,
+                inference=infer(kernel, adjacency, _with_blocks(spec, cohort, ids, inf),
+                                execution),
+                data=data, participants=ids, design=glm.X, weights=plan.weights,
+                within=plan.within)
+        results.append(result)
         timings[plan.name] = round(time.perf_counter() - t0, 3)
-        log.info(f"contrast {plan.name}: reduction {t1 - t0:.1f} s, model and "
-                 f"{inference.n_resamples} resamples {time.perf_counter() - t1:.1f} s")
+        log.info(f"contrast {plan.name}: "
+                 + (f"reduction {t1 - t0:.1f} s, " if plan.model != "mixed" else "")
+                 + f"model and {result.inference.n_resamples} resamples "
+                 f"{time.perf_counter() - t1:.1f} s")
     settings_dict = s.as_dict()
     settings_dict["inference"] = inf
     settings_dict["check_summary"] = prep.summary
@@ -194,7 +248,68 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     return AnalysisResult(title=s.title, grid=cohort.grid,
                           time_axis=cohort.time_axis.subset(prep.time_index), contrasts=results,
                           participants=cohort.participants, maps=cohort.maps,
-                          settings=settings_dict, timings=timings)
+                          settings=settings_dict, timings=timings,
+                          model=fitted["summary"] if fitted else None)
+
+
+def _with_blocks(spec, cohort, ids, inf):
+    """The inference spec with the exchangeability blocks of these participants."""
+    import dataclasses
+    blocks = (cohort.participants.loc[ids, inf["blocks"]].astype(str).to_numpy()
+              if inf.get("blocks") else None)
+    return dataclasses.replace(spec, blocks=blocks)
+
+
+def _fit_mixed(prep, samples, timings, progress=None):
+    """Fit the mixed model once at every source x sample (``mixed = true``)."""
+    from .stats.mixed import MixedCore
+    from .stats.mixed_fit import fit_features
+    from .stats.mixed_inference import variance_components
+    if prep.mixed is None or not any(p.model == "mixed" for p in prep.plans):
+        return None
+    t0 = time.perf_counter()
+    Y = prep.cohort.Y
+    Yf = np.ascontiguousarray(Y[:, :, samples], dtype=np.float32).reshape(Y.shape[0], -1)
+    core = MixedCore(prep.mixed.stats_design())
+    reml = prep.settings.model.get("estimation", "reml") == "reml"
+    fit = fit_features(core, Yf, reml=reml, progress=progress)
+    vc = variance_components(fit, Yf)
+    timings["mixed_model_fit"] = round(time.perf_counter() - t0, 3)
+    log.info(f"mixed model: {Yf.shape[1]} features fitted in {timings['mixed_model_fit']:.1f} s")
+    shape = (Y.shape[1], Yf.shape[1] // Y.shape[1])
+    summary = {"method": "REML" if reml else "ML", "counts": fit.counts(),
+               "code": fit.code.reshape(shape), "iterations": fit.iterations.reshape(shape),
+               "sd_residual": vc["sd_residual"].reshape(shape), "icc": vc["icc"].reshape(shape),
+               "sd": {n: vc["sd"][j].reshape(shape) for j, n in enumerate(prep.mixed.z_names)},
+               "corr": {(prep.mixed.z_names[a], prep.mixed.z_names[b]): r.reshape(shape)
+                        for (a, b), r in vc["corr"].items()},
+               "columns": list(prep.mixed.X.columns), "random": list(prep.mixed.z_names),
+               "n_maps": int(Yf.shape[0]), "n_participants": len(prep.mixed.participants),
+               "n_layouts": int(len(np.unique(prep.mixed.layout))),
+               "design": prep.mixed.X, "maps": prep.cohort.maps}
+    return {"fit": fit, "Y": Yf, "summary": summary}
+
+
+def _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency, inf, conditions):
+    """One contrast of the mixed model: kernel, inference, the per-participant measure."""
+    from .inputs.mixed_design import reducible
+    from .stats.inference import infer
+    from .stats.mixed_kernel import MixedKernel
+    from .stats.reduction import reduce_maps
+    cohort, md = prep.cohort, prep.mixed
+    within_col = prep.settings.model.get("within")
+    kernel = MixedKernel(fitted["fit"], fitted["Y"], plan.weights, scheme=plan.scheme)
+    result = infer(kernel, adjacency, _with_blocks(spec, cohort, md.participants, inf), execution)
+    # descriptive per-participant measure (cluster time courses): participants whose
+    # maps allow the within weights; the model itself used every map
+    ok = reducible(cohort.maps, md.participants, within_col, plan.within, conditions)
+    ids = [p for p, k in zip(md.participants, ok) if k]
+    W = reduction_matrix(cohort.maps, ids, within_col, plan.within, conditions)
+    data = reduce_maps(cohort.Y, W, samples)
+    return ContrastResult(name=plan.name, description=plan.description, inference=result,
+                          data=data, participants=list(md.participants), design=md.X,
+                          weights=plan.weights, within=plan.within, model="mixed",
+                          data_participants=ids)
 
 
 def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
@@ -325,8 +440,15 @@ def _stage(new_progress, desc, unit):
     return report
 
 
-def _memory_plan(memory, n_units, n_features, workers, scheduler, settings):
+def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixed=False):
     from .stats.memory import MemoryTooSmall, plan
+    if memory is not None and mixed:
+        problems = ProblemList()
+        problems.add("--memory", "the memory bound covers the summary-statistic GLM only; the "
+                     "mixed model keeps every map and its per-participant products in memory",
+                     "run without --memory, or test the contrasts with model = \"glm\" "
+                     "(or mixed = false) when the bound is needed")
+        raise InputError(problems)
     try:
         return plan(memory, n_units, n_features, workers=workers, distributed=bool(scheduler))
     except MemoryTooSmall as exc:
@@ -374,7 +496,7 @@ def run_record(settings, prep, result, command, workers) -> dict:
         "inputs_sha256": prep.cohort.inputs,
         "cache_hit": prep.cohort.cache_hit,
         "cohort": prep.summary,
-        "contrasts": [{"name": c.name, "description": c.description,
+        "contrasts": [{"name": c.name, "description": c.description, "model": c.model,
                        "statistic": c.inference.kind, "df": list(c.inference.df),
                        "scheme": c.inference.scheme, "resamples": c.inference.n_resamples,
                        "exact": c.inference.exact,

@@ -1,4 +1,4 @@
-"""Power and specificity on the demo cohort (default size).
+"""Power and specificity on the demo cohort (default size), GLM and mixed model.
 
 The demo cohort is simulated with known ground truth (groupsrc.simulate): a
 condition effect, a group-by-condition effect, an age effect, and regions
@@ -18,7 +18,12 @@ from groupsrc.cli import main
 
 TRUTH = {"rare_minus_frequent": "condition_effect",
          "group_by_tone": "group_by_condition",
-         "age_slope": "age_effect"}
+         "age_slope": "age_effect",
+         # the same effects tested by the mixed model on every map (issue 9): the cohort
+         # has a participant without frequent-tone maps and uneven sessions
+         "rare_minus_frequent_mixed": "condition_effect",
+         "group_by_tone_mixed": "group_by_condition",
+         "age_slope_mixed": "age_effect"}
 
 
 @pytest.fixture(scope="module")
@@ -83,3 +88,18 @@ def test_cluster_table_agrees_with_label_image(demo_results, contrast):
         assert [row.peak_x_mm, row.peak_y_mm, row.peak_z_mm] == pytest.approx(xyz.tolist(), abs=1e-3)
         assert row.peak_stat == pytest.approx(float(stat[pk]), rel=1e-4)
         assert row.mass == pytest.approx(float(stat[where].sum()), rel=1e-3)
+
+
+def test_report_shows_the_glm_and_the_mixed_model(demo_results):
+    cohort, out = demo_results
+    html = (out / "report.html").read_text(encoding="utf-8")
+    for name in TRUTH:
+        assert f'id="c-{name}"' in html
+    assert "summary-statistic GLM" in html and "Fit codes" in html
+    summary = pd.read_json(out / "analysis_summary.json", typ="series")
+    maps = pd.read_csv(cohort / "maps.tsv", sep="\t")
+    # the GLM contrasts leave out exactly the participants lacking a condition
+    lacking = sorted(set(maps.participant_id) - set(
+        maps[maps.condition == "frequent"].participant_id))
+    assert lacking and summary["cohort"]["glm_excluded"] == lacking
+    assert maps.session.max() == 3

@@ -113,14 +113,6 @@ def test_non_finite_time_override_is_refused(cohort_copy, tmp_path, capsys, key,
     assert_refused(cohort_copy, capsys, [f"[cohort] {key}"], out=tmp_path / "out")
 
 
-def test_mixed_true_is_refused(cohort_copy, tmp_path, capsys):
-    # the mixed model is documented as not available in 0.1; check and run must say so
-    _set(cohort_copy, "[model]", "mixed = true")
-    assert_refused(cohort_copy, capsys,
-                   ["[model] mixed", "mixed model is not available", "set mixed = false"],
-                   out=tmp_path / "out")
-
-
 def test_contrast_names_differing_by_case_are_refused(cohort_copy, tmp_path, capsys):
     body = cohort_copy.read_text().replace('name = "age_slope"', 'name = "Rare_Minus_Frequent"')
     cohort_copy.write_text(body)

@@ -11,8 +11,18 @@ For each kernel factory in KERNELS on small data:
   (the project's reproducibility promise, bit for bit);
 - the identity comes first and its statistic is the observed one.
 
-A factory returns ``(kernel, refit)``: ``refit(Y_rows)`` gives the reference
-statistic of data ``Y_rows`` (n, features) -- statsmodels OLS here.
+A factory returns ``(kernel, X, C, Y)``; :func:`_reference` gives the outside
+reference for that kind of kernel -- statsmodels OLS for the OLS kernel,
+statsmodels MixedLM for the mixed-model kernel (``X`` is then its
+``MixedDesign``).  The mixed kernel scores every data set, the observed one
+included, with the variance components held at the estimates of the model
+restricted to L b = 0 (groupsrc/stats/mixed_kernel.py): those estimates are
+checked against a free MixedLM fit of the restricted model, and the observed
+and rearranged data sets are refitted by MixedLM with the covariance of the
+random effects held at them (``free``); the estimate and its standard error
+are those of a free MixedLM fit of the full model.  The statistic is the z of
+equal p: the reference t is converted with scipy (t and normal tails) at the
+kernel's Satterthwaite df (those df are checked in test_mixed_satterthwaite).
 """
 
 from __future__ import annotations
@@ -22,6 +32,11 @@ import pytest
 import statsmodels.api as sm
 
 from groupsrc.stats.kernels import OLSKernel, StatisticKernel
+from groupsrc.stats.mixed import MixedCore, lambda_of
+from groupsrc.stats.mixed_fit import fit_features
+from groupsrc.stats.mixed_kernel import MixedKernel
+
+from _mixed_data import simulate, statsmodels_reml, unbalanced_design
 
 
 def _ols_refit(X, C):
@@ -76,10 +91,141 @@ def ols_three_groups_f():
     return OLSKernel(Y, X, C, scheme="permutation"), X, C, Y
 
 
+def _mixed(design, L, scheme, seed):
+    # strong participant variance: interior fits (statsmodels' fixed-covariance
+    # refit is unreliable at an exactly zero variance)
+    Y = simulate(design, 5, seed=seed, sd_random=(2.0, 1.2), effect=None)
+    fit = fit_features(MixedCore(design), Y)
+    assert np.all(fit.code == 0)
+    return MixedKernel(fit, Y, L, scheme=scheme), design, L, Y
+
+
+def mixed_within_sign_flips():
+    """Random intercept; a condition effect: whole-participant sign flips."""
+    design = unbalanced_design(10, seed=21, missing=(3,))
+    return _mixed(design, np.array([0, 1.0, 0, 0.5, 0, 0]), "sign-flip", 22)
+
+
+def mixed_between_permutations():
+    """Random intercept + a map covariate; a group effect: whole-participant
+    permutations within map layouts."""
+    design = unbalanced_design(12, seed=23, missing=(), max_sessions=2, map_covariate=True)
+    return _mixed(design, np.array([0, 0, 1.0, 0.5, 0, 0, 0]), "permutation", 24)
+
+
+def mixed_slopes_three_groups_f():
+    """Random intercept + condition slope; three groups: F, permutations."""
+    design = unbalanced_design(12, seed=26, missing=(), max_sessions=2, random_slope=True,
+                               groups=3)
+    L = np.zeros((2, design.X.shape[1]))
+    L[0, 2], L[1, 4] = 1.0, 1.0
+    return _mixed(design, L, "permutation", 26)
+
+
 KERNELS = {"OLS one-sample": ols_one_sample,
            "OLS sign flips + covariate (Freedman-Lane)": ols_sign_flip_with_covariate,
            "OLS two groups + covariate (Freedman-Lane)": ols_two_groups_with_covariate,
-           "OLS F, three groups": ols_three_groups_f}
+           "OLS F, three groups": ols_three_groups_f,
+           "mixed, within effect, sign flips": mixed_within_sign_flips,
+           "mixed, between effect + map covariate, permutations": mixed_between_permutations,
+           "mixed, random slope, F, permutations": mixed_slopes_three_groups_f}
+
+
+class _OlsReference:
+    def __init__(self, kernel, X, C):
+        self.kernel, self.X, self.C = kernel, X, C
+
+    def observed(self, Y):
+        """(statistic, estimate, se) per feature by statsmodels OLS."""
+        ref = [sm.OLS(Y[:, j], self.X).fit().t_test(self.C) for j in range(Y.shape[1])]
+        est = [float(np.squeeze(r.effect)) for r in ref] if np.ndim(self.C) == 1 else None
+        se = [float(np.squeeze(r.sd)) for r in ref] if np.ndim(self.C) == 1 else None
+        return _ols_refit(self.X, self.C)(Y), est, se
+
+    def resampled(self, Y, row):
+        return _ols_refit(self.X, self.C)(_rearranged(self.kernel, self.X, self.C, Y, row))
+
+
+class _MixedReference:
+    """statsmodels MixedLM (REML) refits; z of equal p at the kernel's df (scipy)."""
+
+    def __init__(self, kernel, design, L):
+        self.kernel, self.d, self.L = kernel, design, np.atleast_2d(L)
+        core = kernel.core
+        Lam = lambda_of(kernel.null_fit().theta, core.q)
+        self.Psi = core.psi_raw(np.einsum("ijf,kjf->ikf", Lam, Lam))   # relative, raw Z
+
+    def _z(self, res, j):
+        from scipy import stats
+        nu = self.kernel._nu[j]
+        if self.L.shape[0] == 1:
+            t = float(np.squeeze(res.t_test(self.L).tvalue))
+            return float(np.sign(t) * stats.norm.isf(stats.t.sf(abs(t), nu))), t
+        # statsmodels' f_test takes weights over every parameter (fixed, then variance)
+        pad = np.zeros((self.L.shape[0], len(res.params) - self.L.shape[1]))
+        Fv = float(np.squeeze(res.f_test(np.hstack([self.L, pad])).fvalue))
+        return float(stats.norm.isf(stats.f.sf(Fv, self.L.shape[0], nu))), Fv
+
+    def _fixed(self, y, j):
+        from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
+        d = self.d
+        q = d.Z.shape[1]
+        free = MixedLMParams.from_components(np.ones(d.X.shape[1]), np.zeros((q, q)))
+        start = MixedLMParams.from_components(np.zeros(d.X.shape[1]), self.Psi[:, :, j])
+        return MixedLM(y, d.X, d.groups, exog_re=d.Z).fit(reml=True, free=free,
+                                                            start_params=start, method=["bfgs"])
+
+    _cache = {}
+
+    def observed(self, Y):
+        key = (Y.tobytes(), self.L.tobytes())
+        if key not in self._cache:
+            self._cache[key] = self._observed(Y)
+        return self._cache[key]
+
+    def _observed(self, Y):
+        if self.kernel._nu is None:
+            self.kernel.observed("two")
+        z, est, se = [], [], []
+        for j in range(Y.shape[1]):
+            _, fixed = statsmodels_reml(Y[:, j], self.d)
+            z.append(self._z(self._fixed(Y[:, j].astype(float), j), j)[0])
+            if self.L.shape[0] == 1:
+                est.append(float(self.L[0] @ np.asarray(fixed.fe_params)))
+                se.append(float(np.sqrt(self.L[0] @ fixed.cov_params()[:len(self.L[0]),
+                                                                         :len(self.L[0])]
+                                        @ self.L[0])))
+        return np.array(z), (est or None), (se or None)
+
+    def resampled(self, Y, row):
+        """Freedman-Lane data in the model's metric (GLS fit under L b = 0 with the
+        kernel's covariance), rearranged by whole participants, refitted."""
+        d, L = self.d, self.L
+        X, Z, g = np.asarray(d.X), np.asarray(d.Z), np.asarray(d.groups)
+        Nc = np.linalg.svd(L)[2][np.linalg.matrix_rank(L):].T
+        out = []
+        for j in range(Y.shape[1]):
+            V = np.eye(len(g)) + Z @ self.Psi[:, :, j] @ Z.T
+            V[g[:, None] != g[None, :]] = 0.0
+            Vi = np.linalg.inv(V)
+            Xz = X @ Nc
+            bz = np.linalg.solve(Xz.T @ Vi @ Xz, Xz.T @ Vi @ Y[:, j])
+            rz = Y[:, j] - Xz @ bz
+            ystar = Xz @ bz
+            if self.kernel.rearr.kind == "sign-flip":
+                ystar = ystar + row[g] * rz
+            else:                       # slot i takes participant row[i]'s maps, in order
+                for i in range(len(row)):
+                    ystar[g == i] += rz[g == row[i]]
+            out.append(self._z(self._fixed(ystar, j), j)[0])
+        return np.array(out)
+
+
+def _reference(kernel, X, C):
+    """The outside reference for this kind of kernel."""
+    if isinstance(kernel, MixedKernel):
+        return _MixedReference(kernel, X, C)
+    return _OlsReference(kernel, X, C)
 
 
 @pytest.fixture(params=list(KERNELS), ids=list(KERNELS))
@@ -118,14 +264,33 @@ def test_kernel_declares_the_contract(case):
 def test_observed_equals_a_direct_refit(case, tails):
     kernel, X, C, Y = case
     obs = kernel.observed(tails)
-    np.testing.assert_allclose(obs.statistic, _ols_refit(X, C)(Y), rtol=1e-5)
+    stat, est, se = _reference(kernel, X, C).observed(Y)
+    np.testing.assert_allclose(obs.statistic, stat, rtol=1e-5)
     assert obs.p_uncorrected.shape == (kernel.n_features,)
     assert np.all((obs.p_uncorrected >= 0) & (obs.p_uncorrected <= 1))
     if kernel.kind == "t":
-        ref = [sm.OLS(Y[:, j], X).fit().t_test(C) for j in range(Y.shape[1])]
-        np.testing.assert_allclose(obs.estimate, [float(np.squeeze(r.effect)) for r in ref],
-                                   rtol=1e-5)
-        np.testing.assert_allclose(obs.se, [float(np.squeeze(r.sd)) for r in ref], rtol=1e-5)
+        np.testing.assert_allclose(obs.estimate, est, rtol=1e-5)
+        np.testing.assert_allclose(obs.se, se, rtol=1e-4)
+
+
+MIXED = [name for name in KERNELS if name.startswith("mixed")]
+
+
+@pytest.mark.parametrize("name", MIXED)
+def test_mixed_null_model_variance_matches_statsmodels(name):
+    """The restricted model's variance components (relative to the residual variance)
+    against a free statsmodels MixedLM REML fit of X N, N a basis of {b : L b = 0}
+    (reference library; rtol 1e-3 as for the full model in test_mixed_core)."""
+    kernel, d, L, Y = KERNELS[name]()
+    from types import SimpleNamespace
+    L = np.atleast_2d(L)
+    Nc = np.linalg.svd(L)[2][np.linalg.matrix_rank(L):].T
+    Psi = _MixedReference(kernel, d, L).Psi
+    d0 = SimpleNamespace(X=np.asarray(d.X) @ Nc, Z=d.Z, groups=d.groups)
+    for j in range(Y.shape[1]):
+        best, _ = statsmodels_reml(Y[:, j], d0)
+        np.testing.assert_allclose(Psi[:, :, j], np.asarray(best.cov_re) / best.scale,
+                                   rtol=1e-3, atol=1e-6)
 
 
 def test_resampled_statistics_equal_direct_refits(case):
@@ -134,9 +299,10 @@ def test_resampled_statistics_equal_direct_refits(case):
     kernel.prepare(rearr)
     maps = kernel.resampled(0, rearr.n_resamples, np.empty((rearr.n_resamples,
                                                            kernel.n_features), np.float32))[0]
-    refit = _ols_refit(X, C)
-    for i in range(rearr.n_resamples):
-        ref = refit(_rearranged(kernel, X, C, Y, rearr.matrix[i]))
+    reference = _reference(kernel, X, C)
+    step = 1 if isinstance(kernel, OLSKernel) else 4      # MixedLM refits are slow
+    for i in range(0, rearr.n_resamples, step):
+        ref = reference.resampled(Y, rearr.matrix[i])
         np.testing.assert_allclose(maps[i], ref, rtol=2e-4, atol=2e-4,
                                    err_msg=f"resample {i}")
 

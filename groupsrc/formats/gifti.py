@@ -39,6 +39,7 @@ map                intent                      parameters (array metadata)
 =================  ==========================  ===========================
 t statistic        NIFTI_INTENT_TTEST          intent_p1 = df
 F statistic        NIFTI_INTENT_FTEST          intent_p1 = df1, intent_p2 = df2
+z (mixed model)    NIFTI_INTENT_ZSCORE         none (df per vertex: the df map)
 p values           NIFTI_INTENT_PVAL           none
 estimate, effect   NIFTI_INTENT_ESTIMATE       none
 cluster labels     NIFTI_INTENT_LABEL (int32)  the file's label table

@@ -157,6 +157,7 @@ def affine_difference(a: np.ndarray, b: np.ndarray) -> str:
 INTENT_NONE = 0
 INTENT_TTEST = 3
 INTENT_FTEST = 4
+INTENT_ZSCORE = 5
 INTENT_PVAL = 22
 INTENT_ESTIMATE = 1001
 INTENT_LABEL = 1002
@@ -204,7 +205,14 @@ def make_image(values, grid: VolumeGrid, time_axis: TimeAxis | None, *, dtype, f
 
 
 def statistic_image(statistic, grid, time_axis, kind, df, name):
-    """t (intent 3, p1 = df) or F (intent 4, p1 = df1, p2 = df2) map, float32."""
+    """t (intent 3, p1 = df) or F (intent 4, p1 = df1, p2 = df2) map, float32; ``kind``
+    "z": a z map (intent 5, no parameter), e.g. the z of equal p of a mixed model."""
+    if kind == "z":
+        r = _robust_abs(statistic)
+        return make_image(statistic, grid, time_axis, dtype=np.float32, intent=INTENT_ZSCORE,
+                          intent_name="z of equal p",
+                          descrip=f"groupsrc z (same p as the test), contrast {name}",
+                          cal=(-r, r))
     if kind == "t":
         r = _robust_abs(statistic)
         return make_image(statistic, grid, time_axis, dtype=np.float32, intent=INTENT_TTEST,
@@ -264,7 +272,8 @@ def cluster_summary_image(statistic, labels, keep, grid, kind, name):
     vals = cluster_summary_values(statistic, labels, keep)
     r = _robust_abs(vals[vals != 0]) if np.any(vals != 0) else 1.0
     return make_image(vals, grid, None, dtype=np.float32, intent=INTENT_NONE,
-                      intent_name=f"peak {kind} in cl", cal=(-r, r) if kind == "t" else (0.0, r),
+                      intent_name=f"peak {kind} in cl",
+                      cal=(-r, r) if kind in ("t", "z") else (0.0, r),
                       descrip=f"groupsrc peak {kind} over cluster span, contrast {name}")
 
 

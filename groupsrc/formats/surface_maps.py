@@ -121,6 +121,11 @@ class SurfaceMaps:
         return out
 
     def statistic(self, folder, stem, values, kind, df, name):
+        """t (p1 = df), F (p1, p2 = df) or ``kind`` "z": the z of equal p of a mixed
+        model (NIFTI_INTENT_ZSCORE, no parameter; its per-source df are a map of their own)."""
+        if kind == "z":
+            return self._write(folder, stem, values, name=f"z of equal p, contrast {name}",
+                               intent="NIFTI_INTENT_ZSCORE", meta={"statistic": "z"})
         if kind == "t":
             return self._write(folder, stem, values, name=f"t statistic, contrast {name}",
                                intent="NIFTI_INTENT_TTEST", params=(df[0],),

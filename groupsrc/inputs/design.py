@@ -146,9 +146,11 @@ class ContrastPlan:
     name: str
     description: str
     within: dict | None      # condition -> weight, or None (average of conditions)
-    weights: np.ndarray      # (p,) or (k, p)
+    weights: np.ndarray      # (p,) or (k, p): over the between design (GLM) or the
+                             # mixed model's columns (model = "mixed")
     kind: str                # "t" or "F"
     scheme: str              # "sign-flip" or "permutation"
+    model: str = "glm"       # "glm" or "mixed"
 
 
 def _plain(exc) -> str:

@@ -55,6 +55,18 @@ def _probability(v) -> bool:
     return _finite(v) and 0 < v < 1
 
 
+def _names(v) -> bool:
+    """A list of distinct, non-empty column names."""
+    return (all(isinstance(x, str) and x.strip() for x in v)
+            and len({x.strip() for x in v}) == len(v))
+
+
+#: how the mixed model's variance components are estimated
+ESTIMATIONS = ("reml", "ml")
+#: the model a contrast is tested with
+MODELS = ("glm", "mixed")
+
+
 def _gifti_name(v) -> bool:
     return v.strip().lower().endswith(".gii")
 
@@ -132,7 +144,16 @@ SCHEMA = {
     "model": {
         "between": Key(str, "1", "Wilkinson right-hand side over participants columns"),
         "within": Key(str, None, "maps-table column holding the condition, optional"),
-        "mixed": Key(bool, False, "mass-univariate mixed model (not yet available)"),
+        "mixed": Key(bool, False, "mass-univariate mixed model on all maps (REML)"),
+        "map_covariates": Key(list, [], "mixed model: numeric maps-table columns as map-level "
+                              "fixed effects", _names, "must be a list of distinct column names",
+                              'e.g. map_covariates = ["trials"]'),
+        "random_slopes": Key(list, [], "mixed model: within terms (the within column or map "
+                             "covariates) whose effect varies by participant", _names,
+                             "must be a list of distinct names",
+                             'e.g. random_slopes = ["condition"]'),
+        "estimation": Key(str, "reml", "mixed model: " + " | ".join(ESTIMATIONS),
+                          choices=ESTIMATIONS),
     },
     "contrasts": {
         "name": Key(str, None, "contrast name (letters, digits, _ and -)"),
@@ -141,6 +162,8 @@ SCHEMA = {
         "compare": Key(dict, None, "{factor = [level_a, level_b, ...]}"),
         "slope": Key(str, None, "numeric participants column"),
         "weights": Key(dict, None, "raw weights over design-matrix coefficient names"),
+        "model": Key(str, None, "glm | mixed: the model testing this contrast; default: "
+                     "mixed when [model] mixed = true", choices=MODELS),
     },
     "inference": {
         "correction": Key(str, "cluster-mass", " | ".join(CORRECTIONS), choices=CORRECTIONS),
@@ -186,6 +209,7 @@ class ContrastSpec:
     compare: dict | None = None
     slope: str | None = None
     weights: dict | None = None
+    model: str | None = None
 
 
 @dataclass
@@ -338,6 +362,7 @@ def settings_from_dict(raw: dict, path: Path, problems: ProblemList) -> Settings
                      "give both the atlas image and its lookup table, or neither")
     _check_surface_keys(cohort, where, problems)
 
+    _check_mixed_keys(model, where, problems)
     contrasts = []
     raw_contrasts = raw.get("contrasts", [])
     if not isinstance(raw_contrasts, list):
@@ -433,7 +458,7 @@ def _contrast(rc, i, where, model, names, problems):
         return None
     return ContrastSpec(name=name, description=c.get("description") or "",
                         within=c.get("within"), compare=c.get("compare"),
-                        slope=c.get("slope"), weights=c.get("weights"))
+                        slope=c.get("slope"), weights=c.get("weights"), model=c.get("model"))
 
 
 def _check_name(name, cwhere, names, problems):
@@ -455,6 +480,41 @@ def _check_name(name, cwhere, names, problems):
                          "write the same results folder", "rename one of them")
     else:
         names[key] = name
+
+
+def _check_mixed_keys(model, where, problems):
+    """The mixed model's keys: what needs ``mixed = true``, and what a slope may name."""
+    covs = [x.strip() for x in model.get("map_covariates") or []]
+    slopes = [x.strip() for x in model.get("random_slopes") or []]
+    model["map_covariates"], model["random_slopes"] = covs, slopes
+    if not model.get("mixed"):
+        why = ("the summary-statistic GLM averages each participant's maps of a condition "
+               "into one before the model, so ")
+        if covs:
+            problems.add(f"{where} [model] map_covariates",
+                         "needs mixed = true: " + why + "a covariate that differs between "
+                         "maps of one participant has nothing left to act on",
+                         "set mixed = true under [model], or remove map_covariates")
+        if slopes:
+            problems.add(f"{where} [model] random_slopes",
+                         "needs mixed = true: " + why + "an effect that varies by "
+                         "participant cannot be separated from the residual",
+                         "set mixed = true under [model], or remove random_slopes")
+        if model.get("estimation") != "reml":
+            problems.add(f"{where} [model] estimation", "applies to the mixed model only",
+                         "set mixed = true under [model], or remove estimation")
+        return
+    terms = ([model["within"]] if model.get("within") else []) + covs
+    for term in slopes:
+        if term not in terms:
+            problems.add(f"{where} [model] random_slopes",
+                         f"'{term}' is neither the within column nor a map covariate",
+                         closest(term, terms) or (f"choose among {', '.join(terms)}" if terms
+                                                  else "set [model] within or map_covariates"))
+    for term in covs:
+        if term == model.get("within"):
+            problems.add(f"{where} [model] map_covariates",
+                         f"'{term}' is the within column", "list it in one place only")
 
 
 def _check_contrast_content(c, cwhere, model, problems):
@@ -500,3 +560,15 @@ def _check_contrast_content(c, cwhere, model, problems):
     if c.get("within") and not model.get("within"):
         problems.add(cwhere, "has within weights but [model] within is not set",
                      "add within = \"condition\" under [model]")
+    chosen = c.get("model") or ("mixed" if model.get("mixed") else "glm")
+    if c.get("model") == "mixed" and not model.get("mixed"):
+        problems.add(f"{cwhere} model", "'mixed' needs mixed = true under [model]",
+                     "set mixed = true under [model], or remove model from the contrast")
+    covs = model.get("map_covariates") or []
+    if c.get("slope") in covs and chosen == "glm":
+        problems.add(f"{cwhere} slope", f"'{c['slope']}' is a map covariate, which only the "
+                     "mixed model has", "remove model = \"glm\" from the contrast")
+    if c.get("slope") in covs and c.get("within"):
+        problems.add(cwhere, f"a slope of the map covariate '{c['slope']}' cannot have within "
+                     "weights: map covariates enter the mixed model as main effects",
+                     "remove within from this contrast")

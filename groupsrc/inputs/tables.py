@@ -200,8 +200,9 @@ def model_columns(settings: Settings) -> list:
     """participants columns named by the between formula and the contrasts."""
     from .design import formula_variables
     cols = list(formula_variables(settings.model.get("between") or "1"))
+    map_covs = map_covariates(settings)
     for c in settings.contrasts:
-        if c.slope:
+        if c.slope and c.slope not in map_covs:
             cols.append(c.slope)
         if c.compare:
             cols.extend(c.compare.keys())
@@ -212,6 +213,11 @@ def model_columns(settings: Settings) -> list:
         if c not in seen:
             seen.append(c)
     return seen
+
+
+def map_covariates(settings: Settings) -> list:
+    """Maps-table columns the mixed model uses as map-level covariates."""
+    return list(settings.model.get("map_covariates") or []) if settings.model.get("mixed") else []
 
 
 def check_tables(settings: Settings, problems: ProblemList):
@@ -283,6 +289,8 @@ def _check_maps(settings, maps, mpath, problems):
         for row in maps.index[maps[col].isin(MISSING)]:
             problems.add(f"{mpath} row {row} column '{col}'", "missing value",
                          "fill it in or delete the row")
+    # mixed model: maps of one participant and condition may differ by a map covariate
+    key += [c for c in map_covariates(settings) if c in maps.columns and c not in key]
     complete = ~maps[key].isin(MISSING).any(axis=1)
     dup = maps.duplicated(subset=key, keep=False) & complete
     if dup.any():
@@ -291,6 +299,31 @@ def _check_maps(settings, maps, mpath, problems):
             problems.add(f"{mpath} rows {rows_text(grp.index)}", f"duplicate map for ({what})",
                          "keep one row per participant, condition and session"
                          + ("" if "session" in maps.columns else ", or add a 'session' column"))
+    return _check_map_covariates(settings, maps, mpath, problems)
+
+
+def _check_map_covariates(settings, maps, mpath, problems):
+    """Map covariates: present, numeric in every cell (named problems), not constant."""
+    covs = map_covariates(settings)
+    missing = [c for c in covs if c not in maps.columns]
+    for col in missing:
+        problems.add(f"{mpath} column '{col}'",
+                     "named by [model] map_covariates but missing from the maps table",
+                     closest(col, maps.columns) or f"present: {', '.join(maps.columns)}")
+    present = [c for c in covs if c in maps.columns]
+    if not present:
+        return maps
+    typed = _typed_columns(maps[present], present, mpath, problems)
+    for col in present:
+        if not pd.api.types.is_numeric_dtype(typed[col]):
+            problems.add(f"{mpath} column '{col}'", "a map covariate must be numeric, but the "
+                         "column holds words", "write a number in every row (e.g. 42 or 0.5)")
+        elif typed[col].notna().all() and typed[col].nunique() == 1:
+            problems.add(f"{mpath} column '{col}'",
+                         f"map covariate '{col}' has the same value in every map, so the "
+                         "model cannot estimate it", "remove it from [model] map_covariates")
+        else:
+            maps[col] = typed[col]
     return maps
 
 
@@ -315,6 +348,8 @@ def _cross_check(settings, parts, maps, ppath, mpath, problems):
                 problems.add(f"{settings.path} contrast '{c.name}' within",
                              f"condition '{level}' does not occur in {mpath.name} column '{within}'",
                              closest(level, conds) or f"conditions are: {', '.join(sorted(conds))}")
+    if settings.model.get("mixed"):
+        return      # the mixed model uses every map; check reports the empty cells
     # every participant should have every condition
     levels = sorted(conds)
     have = maps[maps[ID].isin(in_m)].groupby(ID)[within].apply(set)
@@ -323,8 +358,9 @@ def _cross_check(settings, parts, maps, ppath, mpath, problems):
         if lack:
             problems.add(f"{mpath} participant '{pid}'",
                          f"no map for condition(s) {', '.join(lack)}",
-                         "add the maps, or remove the participant (the summary-statistic "
-                         "approach needs every condition per participant)")
+                         "add the maps, remove the participant (the summary-statistic "
+                         "approach needs every condition per participant), or set mixed = "
+                         "true under [model] (the mixed model uses every map)")
 
 
 def _check_levels(settings, parts, ppath, problems):

@@ -50,7 +50,7 @@ def weight_notes(design, weights) -> list:
     return notes
 
 
-def design_figure(design, weights, title, base: Path) -> list:
+def design_figure(design, weights, title, base: Path, row_label="participant") -> list:
     """The between-participant design and the contrast, drawn column by column.
 
     Each coefficient gets its own panel with the participants as rows (ordered
@@ -58,7 +58,8 @@ def design_figure(design, weights, title, base: Path) -> list:
     as coloured blocks where it is 1, a constant column as one pale band, a
     covariate as dots on its own scale (dashed: its mean).  The contrast
     weights are a labelled table below, with notes on weights that are not
-    0 or +/-1.
+    0 or +/-1.  ``row_label`` names what a row is (the mixed model draws each
+    distinct map row once).
     """
     X = np.asarray(design, float)
     names = [str(c) for c in design.columns]
@@ -98,24 +99,29 @@ def design_figure(design, weights, title, base: Path) -> list:
             ax.plot(col, rows, "o", ms=2.2, color="black")
             ax.set_xlabel(f"value (mean {col.mean():.4g})", fontsize=6.5)
         ax.set_ylim(n - 0.5, -0.5)
-        ax.set_title(names[j], fontsize=7, rotation=20 if len(names[j]) > 12 else 0)
+        long = len(names[j]) > 12
+        ax.set_title(names[j], fontsize=7, rotation=25 if long else 0,
+                     ha="left" if long else "center", x=0.0 if long else 0.5)
         ax.spines[["top", "right"]].set_visible(False)
         if j == 0:
             step = max(1, int(np.ceil(n / 30)))
             ax.set_yticks(rows[::step], [ids[i] for i in order[::step]], fontsize=5.5)
-            ax.set_ylabel("participant" + (" (grouped by the indicator columns)" if ind else ""))
+            ax.set_ylabel(row_label + (" (grouped by the indicator columns)" if ind else ""))
         else:
             ax.set_yticks([])
     tab = fig.add_subplot(gs[1, :])
     tab.axis("off")
     labels = ["weights"] if W.shape[0] == 1 else [f"weights, row {i + 1}" for i in range(len(W))]
     cells = [[f"{v:.4g}" if v != 0 else "0" for v in w] for w in W]
-    t = tab.table(cellText=cells, rowLabels=labels, colLabels=names, loc="upper center",
-                  cellLoc="center")
+    split = any(":" in name for name in names)      # interactions: one factor per line
+    t = tab.table(cellText=cells, rowLabels=labels, loc="upper center", cellLoc="center",
+                  colLabels=[name.replace(":", ":\n") for name in names])
     t.auto_set_font_size(False)
     t.set_fontsize(6.5)
     for (r, c), cell in t.get_celld().items():
         cell.set_edgecolor("#bbbbbb")
+        if r == 0 and split:
+            cell.set_height(2 * cell.get_height())
         if r > 0 and c >= 0 and W[r - 1, c] != 0:
             cell.set_text_props(weight="bold")
     if notes:

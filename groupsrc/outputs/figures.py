@@ -57,8 +57,12 @@ def sequential_cmap():
     return cm.with_extremes(bad="white")
 
 
+#: statistic kinds drawn as signed maps ("z": the mixed model's z of equal p)
+SIGNED = ("t", "z")
+
+
 def stat_cmap(kind):
-    return diverging_cmap() if kind == "t" else sequential_cmap()
+    return diverging_cmap() if kind in SIGNED else sequential_cmap()
 
 
 def new_figure(height_mm, width_in=WIDTH_IN):
@@ -84,11 +88,11 @@ def _stat_range(values, kind):
     v = v[np.isfinite(v)]
     top = float(np.max(np.abs(v))) if v.size else 1.0
     top = top if top > 0 else 1.0
-    return (-top, top) if kind == "t" else (0.0, top)
+    return (-top, top) if kind in SIGNED else (0.0, top)
 
 
 def _stat_label(kind):
-    return "t" if kind == "t" else "F"
+    return kind if kind in SIGNED else "F"
 
 
 # ----------------------------------------------------------------------------
@@ -159,7 +163,7 @@ def projection_figure(stat3d, mask3d, cluster3d, affine, kind, title, base: Path
     im = None
     for j, (vname, ax_p, h, v) in enumerate(views):
         ax = fig.add_subplot(gs[0, j])
-        proj = signed_projection(stat, ax_p) if kind == "t" else np.nanmax(
+        proj = signed_projection(stat, ax_p) if kind in SIGNED else np.nanmax(
             np.where(np.isfinite(stat), stat, -np.inf), axis=ax_p)
         proj = np.where(np.isfinite(proj), proj, np.nan)
         pmask = mask3d.any(axis=ax_p)
@@ -190,7 +194,7 @@ def projection_figure(stat3d, mask3d, cluster3d, affine, kind, title, base: Path
     cax = fig.add_subplot(gs[0, 3])
     cb = fig.colorbar(im, cax=cax)
     cb.set_label(f"{_stat_label(kind)} (largest |value| along the projection)"
-                 if kind == "t" else "F (largest value along the projection)")
+                 if kind in SIGNED else "F (largest value along the projection)")
     fig.suptitle(title, fontsize=8.5)
     return save(fig, base)
 

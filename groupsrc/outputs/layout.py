@@ -26,6 +26,9 @@ REPORT_FILE = "report.html"
 METHODS_FILE = "methods.md"
 ALL_CLUSTERS = "clusters.tsv"
 FIGURES = "figures"
+#: the mixed model's folder: variance components, ICC, fit codes (mixed = true)
+MODEL_DIR = "model"
+MODEL_SUMMARY = "summary.json"
 #: tables of each contrast folder that the report reads (the writer always writes them)
 CONTRAST_TABLES = ("summary.json", "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
                    "cluster_timecourses.tsv", "design.tsv")

@@ -20,7 +20,41 @@ REFERENCES = {
            "powerful approach to multiple testing. J R Stat Soc B 57:289-300.",
     "hedges": "Hedges LV (1981). Distribution theory for Glass's estimator of effect size and "
               "related estimators. J Educ Stat 6:107-128.",
+    "lme4": "Bates D, Maechler M, Bolker B, Walker S (2015). Fitting linear mixed-effects models "
+            "using lme4. J Stat Softw 67(1):1-48.",
+    "satterthwaite": "Satterthwaite FE (1946). An approximate distribution of estimates of "
+                     "variance components. Biometrics Bulletin 2:110-114.",
+    "lmertest": "Kuznetsova A, Brockhoff PB, Christensen RHB (2017). lmerTest package: tests in "
+                "linear mixed effects models. J Stat Softw 82(13):1-26.",
+    "fai": "Fai AHT, Cornelius PL (1996). Approximate F-tests of multiple degree of freedom "
+           "hypotheses in generalized least squares analyses of unbalanced split-plot "
+           "experiments. J Stat Comput Simul 54:363-378.",
+    "multilevel": "Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level "
+                  "block permutation. NeuroImage 123:253-268.",
+    "freedman": "Freedman D, Lane D (1983). A nonstochastic interpretation of reported "
+                "significance levels. J Bus Econ Stat 1:292-298.",
+    "westfall": "Westfall J, Kenny DA, Judd CM (2014). Statistical power and optimal design in "
+                "experiments in which samples of participants respond to samples of stimuli. "
+                "J Exp Psychol Gen 143:2020-2045.",
 }
+
+#: the mixed model's resampling, what is held fixed and why the test stays valid
+MIXED_RESAMPLING = (
+    "For the mixed-model contrasts the observed data and every rearrangement were scored "
+    "alike: at each source and sample the variance components were held at the REML "
+    "estimates of the model without the tested effect (fitted once), and each data set "
+    "re-estimated the fixed effects (generalized least squares) and the residual variance at "
+    "those variance components, giving the t or F and its z (through Satterthwaite df "
+    "computed once from that fit). The rearrangements move whole participants only "
+    "{multilevel}: participants' residual vectors under the model without the tested effect "
+    "(Freedman-Lane {freedman}) are exchangeable or symmetric, and variance components "
+    "estimated without the tested effect describe every rearrangement alike, so holding them "
+    "fixed keeps the test valid (it only decides how efficiently each participant's maps are "
+    "combined); estimates that had seen the tested effect would not, and would inflate the "
+    "maximum statistic. The observed data are one of the rearrangements, and no model is "
+    "refitted per rearrangement. Estimates, standard errors, t, df and uncorrected p of the "
+    "maps are those of the full model's own fit.")
+
 
 CORRECTION_TEXT = {
     "cluster-mass": "cluster-mass inference over space and time (the sum of the statistic over "
@@ -105,13 +139,20 @@ def methods_text(summary: dict, contrasts: list) -> str:
              f"from {win.get('start_ms', '?'):g} to {win.get('end_ms', '?'):g} ms "
              f"({win.get('n', '?')} samples every {win.get('dt_ms', '?'):g} ms), with groupsrc "
              f"{version}."]
-    within = any(c.get("within") for c in contrasts)
-    parts.append(("Within each participant the conditions were combined by each contrast's "
-                  "within-participant weights into one map per contrast"
-                  if within else "Each participant's maps were averaged into one map")
-                 + " (summary-statistic approach), and a general linear model over "
-                 "participants gave, at every source and sample, a t or F statistic for each "
-                 "contrast.")
+    glm = [c for c in contrasts if c.get("model", "glm") == "glm"]
+    mixed = [c for c in contrasts if c.get("model") == "mixed"]
+    if glm:
+        within = any(c.get("within") for c in glm)
+        parts.append(("Within each participant the conditions were combined by each contrast's "
+                      "within-participant weights into one map per contrast"
+                      if within else "Each participant's maps were averaged into one map")
+                     + " (summary-statistic approach), and a general linear model over "
+                     "participants gave, at every source and sample, a t or F statistic for "
+                     + ("each contrast." if not mixed else
+                        f"the contrast(s) {_join(c['name'] for c in glm)}.")
+                     + _excluded_text(coh, glm, mixed))
+    if mixed:
+        parts.append(_mixed_text(summary, mixed, cite))
     correction = inf.get("correction", contrasts[0]["correction"] if contrasts else "none")
     tails = TAILS_TEXT.get(inf.get("tails", "two"), inf.get("tails", ""))
     ctext = CORRECTION_TEXT.get(correction, correction)
@@ -138,14 +179,17 @@ def methods_text(summary: dict, contrasts: list) -> str:
                 "Corrected p-values were computed as (b + 1) / (m + 1), where b of the m "
                 "rearrangements other than the observed one reached the observed value "
                 f"(exact tests: the share of all rearrangements) {cite('pvalues')}.")
+        if any(c.get("model") == "mixed" for c in resampled):
+            sent += " " + MIXED_RESAMPLING.format(multilevel=cite("multilevel"),
+                                                  freedman=cite("freedman"))
     else:
         sent = ("No correction for multiple comparisons was applied; p-values are parametric."
                 if correction == "none" else
                 f"Multiple comparisons were handled by {ctext}; p-values are parametric.")
     parts.append(sent)
     if correction in ("cluster-mass", "cluster-extent"):
-        thr = [f"{c['name']} {c['kind']} = {c['threshold']:.3g}" for c in contrasts
-               if c.get("threshold") is not None]
+        thr = [f"{c['name']} {'z' if c.get('scale') == 'z' else c['kind']} = "
+               f"{c['threshold']:.3g}" for c in contrasts if c.get("threshold") is not None]
         parts.append(f"Clusters were formed from points exceeding a threshold equivalent to "
                      f"p = {inf.get('forming_p', '?')} ({(tails + ' for t') if tails else ''}"
                      + ("; upper tail for F" if any(c["kind"] == "F" for c in contrasts) else "")
@@ -169,14 +213,22 @@ def methods_text(summary: dict, contrasts: list) -> str:
                      + ("; F tests use the upper tail." if has_f else "."))
     else:
         parts.append(f"F tests use the upper tail, at alpha = {inf.get('alpha', 0.05)}.")
-    if any(c["kind"] == "t" for c in contrasts):
+    if any(c["kind"] == "t" for c in glm):
         parts.append("Effect sizes are reported as contrast estimates in the input units with "
                      "95% t-intervals and as standardized effects (Hedges' g, Cohen's d with "
                      f"Hedges' small-sample correction {cite('hedges')}; 95% intervals by "
                      "inverting the noncentral t distribution)"
                      + ("; for F contrasts, partial eta squared" if any(
                          c["kind"] == "F" for c in contrasts) else "") + ".")
-    elif contrasts:
+    if any(c["kind"] == "t" for c in mixed):
+        parts.append("For the mixed-model t contrasts, effect sizes are the contrast estimates "
+                     "with 95% intervals from the t distribution at the Satterthwaite df, and "
+                     "standardized effects: the estimate over the SD of a single map at the "
+                     "average map, the square root of the residual variance plus the "
+                     f"participant variance there {cite('westfall')}"
+                     + ("; for F contrasts, F k / (F k + df)" if any(
+                         c["kind"] == "F" for c in mixed) else "") + ".")
+    elif glm:
         parts.append("Effect sizes are reported as partial eta squared with 95% intervals by "
                      "inverting the noncentral F distribution.")
     parts.append("Values at cluster peaks were selected for being large and overstate the "
@@ -184,4 +236,51 @@ def methods_text(summary: dict, contrasts: list) -> str:
                  "threshold, not the effect's exact location, onset or offset.")
     text = "# Methods\n\n" + " ".join(parts) + "\n\n## References\n\n"
     text += "\n".join(f"{i + 1}. {REFERENCES[k]}" for i, k in enumerate(used)) + "\n"
+    return text
+
+
+def _excluded_text(coh, glm, mixed) -> str:
+    left = coh.get("glm_excluded") or []
+    if not left or not mixed:
+        return ""
+    return (f" The summary-statistic contrasts used the participants with a map of every "
+            f"condition; they left out {_join(left)}, whose maps the mixed model used.")
+
+
+def _mixed_text(summary, mixed, cite) -> str:
+    """The mixed model: its terms, estimation, df, and the count of boundary fits."""
+    coh = summary.get("cohort", {})
+    mm = summary.get("mixed_model") or {}
+    model = summary.get("settings", {}).get("model", {})
+    covs = model.get("map_covariates") or []
+    slopes = model.get("random_slopes") or []
+    n = mm.get("n_features") or 0
+    counts = mm.get("counts", {})
+
+    def share(key):
+        return f"{100.0 * counts.get(key, 0) / max(1, n):.2g}%"
+
+    method = mm.get("method", "REML")
+    text = (f"A linear mixed model was fitted by {method} at every source and sample to all "
+            f"{mm.get('n_maps', coh.get('maps', '?'))} maps of "
+            f"{mm.get('n_participants', coh.get('participants', '?'))} participants "
+            f"{cite('lme4')}, for the contrast(s) {_join(c['name'] for c in mixed)}: fixed "
+            f"effects the between-participant terms crossed with the conditions"
+            + (f" and the map covariate(s) {_join(covs)}" if covs else "")
+            + "; random effects a participant intercept"
+            + (f" and participant slope(s) of {_join(slopes)} with an unstructured "
+               "covariance" if slopes else "")
+            + ". Every map was used, whatever the number of maps or conditions a participant "
+            "had. The standard errors are those of the fixed effects given the variance "
+            "estimates; t tests used Satterthwaite degrees of freedom "
+            f"{cite('satterthwaite')} computed as lmerTest does {cite('lmertest')}")
+    if any(c["kind"] == "F" for c in mixed):
+        text += f", F tests the method of Fai and Cornelius {cite('fai')}"
+    text += (". Because the df differ by source and sample, maps, clusters and maxima use "
+             "the z of equal p (each t or F converted through its own df). Of the "
+             f"{n} fits, {share('converged')} converged inside the parameter space, "
+             f"{share('boundary (singular covariance)')} on its boundary (a variance "
+             "estimated as zero or a correlation of +-1; kept, as lme4 keeps them, with the "
+             f"estimates of that fit), {share('iteration limit')} stopped at the iteration "
+             f"limit and {share('no residual variance')} had no residual variance.")
     return text

@@ -24,6 +24,7 @@ from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
                      open_maps, read_json, read_tsv, read_values, times_ms)
 from .methods import methods_text
+from .mixed_outputs import df_text, model_figures, model_section
 from .surface_figures import surface_figures
 from .tables import COLUMNS
 
@@ -38,6 +39,9 @@ CAUTIONS = [
     "that blur.",
     "Research software: not a diagnostic device. Clinical use is for local regulations and "
     "licensed practice to decide.",
+    "Values taken from a region that the same test selected (a cluster's peak, mean or a "
+    "follow-up refit of it) are inflated (circularity; Kriegeskorte et al. 2009, Nat Neurosci "
+    "12:535-540); test a region chosen independently of these data to estimate the effect.",
 ]
 
 CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
@@ -71,7 +75,7 @@ def _sample_index(times, values_ms):
 # ----------------------------------------------------------------------------
 
 def _score_label(correction, kind):
-    total = "sum of F" if kind == "F" else "|sum of t|"
+    total = "sum of F" if kind == "F" else f"|sum of {kind}|"
     return {"cluster-mass": f"largest cluster mass per rearrangement ({total})",
             "cluster-extent": "largest cluster extent per rearrangement (points)",
             "tfce": "largest |TFCE| per rearrangement",
@@ -79,7 +83,7 @@ def _score_label(correction, kind):
 
 
 def _sign_text(row, kind):
-    if kind != "t":
+    if kind == "F":
         return "F"
     return "positive" if row["sign"] > 0 else "negative"
 
@@ -120,7 +124,8 @@ SPATIAL_FIGURES = {"volume": projection_figures, "surface": surface_figures}
 
 def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
     """Draw one contrast's figures; return [(caption, png path)]."""
-    name, kind = cs["name"], cs["kind"]
+    name = cs["name"]
+    kind = "z" if cs.get("scale") == "z" else cs["kind"]      # what statistic.nii.gz holds
     folder = results / name
     figdir = folder / FIGURES
     figdir.mkdir(exist_ok=True)
@@ -208,9 +213,15 @@ def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
     design = read_tsv(folder / "design.tsv")
     if len(design):
         design = design.set_index("participant_id")
+        mixed = cs.get("model") == "mixed"
+        if mixed:                       # one row per map: draw each distinct row once
+            design = design[~design.duplicated()]
         base = figdir / "design"
-        design_figure(design, cs["weights"], f"{name}: design and contrast", base)
-        out.append(("The between-participant design, one panel per coefficient "
+        design_figure(design, cs["weights"], f"{name}: design and contrast", base,
+                      row_label="distinct map row" if mixed else "participant")
+        out.append((("The mixed model's fixed-effects design, each distinct map row once "
+                     "(labelled with the first participant who has it)" if mixed else
+                     "The between-participant design") + ", one panel per coefficient "
                     "(coloured blocks: indicator columns; dots: covariates on their own "
                     "scale, dashed at the mean), and the contrast's weights below.",
                     base.with_suffix(".png")))
@@ -302,7 +313,9 @@ def _contrast_view(results: Path, c: dict, figs: list) -> dict:
     reported = set(c.get("reported_clusters", []))
     return {
         "name": c["name"], "description": c.get("description", ""), "kind": c["kind"],
-        "df": ", ".join(str(d) for d in c["df"]), "correction": c["correction"],
+        "df": df_text(c), "correction": c["correction"],
+        "model": "mixed model" if c.get("model") == "mixed" else "summary-statistic GLM",
+        "z_scale": c.get("scale") == "z",
         "tails": c["tails"], "alpha": alpha, "n_clusters": c.get("n_clusters", 0),
         "n_reported": len(reported),
         "clusters": table_view(clusters, CLUSTER_VIEW, COLUMNS["clusters.tsv"],
@@ -315,12 +328,16 @@ def _contrast_view(results: Path, c: dict, figs: list) -> dict:
     }
 
 
-def page_context(summary, contrast_summaries, figure_lists, results: Path, methods_md) -> dict:
+def page_context(summary, contrast_summaries, figure_lists, results: Path, methods_md,
+                 model_figs=()) -> dict:
     """Everything the template shows, as plain values (escaped by the template)."""
     st = summary.get("settings", {})
     contrast_rows = pd.DataFrame([
-        {"contrast": c["name"], "description": c.get("description", ""),
-         "statistic": f"{c['kind']}({', '.join(str(d) for d in c['df'])})",
+        {"contrast": c["name"], "model": c.get("model", "glm"),
+         "description": c.get("description", ""),
+         "statistic": (f"{c['kind']}({', '.join(str(d) for d in c['df'])})"
+                       if c.get("model") != "mixed" else
+                       f"{c['kind']} (Satterthwaite df, median {c['df'][-1]:.3g})"),
          "scheme": c["scheme"], "resamples": c["n_resamples"],
          "exact": "yes" if c["exact"] else "no", "weights": json.dumps(c["weights"]),
          "within": json.dumps(c.get("within")) if c.get("within") else ""}
@@ -334,18 +351,25 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
                        "space", {}).get("volume_parts") else "")
                     if summary.get("space", {}).get("kind") == "surface"
                     else CHECKS_TEXT) if st.get("check_summary") else None),
-        "model_rows": [(k, v) for k, v in st.get("model", {}).items() if v not in (None, "")],
+        "model_rows": [(k, v) for k, v in st.get("model", {}).items()
+                       if v not in (None, "", [])],
         "contrast_table": table_view(contrast_rows),
         "contrasts": [_contrast_view(results, c, figs)
                       for c, figs in zip(contrast_summaries, figure_lists)],
         "settings_json": json.dumps({k: v for k, v in st.items() if k != "check_summary"},
                                     indent=1),
         "methods": methods_blocks(methods_md),
+        "mixed": model_section(results, summary, None),
+        "mixed_figures": [{"caption": cap, "uri": _image_uri(png),
+                           "path": png.relative_to(results).as_posix()}
+                          for cap, png in model_figs],
     }
 
 
-def render_html(summary, contrast_summaries, figure_lists, results: Path, methods_md) -> str:
-    context = page_context(summary, contrast_summaries, figure_lists, results, methods_md)
+def render_html(summary, contrast_summaries, figure_lists, results: Path, methods_md,
+                model_figs=()) -> str:
+    context = page_context(summary, contrast_summaries, figure_lists, results, methods_md,
+                           model_figs)
     return _environment().get_template("report.html.j2").render(**context)
 
 
@@ -382,7 +406,8 @@ def render_report(results_dir) -> Path:
     maps = open_maps(results, summary)
     cs_list = [read_json(results / n / "summary.json") for n in summary["contrasts"]]
     figs = _all_contrast_figures(results, maps, summary, cs_list)
+    mfigs = model_figures(results, maps, summary, times_ms(summary["window"]))
     md = methods_text(summary, cs_list)
     write_text(results / METHODS_FILE, md)
-    page = render_html(summary, cs_list, figs, results, md)
+    page = render_html(summary, cs_list, figs, results, md, mfigs)
     return write_text(results / REPORT_FILE, page)

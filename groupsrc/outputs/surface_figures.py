@@ -22,7 +22,7 @@ How a view is drawn (orthographic projection, no 3D toolkit):
   all in a reported cluster and triangles that are not, drawn as thin quads
   inside the same far-to-near painting, so a fold in front hides them.
 
-Colours: signed statistics (t) use ColorBrewer's RdBu reversed (red
+Colours: signed statistics (t, z) use ColorBrewer's RdBu reversed (red
 positive, blue negative, near white at zero; a diverging scheme ColorBrewer
 marks as colour-blind safe), so the shading of the folds stays readable
 where the statistic is small; F uses its upper half (white to red).  This
@@ -66,9 +66,10 @@ UP = np.array([0.0, 0.0, 1.0])
 
 
 def surface_cmap(kind):
-    """RdBu reversed for t; its white-to-red half for F (see the module docstring)."""
+    """RdBu reversed for signed maps (t, or the z of a mixed model); its white-to-red half
+    for F (see the module docstring)."""
     base = matplotlib.colormaps["RdBu_r"]
-    if kind == "t":
+    if kind in figures.SIGNED:
         return base
     return LinearSegmentedColormap.from_list("groupsrc_f_surface", base(np.linspace(0.5, 1, 128)))
 
@@ -224,7 +225,7 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None, stro
                     weight="bold", ha="right", va="bottom")
     sm = matplotlib.cm.ScalarMappable(norm=Normalize(*vlim), cmap=surface_cmap(kind))
     cb = fig.colorbar(sm, ax=axes, shrink=0.8, aspect=30, pad=0.02)
-    cb.set_label("t" if kind == "t" else "F")
+    cb.set_label(figures._stat_label(kind))
     fig.suptitle(title, fontsize=8.5)
     return figures.save(fig, base)
 

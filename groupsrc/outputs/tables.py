@@ -33,7 +33,7 @@ COLUMNS = {
         "contrast": "contrast name",
         "cluster": "cluster number, as in clusters.nii.gz (1 = smallest corrected p, then largest mass)",
         "sign": "+1 positive, -1 negative statistic (always +1 for F)",
-        "stat_type": "statistic: t or F",
+        "stat_type": "statistic: t or F; z for the mixed model (the z of equal p of its t or F)",
         "mass": "sum of the statistic over the cluster's source x time points (statistic units x points)",
         "n_points": "number of source x time points in the cluster",
         "n_sources": "number of distinct sources in the cluster",
@@ -51,12 +51,13 @@ COLUMNS = {
         "peak_x_mm": "x world coordinate of the peak (mm, template space)",
         "peak_y_mm": "y world coordinate of the peak (mm)",
         "peak_z_mm": "z world coordinate of the peak (mm)",
-        "peak_stat": "statistic at the peak (t or F)",
+        "peak_stat": "statistic at the peak (t or F; mixed model: z)",
+        "peak_df": "(denominator) degrees of freedom at the peak: the GLM's residual df, or for the mixed model the Satterthwaite df of that source and sample",
         "estimate_at_peak": "contrast estimate at the peak (input units; n/a for F)",
-        "estimate_ci_low": "lower end of the 95% interval of the estimate, estimate - t(0.975, df) se (input units)",
+        "estimate_ci_low": "lower end of the 95% interval of the estimate, estimate - t(0.975, df) se (input units; mixed model: the df at the peak)",
         "estimate_ci_high": "upper end of that interval (input units)",
         "std_effect_at_peak": "standardized effect at the peak: Hedges' g (t) or partial eta squared (F) (unitless)",
-        "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless)",
+        "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless; n/a for the mixed model)",
         "std_effect_ci_high": "upper end of that interval (unitless)",
         "atlas_label_at_peak": "atlas region at the peak (only when an atlas is given, or CIFTI-2 maps have volume parts, whose voxels are named by their structure)",
     },
@@ -242,6 +243,8 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
     tms = times_ms(time_axis)
     coords = grid.coords_mm
     df = inf.df
+    if inf.df_map is not None:
+        return _mixed_cluster_table(contrast, grid, time_axis, atlas, cols)
     v = contrast_variance_factor(contrast.design, contrast.weights) if inf.kind == "t" else np.nan
     rows = []
     for rec in table.to_dict("records"):
@@ -256,7 +259,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
                "n_samples": int(smp.size), "p_corrected": rec.get("p_corrected", np.nan),
                "t_start_ms": tms[smp[0]], "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t],
                "peak_x_mm": coords[s, 0], "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2],
-               "peak_stat": stat[s, t]}
+               "peak_stat": stat[s, t], "peak_df": float(df[-1])}
         row.update({f"peak_{k}": v for k, v in _mesh_place(grid, s).items()})
         g = float(inf.std_effect[s, t])
         if inf.kind == "t":
@@ -277,6 +280,43 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
             row["atlas_label_at_peak"] = atlas.get("names", {}).get(lab, str(lab)) if lab else "none"
         rows.append(row)
     return _typed(pd.DataFrame(rows, columns=cols))
+
+
+def _mixed_cluster_table(contrast, grid, time_axis, atlas, cols) -> pd.DataFrame:
+    """clusters.tsv rows of a mixed-model contrast: the statistic is the z of equal p,
+    the df differ by feature (the peak's df set the estimate's interval); the
+    standardized effect has no interval here (its SD is estimated with the
+    variance components)."""
+    inf = contrast.inference
+    stat, labels = np.asarray(inf.statistic, float), np.asarray(inf.cluster_labels)
+    tms, coords = times_ms(time_axis), grid.coords_mm
+    rows = []
+    for rec in inf.clusters.to_dict("records"):
+        k = int(rec["cluster"])
+        member = labels == k
+        src, smp = np.flatnonzero(member.any(axis=1)), np.flatnonzero(member.any(axis=0))
+        s, t = _peak_of(stat, labels, k)
+        nu = float(inf.df_map[s, t])
+        row = {"contrast": contrast.name, "cluster": k, "sign": int(rec["sign"]),
+               "stat_type": "z", "mass": float(rec["mass"]), "n_points": int(member.sum()),
+               "n_sources": int(src.size), "n_samples": int(smp.size),
+               "p_corrected": rec.get("p_corrected", np.nan), "t_start_ms": tms[smp[0]],
+               "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t], "peak_x_mm": coords[s, 0],
+               "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2], "peak_stat": stat[s, t],
+               "peak_df": nu, "std_effect_at_peak": float(inf.std_effect[s, t]),
+               "std_effect_ci_low": np.nan, "std_effect_ci_high": np.nan}
+        if inf.kind == "t":
+            est, se = float(inf.estimate[s, t]), float(inf.se[s, t])
+            q = stats.t.ppf(0.975, nu)
+            row.update(estimate_at_peak=est, estimate_ci_low=est - q * se,
+                       estimate_ci_high=est + q * se)
+        else:
+            row.update(estimate_at_peak=np.nan, estimate_ci_low=np.nan, estimate_ci_high=np.nan)
+        if atlas:
+            lab = int(atlas["labels"][s])
+            row["atlas_label_at_peak"] = atlas.get("names", {}).get(lab, str(lab)) if lab else "none"
+        rows.append(row)
+    return pd.DataFrame(rows, columns=cols)
 
 
 def atlas_table(contrast, grid: VolumeGrid, atlas) -> pd.DataFrame:
@@ -360,7 +400,8 @@ def timecourse_table(contrast, participants: pd.DataFrame, time_axis: TimeAxis,
     of the per-participant measure over the cluster's sources (first
     ``max_clusters`` clusters in table order)."""
     labels = np.asarray(contrast.inference.cluster_labels)
-    ids = [str(p) for p in contrast.participants]
+    ids = [str(p) for p in (contrast.data_participants if contrast.data_participants
+                            is not None else contrast.participants)]
     groups = None
     if participants is not None and "group" in participants.columns:
         parts = participants.copy()

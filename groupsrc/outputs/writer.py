@@ -20,7 +20,8 @@ from ..stats.results import AnalysisResult, ContrastResult
 from .. import formats
 from . import tables
 from .files import jsonable, write_json, write_tsv
-from .layout import ALL_CLUSTERS, DATASET_DESCRIPTION, RUN_RECORD, SUMMARY_FILE
+from .layout import ALL_CLUSTERS, DATASET_DESCRIPTION, MODEL_DIR, RUN_RECORD, SUMMARY_FILE
+from .mixed_outputs import write_model
 
 #: the BIDS specification version the description follows (1.10.0, from memory)
 BIDS_VERSION = "1.10.0"
@@ -53,10 +54,22 @@ def cohort_summary(analysis: AnalysisResult) -> dict:
     return out
 
 
+def _df_summary(inf) -> dict | None:
+    """Per-feature df (mixed model): their range and median."""
+    if inf.df_map is None:
+        return None
+    d = np.asarray(inf.df_map, float)
+    d = d[np.isfinite(d)]
+    if d.size == 0:
+        return None
+    return {"min": float(d.min()), "median": float(np.median(d)), "max": float(d.max())}
+
+
 def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
     inf = c.inference
     record = inf.resampling
     return {"name": c.name, "description": c.description, "kind": inf.kind,
+            "model": c.model, "scale": inf.scale, "df_per_feature": _df_summary(inf),
             "df": list(inf.df), "scheme": inf.scheme, "correction": inf.correction,
             "tails": inf.tails, "alpha": alpha, "forming_p": forming_p,
             "threshold": inf.threshold, "n_resamples": inf.n_resamples, "exact": inf.exact,
@@ -73,23 +86,39 @@ def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
             "tfce": dataclasses.asdict(inf.tfce) if inf.tfce else None}
 
 
+def _model_brief(model) -> dict | None:
+    """What the analysis summary (methods, report) says about the mixed model."""
+    if model is None:
+        return None
+    return {"method": model["method"], "counts": model["counts"],
+            "n_features": int(np.asarray(model["code"]).size), "columns": model["columns"],
+            "random": model["random"], "n_maps": model["n_maps"],
+            "n_participants": model["n_participants"], "n_layouts": model["n_layouts"]}
+
+
 def write_maps(c: ContrastResult, maps, folder: Path, reported) -> None:
     """One contrast's maps through the source space's map format (``maps``)."""
     inf = c.inference
-    maps.statistic(folder, "statistic", inf.statistic, inf.kind, inf.df, c.name)
+    shown = "z" if inf.scale == "z" else inf.kind
+    maps.statistic(folder, "statistic", inf.statistic, shown, inf.df, c.name)
     if inf.kind == "t":
         maps.estimate(folder, "estimate", inf.estimate, c.name, "estimate")
         maps.estimate(folder, "std_error", inf.se, c.name, "std error", signed=False)
-    maps.estimate(folder, "std_effect", inf.std_effect, c.name,
-                  "hedges g" if inf.kind == "t" else "partial eta2",
+    effect = ("hedges g" if c.model == "glm" else "d total sd") if inf.kind == "t" \
+        else "partial eta2"
+    maps.estimate(folder, "std_effect", inf.std_effect, c.name, effect,
                   signed=inf.kind == "t", bounded=inf.kind != "t")
+    if inf.scale == "z":
+        maps.estimate(folder, "test_statistic", inf.test_statistic, c.name, f"{inf.kind} value",
+                      signed=inf.kind == "t")
+        maps.estimate(folder, "df", inf.df_map, c.name, "df Satterthwait", signed=False)
     maps.p_values(folder, "p_uncorrected", inf.p_uncorrected, c.name, "uncorrected")
     if inf.p_corrected is not None:
         maps.p_values(folder, "p_corrected", inf.p_corrected, c.name, "corrected")
     maps.labels(folder, "clusters", inf.cluster_labels, c.name)
     if hasattr(maps, "cluster_summary"):
         maps.cluster_summary(folder, "cluster_summary", inf.statistic, inf.cluster_labels,
-                             reported, inf.kind, c.name)
+                             reported, shown, c.name)
 
 
 def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, maps, adjacency,
@@ -117,7 +146,8 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ma
         atab = tables.atlas_table(c, grid, atlas)
         write_tsv(folder / "cluster_atlas.tsv", atab)
     design = c.design.copy()
-    design.insert(0, "participant_id", [str(p) for p in c.participants])
+    ids = c.participants if len(design) == len(c.participants) else design.index   # mixed: maps
+    design.insert(0, "participant_id", [str(p) for p in ids])
     write_tsv(folder / "design.tsv", design)
     write_json(folder / "summary.json", summ)
     return {"summary": summ, "clusters": ctab, "atlas": atab}
@@ -160,6 +190,8 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     all_clusters = (pd.concat(frames, ignore_index=True) if frames
                     else pd.DataFrame(columns=tables.table_columns("clusters.tsv", grid)))
     write_tsv(out / ALL_CLUSTERS, all_clusters)
+    if analysis.model is not None:
+        write_model(analysis, maps, out / MODEL_DIR)
     if atlas:
         aframes = [w["atlas"] for w in written if w["atlas"] is not None and len(w["atlas"])]
         if aframes:
@@ -173,7 +205,8 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
                           "end_ms": round(ta.times[-1] * 1e3, 3), "dt_ms": round(ta.dt * 1e3, 6)},
                "space": grid.describe(), "map_format": maps.format,
                "settings": settings, "contrasts": names, "atlas": bool(atlas),
-               "seed": run_record.get("seed"), "timings": analysis.timings}
+               "seed": run_record.get("seed"), "timings": analysis.timings,
+               "mixed_model": _model_brief(analysis.model)}
     write_json(out / SUMMARY_FILE, jsonable(summary))
     write_json(out / DATASET_DESCRIPTION, dataset_description(analysis.title))
     render_report(out)

@@ -190,9 +190,40 @@ def demo_truth(cohort_dir) -> dict:
     return {"masks": masks, "info": info}
 
 
+#: the mixed-model part of the demo's analysis file (sizes with ``mixed = true``)
+MIXED_MODEL = '''mixed = true               # a linear mixed model on every map (the patient who missed
+                           # the frequent tone and the third sessions included); the
+                           # contrasts marked model = "glm" use the summary-statistic GLM
+'''
+MIXED_CONTRASTS = '''
+# the same three questions, answered by the mixed model from every map
+[[contrasts]]
+name = "rare_minus_frequent_mixed"
+description = "rare minus frequent tones, the two groups weighted equally (mixed model)"
+within = { rare = 1, frequent = -1 }
+
+[[contrasts]]
+name = "group_by_tone_mixed"
+description = "rare-minus-frequent difference, patients minus controls (mixed model)"
+within = { rare = 1, frequent = -1 }
+compare = { group = ["patient", "control"] }
+
+[[contrasts]]
+name = "age_slope_mixed"
+description = "change per year of age of the response averaged over tones (mixed model)"
+slope = "age"
+'''
+
+
 def analysis_text(cfg: dict, size: str) -> str:
-    """The analysis file of a build (TOML; every key is described in the README)."""
+    """The analysis file of a build (TOML; every key is described in the README).
+
+    Sizes with ``mixed = true`` run the mixed model next to the GLM: the three
+    GLM contrasts (``model = "glm"``; they leave out the participant lacking a
+    condition) and the same three by the mixed model (``*_mixed``)."""
     sz = size_settings(cfg, size)
+    mixed = bool(sz.get("mixed", False))
+    glm = 'model = "glm"\n' if mixed else ""
     return f'''# Analysis of the groupsrc demo cohort ({size} size): {cfg["study"]}.
 # Every key is described in the groupsrc README.
 title = "Velmora Listening Lab: rare versus frequent tones in patients and controls (demo)"
@@ -205,23 +236,23 @@ mask = "mask.nii.gz"
 [model]
 between = "group + age"
 within = "condition"
-
+{MIXED_MODEL if mixed else ""}
 [[contrasts]]
 name = "rare_minus_frequent"
 description = "rare minus frequent tones, the two groups weighted equally"
 within = {{ rare = 1, frequent = -1 }}
-
+{glm}
 [[contrasts]]
 name = "group_by_tone"
 description = "rare-minus-frequent difference, patients minus controls"
 within = {{ rare = 1, frequent = -1 }}
 compare = {{ group = ["patient", "control"] }}
-
+{glm}
 [[contrasts]]
 name = "age_slope"
 description = "change per year of age of the response averaged over tones"
 slope = "age"
-
+{glm}{MIXED_CONTRASTS if mixed else ""}
 [inference]
 correction = "cluster-mass"
 resamples = {int(sz["resamples"])}

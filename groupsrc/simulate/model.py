@@ -103,15 +103,34 @@ def participants_table(size: str = "default", seed: int | None = None,
 
 
 def _sessions(parts: pd.DataFrame, cfg: dict, size: str, seed: int) -> np.ndarray:
-    """Number of sessions (1 or 2) per participant: a share of each group twice."""
-    share = float(size_settings(cfg, size)["second_session_share"])
+    """Number of sessions (1 to 3) per participant: a share of each group twice, and a
+    (smaller) share of those a third time."""
+    sz = size_settings(cfg, size)
+    share = float(sz["second_session_share"])
+    third = float(sz.get("third_session_share", 0.0))
     rng = np.random.default_rng([seed, _TABLE, 1])
     out = np.ones(len(parts), int)
+    twice = {}
     for group in GROUPS:
         idx = np.nonzero(parts["group"].to_numpy() == group)[0]
         k = int(round(share * idx.size))
-        out[rng.choice(idx, size=k, replace=False)] = 2
+        twice[group] = rng.choice(idx, size=k, replace=False)
+        out[twice[group]] = 2
+    for group in GROUPS:                       # drawn after the second sessions: those stay
+        k = min(int(round(third * (out.size // len(GROUPS)))), twice[group].size)
+        if k:
+            out[rng.choice(twice[group], size=k, replace=False)] = 3
     return out
+
+
+def _missing_condition(parts: pd.DataFrame, sessions, cfg: dict, size: str, seed: int) -> set:
+    """Participants whose frequent-tone maps are missing: patients seen once."""
+    k = int(size_settings(cfg, size).get("missing_condition", 0))
+    if not k:
+        return set()
+    rng = np.random.default_rng([seed, _TABLE, 2])
+    idx = np.nonzero((parts["group"].to_numpy() == "patient") & (sessions == 1))[0]
+    return set(parts["participant_id"].to_numpy()[rng.choice(idx, size=k, replace=False)])
 
 
 # ------------------------------------------------------------------ the model
@@ -173,17 +192,21 @@ class DemoModel:
         G = len(self.gens)
         pos = np.array([g["position_mm"] for g in self.gens], float)
         dirs = np.array([g["direction"] for g in self.gens], float)
-        gain = np.ones((2, G))
+        gain = np.ones((3, G))
         latency = np.zeros(G)
         noise_scale = 1.0
         if jitter:
             rng = np.random.default_rng([seed, _PARTICIPANT, index])
-            gain = np.exp(rng.normal(0.0, pc["gain_sd"], G)
-                          + np.vstack([np.zeros(G), rng.normal(0.0, pc["session_gain_sd"], G)]))
+            base = rng.normal(0.0, pc["gain_sd"], G)
+            gain = np.exp(base + np.vstack([np.zeros(G),
+                                            rng.normal(0.0, pc["session_gain_sd"], G)]))
             latency = rng.normal(0.0, pc["latency_sd_s"], G)
             pos = pos + rng.normal(0.0, pc["position_sd_mm"], (G, 3))
             dirs = dirs + rng.normal(0.0, np.deg2rad(pc["direction_sd_deg"]), (G, 3))
             noise_scale = float(np.exp(rng.normal(0.0, self.cfg["noise"]["participant_noise_sd"])))
+            if n_sessions > 2:   # drawn last, so a third session changes nothing else
+                third = np.exp(base + rng.normal(0.0, pc["session_gain_sd"], G))
+                gain = np.vstack([gain, third])
             r = np.linalg.norm(pos, axis=1, keepdims=True)
             limit = radius - 5.0
             pos = np.where(r > limit, pos * limit / r, pos)
@@ -241,7 +264,7 @@ class Simulation:
     """Everything a build computes, before any file is written."""
     model: DemoModel
     participants: pd.DataFrame
-    sessions: np.ndarray               # 1 or 2 per participant
+    sessions: np.ndarray               # 1 to 3 per participant
     maps: pd.DataFrame                 # participant_id, condition, session, path
     data: list                         # float32 (n_sources, n_times) per maps row
     seed: int
@@ -254,7 +277,8 @@ def simulate(size: str = "default", seed: int | None = None, cfg: dict | None = 
 
     One map per participant, session and tone, in the order of the maps
     table (participants as in :func:`participants_table`, then sessions,
-    then tones rare, frequent); ``path`` is where :mod:`.build` writes it,
+    then tones rare, frequent) -- except the frequent tone of the patients
+    the size's ``missing_condition`` picks (seen once); ``path`` is where :mod:`.build` writes it,
     relative to the cohort folder.  The noise of map (participant ``i``,
     session ``s``, tone ``c``) comes from the stream ``[seed, 2, i, s, c]``, so
     a map does not depend on how many others are simulated.
@@ -264,11 +288,14 @@ def simulate(size: str = "default", seed: int | None = None, cfg: dict | None = 
     model = DemoModel(cfg, size)
     parts = participants_table(size, seed, cfg)
     sessions = _sessions(parts, cfg, size, seed)
+    lacking = _missing_condition(parts, sessions, cfg, size, seed)
     rows, sensor_data = [], []
     for i, p in enumerate(parts.itertuples(index=False)):
         person = model.person(seed, i, int(sessions[i]))
         for ses in range(1, int(sessions[i]) + 1):
             for c_i, cond in enumerate(CONDITIONS):
+                if cond == "frequent" and p.participant_id in lacking:
+                    continue
                 b = model.sensor_signal(person, ses, cond, p.group, p.age)
                 if noise:
                     rng = np.random.default_rng([seed, _NOISE, i, ses, c_i])

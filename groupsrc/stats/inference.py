@@ -289,7 +289,8 @@ def _result(kernel, obs, outcome, null, spec, threshold, shape, record, matrix):
         scheme=kernel.scheme_name, correction=spec.correction,
         tails=spec.tails, fit=kernel.info(), cluster_rule=outcome.cluster_rule,
         resampling=record, rearrangements=matrix,
-        tfce=spec.tfce if spec.correction == "tfce" else None, enhanced=outcome.enhanced)
+        tfce=spec.tfce if spec.correction == "tfce" else None, enhanced=outcome.enhanced,
+        scale=obs.scale, test_statistic=shaped(obs.test_statistic), df_map=shaped(obs.df_map))
 
 
 __all__ = ["InferenceSpec", "Execution", "infer", "run_inference", "TfceOptions"]

@@ -85,6 +85,11 @@ class Observed:
 
     ``estimate`` and ``se`` are NaN for F contrasts; ``std_effect`` is Hedges'
     g for t contrasts and partial eta squared for F contrasts.
+
+    ``scale`` says what ``statistic`` holds: ``"statistic"`` the t or F itself
+    (one df for every feature, ``df``), or ``"z"`` the z of equal p, for
+    kernels whose df differ by feature; then ``test_statistic`` holds the t or
+    F and ``df_map`` the per-feature (denominator) df, and ``df`` a summary.
     """
 
     kind: str
@@ -94,6 +99,9 @@ class Observed:
     se: np.ndarray
     std_effect: np.ndarray
     p_uncorrected: np.ndarray
+    scale: str = "statistic"
+    test_statistic: np.ndarray | None = None
+    df_map: np.ndarray | None = None
 
 
 @dataclass(frozen=True)

@@ -89,6 +89,10 @@ class InferenceResult:
     tfce : TfceOptions or None
     enhanced : (n_sources, n_times) float32 or None
         The observed TFCE map.
+    scale : "statistic" or "z"
+        What ``statistic`` holds (see :class:`~groupsrc.stats.kernels.Observed`).
+    test_statistic, df_map : (n_sources, n_times) or None
+        With ``scale = "z"``: the t or F, and its per-feature denominator df.
     """
 
     kind: str
@@ -114,6 +118,9 @@ class InferenceResult:
     rearrangements: np.ndarray | None = None
     tfce: TfceOptions | None = None
     enhanced: np.ndarray | None = None
+    scale: str = "statistic"
+    test_statistic: np.ndarray | None = None
+    df_map: np.ndarray | None = None
 
 
 @dataclass
@@ -133,6 +140,13 @@ class ContrastResult:
     weights: np.ndarray
     #: within-participant weights over conditions, e.g. {"rare": 1, "frequent": -1}
     within: dict | None = None
+    #: "glm" (``design``: participants x coefficients) or "mixed" (``design``: maps x
+    #: coefficients, index the participant of each map; ``participants``: the units
+    #: that were rearranged)
+    model: str = "glm"
+    #: participant ids in the row order of ``data`` when they differ from ``participants``
+    #: (mixed model: only participants with the conditions the within weights use)
+    data_participants: list | None = None
 
 
 @dataclass
@@ -147,3 +161,6 @@ class AnalysisResult:
     maps: pd.DataFrame
     settings: dict
     timings: dict = field(default_factory=dict)
+    #: the mixed model's per-feature fit (``mixed = true``): variance components, ICC,
+    #: fit codes and their counts (see ``pipeline._fit_mixed``)
+    model: dict | None = None

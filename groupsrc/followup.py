@@ -1,0 +1,410 @@
+"""``groupsrc followup RESULTS_DIR``: region means per map and a mixed-model refit.
+
+For each significant cluster of a results folder (the clusters the report
+marks, every contrast or the one ``--contrast`` names, or the ``--cluster``
+numbers given) and for a region of the user's (``--mask`` on the template
+grid and ``--window START STOP`` in seconds), the mean of every map over the
+region's source x sample points is tabulated, one row per map, and the
+analysis's model is refitted on those means with statsmodels ``MixedLM``: the
+same fixed effects (the mixed model's columns, which ``groupsrc check``
+prints), a random intercept per participant and the analysis's random slopes,
+REML unless ``estimation = "ml"``.  Every contrast of the analysis is then
+estimated on the refit (``t_test`` of its weights; statsmodels' z and p).
+
+Written to ``RESULTS_DIR_followup`` (or ``--out``), never into the results
+folder or an input:
+
+* ``regions.tsv``      one row per region: where it came from, its size and span, and
+                       whether the same test selected it (the circularity caution)
+* ``region_means.tsv`` one row per map and region: participant, condition, session,
+                       map covariates, participants' model columns, the mean
+* ``coefficients.tsv`` one row per region and term: fixed effects, variance parameters,
+                       contrasts, with estimate, standard error, z, p and 95% interval
+* ``followup.md``      the same, readable, with the caution
+
+Circularity: a cluster was selected by the test of its own contrast on these
+same data, so means and estimates taken from it are inflated (Kriegeskorte et
+al. 2009, Nat Neurosci 12:535-540); every table row from such a region says
+so.  A region of the user's carries the caution only in the text (whether it
+was chosen from these data is not known here).
+
+The inputs are read again through the analysis file the run recorded; a map,
+table or the analysis file changed since the run (sha256) is a problem, so
+the follow-up always describes the data the results came from.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import secrets
+import shutil
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .atomic import write_text
+from .inputs.problems import InputError, ProblemList, closest
+
+MARKER = ".groupsrc-followup"
+CAUTION = ("estimates from a region selected by the same test are inflated (circularity; "
+           "Kriegeskorte et al. 2009, Nat Neurosci 12:535-540); use them to describe the "
+           "cluster, not as an effect size")
+USER_NOTE = ("a region given by the user: if it was chosen by looking at these data, the "
+             "same circularity caution applies")
+
+
+@dataclass
+class Region:
+    name: str
+    points: np.ndarray          # (n_sources, n_times) bool over the analysed window
+    origin: str                 # "cluster" or "mask"
+    contrast: str | None = None
+    cluster: int | None = None
+    circular: bool = False
+    what: str = ""
+
+
+# ----------------------------------------------------------------------------
+# reading the results and the inputs
+# ----------------------------------------------------------------------------
+
+def _read(results: Path, problems):
+    from .outputs.layout import RUN_RECORD, SUMMARY_FILE, check_results_folder, read_json
+    check_results_folder(results)
+    record = read_json(results / RUN_RECORD)
+    summary = read_json(results / SUMMARY_FILE)
+    analysis = Path(record.get("analysis_file", ""))
+    if not analysis.is_file():
+        problems.add(results / RUN_RECORD, f"the analysis file of this run, {analysis}, is "
+                     "not there any more", "put the cohort back where it was when the run "
+                     "was made (the follow-up reads the same maps)")
+    return record, summary, analysis
+
+
+def _unchanged(record, cohort, problems):
+    """Every input file still has the sha256 the run recorded."""
+    then = record.get("inputs_sha256", {})
+    for path, digest in cohort.inputs.items():
+        if path in then and then[path] != digest:
+            problems.add(path, "changed since the run (its sha256 differs from run.json)",
+                         "run 'groupsrc run' again, then follow up the new results")
+
+
+def _window_samples(summary, prep):
+    """Indices of the analysed window's samples in the cohort's time axis."""
+    win = summary["window"]
+    return slice(int(prep.time_index[0]), int(prep.time_index[0]) + int(win["n"]))
+
+
+# ----------------------------------------------------------------------------
+# regions
+# ----------------------------------------------------------------------------
+
+def _cluster_regions(results, summary, maps, contrast, clusters, problems):
+    from .outputs.layout import read_json, read_values
+    names = summary.get("contrasts", [])
+    if contrast is not None and contrast not in names:
+        problems.add(f"--contrast {contrast}", "is not a contrast of these results",
+                     closest(contrast, names) or f"contrasts are: {', '.join(names)}")
+        return []
+    out = []
+    for name in ([contrast] if contrast else names):
+        cs = read_json(results / name / "summary.json")
+        labels = read_values(maps, results / name, "clusters").astype(np.int64)
+        table = pd.read_csv(results / name / "clusters.tsv", sep="\t", na_values=["n/a"],
+                            keep_default_na=False)
+        known = [int(k) for k in table["cluster"]] if len(table) else []
+        chosen = list(clusters) if clusters else list(cs.get("reported_clusters", []))
+        for k in chosen:
+            if k not in known:
+                problems.add(f"--cluster {k}", f"contrast {name} has no cluster {k}",
+                             f"its clusters are numbered 1 to {len(known)}" if known
+                             else "this contrast has no cluster")
+                continue
+            row = table.loc[table["cluster"] == k].iloc[0]
+            p = row.get("p_corrected")
+            ptxt = f", corrected p = {p:.3g}" if isinstance(p, float) and np.isfinite(p) else ""
+            out.append(Region(f"{name}_cluster{k}", labels == k, "cluster", name, int(k), True,
+                              f"cluster {k} of contrast {name} ({row['t_start_ms']:g} to "
+                              f"{row['t_end_ms']:g} ms, {int(row['n_sources'])} sources"
+                              f"{ptxt})"))
+    return out
+
+
+def _mask_region(mask, window, maps, summary, problems):
+    from .formats.nifti import DecodeError, affine_difference, read_mask
+    from .outputs.layout import times_ms
+    grid = maps.space
+    times = times_ms(summary["window"]) / 1e3
+    if window is None:
+        keep_t = np.ones(times.size, bool)
+    else:
+        start, stop = window
+        keep_t = (times >= start - 1e-9) & (times <= stop + 1e-9)
+        if start >= stop or not keep_t.any():
+            problems.add(f"--window {start:g} {stop:g}", f"holds no sample of the analysed "
+                         f"window ({times[0]:g} to {times[-1]:g} s)",
+                         "give START < STOP in seconds inside that window")
+            return None
+    if mask is None:
+        if window is not None:
+            problems.add("--window", "needs --mask", "give the region as --mask FILE")
+        return None
+    path = Path(mask)
+    if getattr(grid, "kind", "volume") != "volume":
+        problems.add(f"--mask {path}", "a region of one's own is read as a 3D NIfTI mask on a "
+                     f"volume grid; these results are on a {grid.kind} source space",
+                     "follow up their clusters with --contrast NAME [--cluster K ...] (surface "
+                     "masks are not read by followup yet)")
+        return None
+    try:
+        vol, affine = read_mask(path)
+    except FileNotFoundError:
+        problems.add(path, "mask file not found", "check the path")
+        return None
+    except (DecodeError, ValueError) as exc:
+        problems.add(path, str(exc), "give a 3D NIfTI mask on the template grid")
+        return None
+    if vol.shape != grid.mask.shape or not np.allclose(affine, grid.affine, atol=1e-3):
+        how = (f"shape {vol.shape} differs from the template's {grid.mask.shape}"
+               if vol.shape != grid.mask.shape else
+               f"affine differs from the template: {affine_difference(affine, grid.affine)}")
+        problems.add(path, how, "give a mask on the results' template grid "
+                     "(source_mask.nii.gz in the results folder is one)")
+        return None
+    src = grid.from_volume(vol.astype(bool))
+    if not src.any():
+        problems.add(path, "holds no source of the analysis", "mark sources inside the "
+                     "results' source_mask.nii.gz")
+        return None
+    t_used = times[keep_t]
+    return Region(f"mask_{path.name.split('.')[0]}", src[:, None] & keep_t[None, :], "mask",
+                  what=f"{path.name}, {int(src.sum())} sources, {t_used[0] * 1e3:g} to "
+                  f"{t_used[-1] * 1e3:g} ms")
+
+
+# ----------------------------------------------------------------------------
+# the table and the refit
+# ----------------------------------------------------------------------------
+
+def region_means(Y, samples, regions) -> np.ndarray:
+    """(n_maps, n_regions): each map's mean over each region's points."""
+    out = np.empty((Y.shape[0], len(regions)))
+    for k in range(Y.shape[0]):
+        block = np.asarray(Y[k, :, samples], np.float64)
+        for j, r in enumerate(regions):
+            out[k, j] = block[r.points].mean()
+    return out
+
+
+def _map_columns(prep):
+    """The maps-table columns that describe each map, and the participants' model columns."""
+    from .inputs.tables import model_columns
+    s = prep.settings
+    maps = prep.cohort.maps
+    cols = ["participant_id"] + [c for c in (s.model.get("within"), "session")
+                                 if c and c in maps.columns]
+    cols += [c for c in s.model.get("map_covariates") or [] if c in maps.columns]
+    frame = maps[cols].copy()
+    parts = prep.cohort.participants
+    for c in model_columns(s):
+        if c in parts.columns and c not in frame.columns:
+            frame[c] = parts.loc[maps["participant_id"], c].to_numpy()
+    return frame
+
+
+def refit(values, mdesign, reml, contrasts):
+    """statsmodels MixedLM on one region's means: (rows, note)."""
+    from statsmodels.regression.mixed_linear_model import MixedLM
+    X, Z = mdesign.X, pd.DataFrame(mdesign.Z, columns=mdesign.z_names)
+    groups = np.asarray(mdesign.participants)[mdesign.groups]
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        try:
+            fit = MixedLM(values, X.reset_index(drop=True), groups, exog_re=Z).fit(reml=reml)
+        except (np.linalg.LinAlgError, ValueError) as exc:
+            return [], f"the refit failed: {exc}"
+    note = "; ".join(sorted({str(w.message).splitlines()[0] for w in caught}))
+    rows = []
+    ci = np.asarray(fit.conf_int())
+    p = X.shape[1]
+    for j, term in enumerate(X.columns):
+        rows.append({"term": term, "kind": "fixed", "estimate": fit.fe_params.iloc[j],
+                     "std_error": fit.bse_fe.iloc[j], "z": fit.tvalues.iloc[j],
+                     "p": fit.pvalues.iloc[j], "ci_low": ci[j, 0], "ci_high": ci[j, 1]})
+    cov = np.asarray(fit.cov_re)
+    names = list(mdesign.z_names)
+    for a in range(len(names)):
+        for b in range(a + 1):
+            term = (f"variance of participant {names[a]}" if a == b
+                    else f"covariance of participant {names[b]} and {names[a]}")
+            rows.append({"term": term, "kind": "variance", "estimate": cov[a, b]})
+    rows.append({"term": "residual variance", "kind": "variance", "estimate": fit.scale})
+    for name, L in contrasts:
+        L = np.atleast_2d(L)
+        if L.shape[0] > 1:
+            pad = np.zeros((L.shape[0], len(fit.params) - p))
+            ft = fit.f_test(np.hstack([L, pad]))
+            rows.append({"term": f"contrast {name} (F)", "kind": "contrast",
+                         "estimate": float(np.squeeze(ft.fvalue)),
+                         "p": float(np.squeeze(ft.pvalue))})
+            continue
+        tt = fit.t_test(L)
+        lo, hi = np.asarray(tt.conf_int())[0]
+        rows.append({"term": f"contrast {name}", "kind": "contrast",
+                     "estimate": float(np.squeeze(tt.effect)), "std_error": float(np.squeeze(tt.sd)),
+                     "z": float(np.squeeze(tt.tvalue)), "p": float(np.squeeze(tt.pvalue)),
+                     "ci_low": lo, "ci_high": hi})
+    return rows, note
+
+
+def _contrast_weights(prep, mdesign):
+    """Every contrast of the analysis over the mixed model's columns (its meaning kept)."""
+    from .inputs.mixed_design import plan_mixed_contrast
+    out = []
+    for spec in prep.settings.contrasts:
+        plan = plan_mixed_contrast(spec, prep.design, mdesign, ProblemList(), "")
+        if plan is not None:
+            out.append((spec.name, plan.weights))
+    return out
+
+
+# ----------------------------------------------------------------------------
+# the command
+# ----------------------------------------------------------------------------
+
+def followup(results, *, contrast=None, clusters=None, mask=None, window=None, out=None,
+             overwrite=False) -> Path:
+    """Write the follow-up tables of a results folder; return the folder written."""
+    from .inputs.mixed_design import build_mixed_design
+    from .inputs.settings import parse_settings
+    from .outputs.layout import open_maps
+    from .pipeline import prepare
+    results = Path(results)
+    problems = ProblemList()
+    record, summary, analysis = _read(results, problems)
+    if problems:
+        raise InputError(problems)
+    if clusters and not contrast:
+        problems.add("--cluster", "needs --contrast", "name the contrast the cluster belongs to")
+        raise InputError(problems)
+    prep = prepare(parse_settings(analysis))
+    _unchanged(record, prep.cohort, problems)
+    mdesign = prep.mixed or build_mixed_design(prep.settings, prep.design, prep.cohort.maps,
+                                               problems, f"{analysis} [model]")
+    maps = open_maps(results, summary)
+    regions = [] if (mask is not None and not clusters and not contrast) else \
+        _cluster_regions(results, summary, maps, contrast, clusters, problems)
+    user = _mask_region(mask, window, maps, summary, problems)
+    regions += [user] if user is not None else []
+    if not regions and not problems:
+        problems.add(results, "no significant cluster to follow up",
+                     "name one with --contrast NAME --cluster K, or give a region with "
+                     "--mask FILE [--window START STOP]")
+    target = _target(results, out, overwrite, prep.cohort.inputs, problems)
+    if problems:
+        raise InputError(problems)
+    samples = _window_samples(summary, prep)
+    means = region_means(prep.cohort.Y, samples, regions)
+    reml = prep.settings.model.get("estimation", "reml") == "reml"
+    tables = _tables(prep, regions, means, mdesign, reml, _contrast_weights(prep, mdesign))
+    return _write(target, tables, _markdown(tables, regions, results, reml), results)
+
+
+def _tables(prep, regions, means, mdesign, reml, contrasts):
+    info = _map_columns(prep)
+    mean_rows, coef_rows, region_rows = [], [], []
+    for j, r in enumerate(regions):
+        frame = info.copy()
+        frame.insert(0, "region", r.name)
+        frame["value"] = means[:, j]
+        mean_rows.append(frame)
+        rows, note = refit(means[:, j], mdesign, reml, contrasts)
+        for row in rows:
+            coef_rows.append({"region": r.name, **row, "circular": "yes" if r.circular else "no"})
+        src, smp = np.flatnonzero(r.points.any(axis=1)), np.flatnonzero(r.points.any(axis=0))
+        region_rows.append({"region": r.name, "origin": r.origin, "contrast": r.contrast,
+                            "cluster": r.cluster, "description": r.what,
+                            "n_sources": int(src.size), "n_samples": int(smp.size),
+                            "n_points": int(r.points.sum()),
+                            "circular": "yes" if r.circular else "no",
+                            "caution": CAUTION if r.circular else USER_NOTE,
+                            "fit_note": note or "n/a"})
+    coef_cols = ["region", "term", "kind", "estimate", "std_error", "z", "p", "ci_low",
+                 "ci_high", "circular"]
+    return {"regions.tsv": pd.DataFrame(region_rows),
+            "region_means.tsv": pd.concat(mean_rows, ignore_index=True),
+            "coefficients.tsv": pd.DataFrame(coef_rows).reindex(columns=coef_cols)}
+
+
+def _markdown(tables, regions, results, reml) -> str:
+    lines = ["# Follow-up of " + str(results), ""]
+    if any(r.circular for r in regions):
+        lines += [f"**Caution:** the clusters were selected by the same test on these data; "
+                  f"{CAUTION}.", ""]
+    coefs = tables["coefficients.tsv"]
+    for r, row in zip(regions, tables["regions.tsv"].to_dict("records")):
+        lines += [f"## {r.name}", "", f"{r.what}; {row['n_points']} source x sample points."
+                  + ("" if r.circular else f" Note: {USER_NOTE}."), "",
+                  f"statsmodels MixedLM ({'REML' if reml else 'ML'}) on the region mean of "
+                  "every map, the analysis's fixed and random effects:", "",
+                  "| term | estimate | std. error | z | p |", "|---|---|---|---|---|"]
+        for c in coefs[coefs.region == r.name].to_dict("records"):
+            cells = [f"{c[k]:.4g}" if isinstance(c[k], float) and np.isfinite(c[k]) else ""
+                     for k in ("estimate", "std_error", "z", "p")]
+            lines.append(f"| {c['term']} | " + " | ".join(cells) + " |")
+        if row["fit_note"] != "n/a":
+            lines += ["", f"statsmodels said: {row['fit_note']}"]
+        lines.append("")
+    return "\n".join(lines) + "\n"
+
+
+def _target(results, out, overwrite, inputs, problems) -> Path | None:
+    """The folder to write: new or empty, or (``--overwrite``) one a follow-up wrote;
+    never the results folder, inside it, or an input."""
+    target = Path(out) if out is not None else results.parent / (results.name + "_followup")
+    t = target.resolve()
+    r = results.resolve()
+    if t == r or r in t.parents or t in r.parents:
+        problems.add(target, "is, holds or sits inside the results folder",
+                     "choose another --out (the results folder stays as groupsrc wrote it)")
+        return None
+    for p in inputs:
+        p = Path(p).resolve()
+        if p == t or t in p.parents:
+            problems.add(target, f"is or holds an input ({p})", "choose another --out")
+            return None
+    if target.exists() and (not target.is_dir() or any(target.iterdir())):
+        if not (target / MARKER).is_file():
+            problems.add(target, "exists and was not written by 'groupsrc followup'; nothing "
+                         "was changed", "choose another --out")
+        elif not overwrite:
+            problems.add(target, "holds an earlier follow-up", "add --overwrite to replace it")
+    return target
+
+
+def _write(target: Path, tables, markdown, results) -> Path:
+    """Every file into a hidden sibling, then swapped into place (an earlier follow-up
+    is replaced only after the new one is complete)."""
+    from .outputs.files import write_tsv
+    staging = target.parent / f".{target.name}.followup-staging-{secrets.token_hex(4)}"
+    staging.mkdir(parents=True)
+    try:
+        for name, frame in tables.items():
+            write_tsv(staging / name, frame)
+        write_text(staging / "followup.md", markdown)
+        write_text(staging / MARKER, json.dumps({"results": str(results.resolve())}) + "\n")
+        if target.exists():
+            old = target.parent / f".{target.name}.followup-old-{secrets.token_hex(4)}"
+            os.replace(target, old)
+            os.replace(staging, target)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(staging, target)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    return target

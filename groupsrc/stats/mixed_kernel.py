@@ -1,0 +1,396 @@
+"""The mixed-model statistic kernel: observed maps and their resampled copies.
+
+One contrast ``L`` (one row: t; k rows: F) of a :class:`~.mixed_fit.MixedFit`
+behind the contract of :mod:`.kernels`.  The observed statistic is the z of
+equal p (see :mod:`.mixed_inference`) of the contrast scored at the null
+model's variance components (below); the full fit's t or F and its
+per-feature Satterthwaite df come along in ``Observed.test_statistic`` and
+``df_map``.
+
+Resampling (two levels, Winkler et al. 2015, NeuroImage 123:253-268)
+--------------------------------------------------------------------
+Participants are the units that move, never single maps:
+
+* **within-participant effects** (a ``within`` contrast alone, a slope of a
+  map covariate, raw weights that touch map-level columns): whole-participant
+  sign flips -- each participant's residual vector is multiplied by +1 or -1
+  (independent and symmetric errors at the participant level, which holds
+  for any random-effect structure and any number of maps);
+* **between-participant effects** (``compare``, a ``slope`` of a participants
+  column, with or without ``within``): whole-participant permutations among
+  participants whose maps have the same layout (the same conditions,
+  sessions, map covariates and random-effect rows) and the same ``blocks``
+  label -- exchangeable because their residual vectors have the same
+  covariance.  When the layouts leave fewer distinct permutations than
+  ``min(resamples, 1000, 2^N)``, whole-participant sign flips are used instead
+  (``scheme_name`` says so, and the methods text).
+
+Nuisance terms by Freedman-Lane (Freedman & Lane 1983; Winkler et al. 2014)
+in the model's own metric: ``r_z = y - X beta_z`` with ``beta_z`` the GLS fit
+of the model restricted to ``L beta = 0``, rearranged data ``X beta_z + P
+r_z``.
+
+What is re-estimated per resample, and what is held fixed.  Held fixed per
+feature: the variance components ``theta0`` of the *null model* (the model
+restricted to ``L beta = 0``, fitted by REML once at every feature, see
+:meth:`MixedKernel.null_fit`), so the GLS weighting ``Vbar^{-1}``, and the
+Satterthwaite df computed at that fit (they depend on ``theta0`` and the
+design only).  Re-estimated per resample -- and for the observed data, which
+are scored the same way: the fixed effects by GLS, the residual variance
+``sigma^2`` of the full model at ``theta0``, and so the t or F and its z.  Why
+the test stays valid: the rearrangements leave the null distribution of the
+Freedman-Lane data unchanged, and ``theta0`` is estimated from the
+restricted model, in which the tested effect plays no part, so it describes
+the observed data and every rearrangement alike (to the approximation
+Freedman-Lane itself makes); a fixed weighting only decides which linear
+combination of each participant's maps carries the effect (an efficiency
+choice).  The full model's own estimates would not do: they are chosen with the
+tested effect in view, and where they happen to make the observed t large the
+rearrangements do not share it -- the maximum statistic then exceeds its
+rearrangement distribution far more often than alpha (seen in the null
+calibration).  The null calibration on unbalanced noise cohorts
+(``tests/test_mixed_calibration.py``) checks the family-wise error.
+Studentizing by the re-estimated ``sigma^2`` keeps features with different
+noise on one scale for the map-wide maximum.  Identity resample = the
+observed statistic.  Estimates, standard errors, t, df and uncorrected p of
+the maps come from the full model's REML fit (:func:`.contrast_statistics`);
+the z that forms clusters and maxima is the scored one.
+
+Cost.  With ``theta`` fixed, block-diagonal whitening commutes with
+whole-participant sign flips and permutations, so per feature the data
+reduce once to ``v_i = L_A^{-1} X_i' Vbar_i^{-1} r_z,i`` (p numbers per
+participant; ``L_A`` the Cholesky factor of ``A``).  Then for sign flips
+``s``: ``g = sum_i s_i v_i`` -- one product ``(R, N) @ (N, p F)`` for a block
+of ``R`` resamples -- and ``t = a'g / sqrt((||r_z||^2_V - ||g||^2) / m)``,
+``a = L_A^{-1} L' / ||.||``.  Permutations use the layout ``X_i = [b_i (x)
+W_i, M_i]``: ``g = L_A^{-1} (sum_m (e_m (x) sum_j b_{pi^{-1} j, m} w_j),
+sum_j w^M_j)`` with ``w_j = [W_j, M_j]' Vbar_j^{-1} r_z,j``, again one product
+per between column.  No refit per resample.  Products have one fixed shape
+(``kernels.RES_BLOCK`` resamples by ``kernels.FEATURE_CHUNK`` features) and
+BLAS runs on one thread, so a resample's bits never depend on its batch.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+from scipy import sparse, special
+
+from . import mixed_linalg as la
+from .kernels import FEATURE_CHUNK, RES_BLOCK, FitInfo, Observed, StatisticKernel, one_blas_thread
+from .mixed import MixedCore, MixedDesign
+from .mixed_fit import MixedFit, fit_features
+from .mixed_inference import (contrast_statistics, score_statistics, scored_z, t_switch,
+                              z_of_f)
+from .resampling import Rearrangements, count_distinct_permutations, permutations, sign_flips
+
+#: fewest distinct whole-participant permutations before sign flips are used instead
+MIN_PERMUTATIONS = 1000
+
+
+def _null_basis(Lmat):
+    """Orthonormal basis (p, p - k) of {b : L b = 0}."""
+    _, sv, Vt = np.linalg.svd(Lmat)
+    rank = int(np.sum(sv > 1e-10 * sv[0]))
+    return Vt[rank:].T
+
+
+class MixedKernel(StatisticKernel):
+    """Contrast ``contrast`` ((p,) -> t, (k, p) -> F) of a fitted mixed model.
+
+    Parameters
+    ----------
+    fit : MixedFit over the features of ``Y``.
+    Y : (n_maps, n_features) float32 data the model was fitted on.
+    contrast : weights over the design's columns.
+    scheme : "sign-flip" (within-participant effect) or "permutation"
+        (between-participant effect); see the module docstring.
+    """
+
+    def __init__(self, fit: MixedFit, Y, contrast, *, scheme="sign-flip"):
+        self.fit, self.Y = fit, Y
+        self.core = fit.core
+        self.L = np.atleast_2d(np.asarray(contrast, float))
+        self.kind = "t" if self.L.shape[0] == 1 else "F"
+        self.requested = scheme
+        self.mode = scheme
+        self.n_features = int(Y.shape[1])
+        self.n_units = self.core.N
+        self.freedman_lane = self.core.p > self.L.shape[0]
+        self._nu = None
+        self._fit0 = None
+        self.rearr = None
+        self.df = (float("nan"),) if self.kind == "t" else (self.L.shape[0], float("nan"))
+        self._buffers = {}
+
+    def __getstate__(self):                 # work buffers stay with their process
+        state = dict(self.__dict__)
+        state["_buffers"] = {}
+        return state
+
+    def buffer(self, B):
+        """A (B, n_features) float32 work array reused by the calling thread."""
+        key = threading.get_ident()
+        buf = self._buffers.get(key)
+        if buf is None or buf.shape[0] < B:
+            buf = np.empty((B, self.n_features), np.float32)
+            self._buffers[key] = buf
+        return buf[:B]
+
+    # -- observed -------------------------------------------------------------
+    def null_fit(self) -> MixedFit:
+        """The model restricted to L b = 0, fitted at every feature (once): its variance
+        components weight the scored statistic and the rearrangements."""
+        if self._fit0 is None:
+            Nz = _null_basis(self.L)
+            if Nz.shape[1] == 0:             # the contrast spans every fixed effect
+                self._fit0 = self.fit
+            else:
+                d = self.core.design
+                core0 = MixedCore(MixedDesign(np.asarray(d.X) @ Nz, d.Z, d.groups))
+                self._fit0 = fit_features(core0, self.Y, reml=self.fit.reml)
+        return self._fit0
+
+    def observed(self, tails):
+        """Statistic: the scored z (null-model variance components, see the module
+        docstring); estimate, SE, t or F (``test_statistic``), its Satterthwaite df
+        (``df_map``) and p: the full REML fit."""
+        cs = contrast_statistics(self.fit, self.Y, self.L, tails)
+        z0, _, nu0 = score_statistics(self.fit, self.null_fit(), self.Y, self.L)
+        self._nu = nu0
+        med = round(float(np.median(cs.df[np.isfinite(cs.df)])), 3) \
+            if np.isfinite(cs.df).any() else 0.0
+        self.df = (med,) if self.kind == "t" else (cs.k, med)
+        return Observed(self.kind, self.df, z0, cs.estimate, cs.se, cs.std_effect, cs.p,
+                        scale="z", test_statistic=cs.statistic, df_map=cs.df)
+
+    def threshold(self, forming_p, tails):
+        """The cluster-forming threshold on the z scale (the same for every feature)."""
+        if self.kind == "t" and tails == "two":
+            return float(-special.ndtri(forming_p / 2.0))
+        return float(-special.ndtri(forming_p))
+
+    def info(self):
+        p = self.core.p
+        method = "linear mixed model (" + ("REML" if self.fit.reml else "ML") + ")"
+        return FitInfo(method, float(self.df[-1]), int(p), int(p - self.L.shape[0]))
+
+    @property
+    def scheme_name(self):
+        names = {"sign-flip": "whole-participant sign flips",
+                 "permutation": "whole-participant permutations within map layouts"}
+        text = names[self.mode]
+        if self.mode != self.requested:
+            text += " (too few participants share a map layout to permute)"
+        return text + (" / Freedman-Lane" if self.freedman_lane else "")
+
+    # -- rearrangements -------------------------------------------------------
+    def _blocks(self, blocks):
+        layout = self.core.design.layout
+        layout = np.zeros(self.core.N, int) if layout is None else np.asarray(layout)
+        if blocks is None:
+            return layout.astype(str)
+        return np.char.add(np.char.add(layout.astype(str), "|"), np.asarray(blocks).astype(str))
+
+    def rearrangements(self, n_resamples, seed, blocks=None) -> Rearrangements:
+        N = self.core.N
+        self.mode = self.requested
+        if self.requested == "permutation":
+            d = self.core.design
+            if d.between is None or d.within is None:
+                raise ValueError("whole-participant permutations need the design layout "
+                                 "(between, within, map_cols)")
+            bl = self._blocks(blocks)
+            count = count_distinct_permutations(labels=d.between, blocks=bl)
+            if count >= min(int(n_resamples), MIN_PERMUTATIONS, 2 ** min(N, 62)):
+                return permutations(N, int(n_resamples), seed, labels=d.between, blocks=bl)
+            self.mode = "sign-flip"
+        return sign_flips(N, int(n_resamples), seed)
+
+    # -- preparation ----------------------------------------------------------
+    def prepare(self, rearr: Rearrangements):
+        self.rearr = rearr
+        if self._nu is None:
+            self.observed("two")
+        core, F = self.core, self.n_features
+        self.fc = min(FEATURE_CHUNK, F)
+        nch = -(-F // self.fc)
+        k, p, N = self.L.shape[0], core.p, core.N
+        perm = rearr.kind == "permutation"
+        if perm:
+            d = core.design
+            self.pb, self.pw = d.between.shape[1], d.within.shape[1]
+            self.pm = 0 if d.map_cols is None else d.map_cols.shape[1]
+            width = self.pw
+        else:
+            width = p
+        self.data = np.zeros((nch, N, width * self.fc), np.float32)
+        self.a = np.zeros((k, p, nch * self.fc), np.float32)
+        self.rr = np.zeros(nch * self.fc, np.float32)
+        self.nu = np.ones(nch * self.fc)
+        self.nu[:F] = np.where(np.isfinite(self._nu) & (self._nu > 0), self._nu, 1.0)
+        self.switch = t_switch(self.nu)
+        if perm:
+            self.LA = np.zeros((p, p, nch * self.fc), np.float32)
+            self.hm = np.zeros((self.pm, nch * self.fc), np.float32)
+        self._design_parts(perm)
+        with one_blas_thread():
+            for c in range(nch):
+                a, b = c * self.fc, min(F, (c + 1) * self.fc)
+                self._prepare_chunk(c, a, b, perm)
+
+    def _design_parts(self, perm):
+        """Per-participant design products the preparation needs (once)."""
+        core = self.core
+        X, g, N, p, n = core.X, core.groups, core.N, core.p, core.n
+        rows = (g[:, None] * p + np.arange(p)[None, :]).ravel()
+        cols = np.repeat(np.arange(n), p)
+        self.Sx = sparse.csr_matrix((X.ravel(), (rows, cols)), shape=(N * p, n))
+        self.XX = np.zeros((N, p, p))
+        np.add.at(self.XX, g, X[:, :, None] * X[:, None, :])
+        if perm:
+            d = core.design
+            Lw = np.hstack([d.within] + ([d.map_cols] if self.pm else []))
+            pl = Lw.shape[1]
+            rows = (g[:, None] * pl + np.arange(pl)[None, :]).ravel()
+            self.SL = sparse.csr_matrix((Lw.ravel(), (rows, np.repeat(np.arange(n), pl))),
+                                        shape=(N * pl, n))
+            self.LX = np.zeros((N, pl, p))
+            np.add.at(self.LX, g, Lw[:, :, None] * X[:, None, :])
+            self.HL = np.stack([np.stack([core.onehot @ (core.Z[:, a] * Lw[:, j])
+                                          for j in range(pl)], axis=1) for a in range(core.q)])
+            self.pl = pl
+
+    def _prepare_chunk(self, c, a, b, perm):
+        core, L = self.core, self.L
+        p, q, N, f = core.p, core.q, core.N, b - a
+        Yc = np.asarray(self.Y[:, a:b], np.float64)
+        st = core.stats(Yc)
+        fit0 = self.null_fit()
+        ev = core.evaluate(fit0.theta[:, a:b], st, self.fit.reml, order=0)
+        live = ev.ok & (self.fit.code[a:b] != 3) & (fit0.code[a:b] != 3) \
+            & np.isfinite(self.nu[a:b]) & (self.nu[a:b] > 0)
+        LA = np.where(live, ev.LA, np.eye(p)[:, :, None])
+        A = la.mm(LA, la.T(LA))
+        # Freedman-Lane: GLS fit of the model restricted to L b = 0
+        Nz = _null_basis(L)
+        if Nz.shape[1]:
+            Az = np.einsum("pi,pqf,qj->ijf", Nz, A, Nz)
+            Lz, _ = la.chol(Az)
+            beta_z = Nz @ la.chol_solve(Lz, Nz.T @ ev.b)
+        else:
+            beta_z = np.zeros((p, f))
+        Ki = ev.Kc[:, :, core.cls]                                       # (q, q, N, f)
+        Hbz = (core.Hmat.T @ beta_z).reshape(q, N, f)
+        w = la.mv(Ki, st.u - Hbz)                                        # K_i Z_i' r_z,i
+        Xy = np.asarray(self.Sx @ Yc).reshape(N, p, f).transpose(1, 0, 2)
+        XXb = (self.XX.reshape(N * p, p) @ beta_z).reshape(N, p, f).transpose(1, 0, 2)
+        h = Xy - XXb - np.einsum("aik,aif->kif", core.H, w)              # X_i' Vbar_i^-1 r_z,i
+        v = la.solve_lower(LA[:, :, None, :], h)                          # (p, N, f)
+        g1 = v.sum(axis=1)
+        rr = np.where(live, np.maximum(ev.r2, 0.0), 1.0) + (g1 * g1).sum(axis=0)
+        # effect directions in the whitened coordinates
+        At = la.solve_lower(LA[:, :, None, :], np.broadcast_to(L.T[:, :, None], (p, L.shape[0], f)))
+        At = _orthonormal_columns(At)                                     # (p, k, f)
+        At = np.where(live, At, 0.0)
+        fc = self.fc
+        self.a[:, :, a:a + f] = np.transpose(At, (1, 0, 2))
+        self.rr[a:a + f] = rr
+        if not perm:
+            v = np.where(live, v, 0.0)
+            blk = np.zeros((N, p, fc), np.float32)
+            blk[:, :, :f] = v.transpose(1, 0, 2)
+            self.data[c] = blk.reshape(N, p * fc)
+            return
+        Lwy = np.asarray(self.SL @ Yc).reshape(N, self.pl, f).transpose(1, 0, 2)
+        LXb = (self.LX.reshape(N * self.pl, p) @ beta_z).reshape(N, self.pl, f).transpose(1, 0, 2)
+        ell = Lwy - LXb - np.einsum("aik,aif->kif", self.HL, w)          # (pl, N, f)
+        ell = np.where(live, ell, 0.0)
+        blk = np.zeros((N, self.pw, fc), np.float32)
+        blk[:, :, :f] = ell[:self.pw].transpose(1, 0, 2)
+        self.data[c] = blk.reshape(N, self.pw * fc)
+        self.hm[:, a:a + f] = ell[self.pw:].sum(axis=1)
+        self.LA[:, :, a:a + f] = LA
+
+    # -- resampling -----------------------------------------------------------
+    def _block_rows(self, k):
+        """The product matrix of resample block ``k`` (zero rows for absent resamples)."""
+        N = self.core.N
+        m = self.rearr.n_resamples
+        lo, hi = k * RES_BLOCK, min(m, (k + 1) * RES_BLOCK)
+        rows = self.rearr.matrix[lo:hi]
+        if self.rearr.kind == "sign-flip":
+            G = np.zeros((RES_BLOCK, N), np.float32)
+            G[:hi - lo] = rows
+            return G
+        B = self.core.design.between.astype(np.float32)
+        inv = np.argsort(rows, axis=1)                                  # slot j -> data of j
+        G = np.zeros((RES_BLOCK, self.pb, N), np.float32)
+        G[:hi - lo] = np.transpose(B[inv], (0, 2, 1))
+        return G.reshape(RES_BLOCK * self.pb, N)
+
+    def _g(self, prod, rows, a, b):
+        """Whitened effect-space coordinates g (p, R, f) of the product of a block."""
+        R, f, fc = rows.stop - rows.start, b - a, self.fc
+        p = self.core.p
+        if self.rearr.kind == "sign-flip":
+            P = prod.reshape(RES_BLOCK, p, fc)[rows, :, :f]
+            return np.transpose(P, (1, 0, 2))
+        P = prod.reshape(RES_BLOCK, self.pb, self.pw, fc)[rows, :, :, :f]
+        h = np.empty((p, R, f), np.float32)
+        h[:self.pb * self.pw] = np.transpose(P.reshape(R, self.pb * self.pw, f), (1, 0, 2))
+        if self.pm:
+            h[self.pb * self.pw:] = self.hm[:, None, a:b]
+        return la.solve_lower(self.LA[:, :, None, a:b], h).astype(np.float32)
+
+    def _statistic(self, g, a, b):
+        """z (R, f) from g (p, R, f): t or F at the fixed variance components, then z."""
+        m = np.float32(self.core.m(self.fit.reml))
+        ss = (g * g).sum(axis=0)
+        rss = np.maximum(self.rr[None, a:b] - ss, np.float32(1e-30))
+        U = [(self.a[j, :, None, a:b] * g).sum(axis=0) for j in range(self.L.shape[0])]
+        nu = self.nu[a:b]
+        if self.kind == "t":
+            t = U[0] * np.sqrt(m / rss)
+            return scored_z(t.astype(np.float64), nu, self.switch[a:b]).astype(np.float32)
+        k = len(U)
+        Fv = sum(u * u for u in U) * (m / rss) / np.float32(k)
+        return z_of_f(Fv.astype(np.float64), k, nu).astype(np.float32)
+
+    def resampled(self, lo, hi, out=None):
+        """z maps of resamples lo..hi-1 (see the contract in :mod:`.kernels`)."""
+        B = hi - lo
+        F, fc = self.n_features, self.fc
+        ks = range(lo // RES_BLOCK, (hi - 1) // RES_BLOCK + 1)
+        mx = np.full(B, -np.inf)
+        mn = np.full(B, np.inf)
+        with one_blas_thread():
+            Gs = [self._block_rows(k) for k in ks]
+            for c in range(self.data.shape[0]):
+                a, b = c * fc, min(F, (c + 1) * fc)
+                D = self.data[c]
+                for k, G in zip(ks, Gs):
+                    i0, i1 = max(lo, k * RES_BLOCK), min(hi, (k + 1) * RES_BLOCK)
+                    prod = G @ D
+                    g = self._g(prod, slice(i0 - k * RES_BLOCK, i1 - k * RES_BLOCK), a, b)
+                    z = self._statistic(g, a, b)
+                    if out is not None:
+                        out[i0 - lo:i1 - lo, a:b] = z
+                    else:
+                        seg = slice(i0 - lo, i1 - lo)
+                        np.maximum(mx[seg], z.max(axis=1), out=mx[seg])
+                        np.minimum(mn[seg], z.min(axis=1), out=mn[seg])
+        return out, mx, mn
+
+
+def _orthonormal_columns(A):
+    """Gram-Schmidt on the columns of A (p, k, F), per feature."""
+    p, k = A.shape[:2]
+    Q = np.array(A, dtype=float)
+    for j in range(k):
+        for i in range(j):
+            Q[:, j] -= (Q[:, i] * Q[:, j]).sum(axis=0) * Q[:, i]
+        nrm = np.sqrt((Q[:, j] * Q[:, j]).sum(axis=0))
+        Q[:, j] /= np.where(nrm > 0, nrm, 1.0)
+    return Q
