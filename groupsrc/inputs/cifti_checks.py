@@ -15,7 +15,8 @@ import numpy as np
 
 from ..formats import cifti
 from ..formats.nifti import affine_difference
-from .surface_checks import _majority, _map_path, _read
+from .surface_checks import _majority, _read
+from .tables import map_path
 from .tables import MISSING
 
 FIX_MODELS = ("write every map with the same brain models (the same cortex vertices, and "
@@ -31,7 +32,7 @@ def cifti_headers(maps, mpath, meshes, problems):
         if rel in MISSING:
             problems.add(where, "empty path", "give the map file, relative to the maps table")
             continue
-        p = _map_path(mpath, rel)
+        p = map_path(mpath, rel)
         h = _read(p, f"{where} ({p})", problems, "cifti")
         if h is None:
             continue

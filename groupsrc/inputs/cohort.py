@@ -13,7 +13,6 @@ from __future__ import annotations
 import math
 import sys
 from dataclasses import dataclass, field
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -26,7 +25,7 @@ from ..formats.nifti import (DecodeError, affine_difference, read_data, read_hea
                              read_sources)
 from .problems import InputError, ProblemList
 from .settings import Settings, is_surface
-from .tables import ID, MISSING, check_tables, read_table, rows_text
+from .tables import ID, MISSING, check_tables, map_path, read_table, real_path, rows_text
 
 
 
@@ -125,20 +124,6 @@ def check_headers(settings, maps, mpath, problems):
     return headers, ref
 
 
-def map_path(mpath: Path, rel: str) -> Path:
-    """A maps-table path: relative to the folder of the maps table."""
-    p = Path(rel).expanduser()
-    return p if p.is_absolute() else (mpath.parent / p)
-
-
-def _real(path: Path) -> Path:
-    """The path with '..' and symbolic links resolved (as given when that fails, e.g. a loop)."""
-    try:
-        return path.resolve()
-    except (OSError, RuntimeError):
-        return path.absolute()
-
-
 def _describe(maps, line, within):
     """'participant 'sub-01' condition 'rare'' for one maps row."""
     text = f"participant '{maps.at[line, ID]}'"
@@ -159,7 +144,7 @@ def check_same_files(settings, maps, mpath, digests, problems):
     resolved = {}
     for line, rel in maps["path"].items():
         if rel not in MISSING:
-            resolved.setdefault(_real(map_path(mpath, rel)), []).append(line)
+            resolved.setdefault(real_path(map_path(mpath, rel)), []).append(line)
     for real, lines in resolved.items():
         if len(lines) > 1:
             problems.add(f"{mpath} rows {rows_text(lines)}",
@@ -171,7 +156,7 @@ def check_same_files(settings, maps, mpath, digests, problems):
     for line, digest in digests.items():
         by_digest.setdefault(digest, []).append(line)
     for digest, lines in by_digest.items():
-        files = {_real(map_path(mpath, maps.at[ln, "path"])) for ln in lines}
+        files = {real_path(map_path(mpath, maps.at[ln, "path"])) for ln in lines}
         if len(files) > 1:
             problems.add(f"{mpath} rows {rows_text(lines)}",
                          "files " + ", ".join(maps.at[ln, "path"] for ln in lines)

@@ -20,23 +20,11 @@ from .. import formats
 from ..formats import gifti
 from ..sources import TimeAxis
 from ..sources.surface import HEMISPHERES, mesh_defects
-from .tables import MISSING
+from .tables import MISSING, map_path, real_path
 
 FIX_MESH = ("give a closed, manifold mesh (e.g. the hemisphere's white or pial surface with "
             "the medial wall kept; exclude the medial wall with mask_left / mask_right), or "
             "set mesh_closed = false under [cohort] for a mesh with a cut")
-
-
-def _map_path(mpath: Path, rel: str) -> Path:
-    p = Path(rel).expanduser()
-    return p if p.is_absolute() else (mpath.parent / p)
-
-
-def _real(path: Path) -> Path:
-    try:
-        return path.resolve()
-    except (OSError, RuntimeError):
-        return path.absolute()
 
 
 def _majority(values):
@@ -210,7 +198,7 @@ def gifti_headers(maps, mpath, meshes, problems):
                 problems.add(where, "empty path", f"give the {hemi} hemisphere's map file, "
                              "relative to the maps table")
                 continue
-            p = _map_path(mpath, rel)
+            p = map_path(mpath, rel)
             h = _read(p, f"{where} ({p})", problems, "gifti")
             if h is not None:
                 row[hemi] = h
@@ -329,7 +317,7 @@ def check_same_files(entries, mpath, digests, problems):
 
     by_path = {}
     for k, p in entries.items():
-        by_path.setdefault(_real(p), []).append(k)
+        by_path.setdefault(real_path(p), []).append(k)
     for real, ks in by_path.items():
         if len(ks) > 1:
             problems.add(f"{mpath} {', '.join(cell(k) for k in ks)}",
@@ -340,7 +328,7 @@ def check_same_files(entries, mpath, digests, problems):
     for k, d in digests.items():
         by_digest.setdefault(d, []).append(k)
     for d, ks in by_digest.items():
-        if len({_real(entries[k]) for k in ks}) > 1:
+        if len({real_path(entries[k]) for k in ks}) > 1:
             problems.add(f"{mpath} {', '.join(cell(k) for k in ks)}",
                          f"files with identical content (sha256 {d[:12]}...)",
                          "give each map its own data; a copied file gives a zero contrast or a "

@@ -45,9 +45,9 @@ from ..sources.surface import HEMISPHERES
 from ..sources.voxels import VoxelParts
 from .problems import InputError, ProblemList
 from .cifti_checks import cifti_headers
-from .surface_checks import (_check_time, _map_path, _times, check_same_files, gifti_headers,
+from .surface_checks import (_check_time, _times, check_same_files, gifti_headers,
                              read_atlas, read_masks, read_meshes)
-from .tables import HEMISPHERE_PATHS, MISSING
+from .tables import HEMISPHERE_PATHS, MISSING, map_path
 
 #: cache entries of surfaces carry this tag, so they never collide with volumes
 CACHE_TAG = "surface-v1"
@@ -188,7 +188,7 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
             rel = maps.at[line, col]
             if rel not in MISSING:
                 entries[(line, col.split("_", 1)[1] if fmt == "gifti" else None)] = \
-                    _map_path(mpath, rel)
+                    map_path(mpath, rel)
     digests = {k: index.sha256(headers[k].path) for k in headers}
     check_same_files(entries, mpath, digests, problems)
     hemis = list(meshes)

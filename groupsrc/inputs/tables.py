@@ -393,3 +393,17 @@ def _check_levels(settings, parts, ppath, problems):
             problems.add(f"{ppath} column '{c.slope}'",
                          f"slope of contrast '{c.name}' needs a numeric column",
                          "every value must be a number")
+
+
+def map_path(mpath: Path, rel: str) -> Path:
+    """A maps-table path: relative to the folder of the maps table."""
+    p = Path(rel).expanduser()
+    return p if p.is_absolute() else (mpath.parent / p)
+
+
+def real_path(path: Path) -> Path:
+    """The path with '..' and symbolic links resolved (as given when that fails, e.g. a loop)."""
+    try:
+        return path.resolve()
+    except (OSError, RuntimeError):
+        return path.absolute()

@@ -142,6 +142,23 @@ class StatisticKernel(ABC):
     @abstractmethod
     def info(self) -> FitInfo: ...
 
+    # -- per-thread work arrays (shared by every kernel) ----------------------
+    _buffers: dict
+
+    def __getstate__(self):                 # work buffers stay with their process
+        state = dict(self.__dict__)
+        state["_buffers"] = {}
+        return state
+
+    def buffer(self, B):
+        """A (B, n_features) float32 work array reused by the calling thread."""
+        key = threading.get_ident()
+        buf = self._buffers.get(key)
+        if buf is None or buf.shape[0] < B:
+            buf = np.empty((B, self.n_features), np.float32)
+            self._buffers[key] = buf
+        return buf[:B]
+
 
 # ----------------------------------------------------------------------------
 # helpers shared by kernels
@@ -320,11 +337,6 @@ class OLSKernel(StatisticKernel):
         self.freedman_lane = False
         self._buffers = {}
 
-    def __getstate__(self):                 # work buffers stay with their process
-        state = dict(self.__dict__)
-        state["_buffers"] = {}
-        return state
-
     # -- observed -------------------------------------------------------------
     def observed(self, tails):
         Yf, X, C = self.Y, self.X, self.C
@@ -402,15 +414,6 @@ class OLSKernel(StatisticKernel):
         G = np.zeros((RES_BLOCK * r, n), np.float32)
         G[:(b - a) * r] = self._gemm_rows(self.rearr.matrix[a:b])
         return G
-
-    def buffer(self, B):
-        """A (B, n_features) float32 work array reused by the calling thread."""
-        key = threading.get_ident()
-        buf = self._buffers.get(key)
-        if buf is None or buf.shape[0] < B:
-            buf = np.empty((B, self.n_features), np.float32)
-            self._buffers[key] = buf
-        return buf[:B]
 
     def resampled(self, lo, hi, out=None):
         """Statistics of resamples lo..hi-1 (see the contract in the module docstring)."""

@@ -72,7 +72,6 @@ BLAS runs on one thread, so a resample's bits never depend on its batch.
 
 from __future__ import annotations
 
-import threading
 
 import numpy as np
 from scipy import sparse, special
@@ -123,20 +122,6 @@ class MixedKernel(StatisticKernel):
         self.rearr = None
         self.df = (float("nan"),) if self.kind == "t" else (self.L.shape[0], float("nan"))
         self._buffers = {}
-
-    def __getstate__(self):                 # work buffers stay with their process
-        state = dict(self.__dict__)
-        state["_buffers"] = {}
-        return state
-
-    def buffer(self, B):
-        """A (B, n_features) float32 work array reused by the calling thread."""
-        key = threading.get_ident()
-        buf = self._buffers.get(key)
-        if buf is None or buf.shape[0] < B:
-            buf = np.empty((B, self.n_features), np.float32)
-            self._buffers[key] = buf
-        return buf[:B]
 
     # -- observed -------------------------------------------------------------
     def null_fit(self) -> MixedFit:
