@@ -107,3 +107,18 @@ def track(iterable, new, desc, total, unit="item"):
             p.update(i + 1)
     finally:
         p.close()
+
+
+def per_item(progress):
+    """``each(items, desc, unit)``: iterate over a sequence while showing progress.
+
+    ``progress`` is a :func:`reporter` (silent when quiet), or True/False/None for a
+    tqdm bar (None: a bar when stderr is a terminal) -- the two ways the loaders are
+    called.
+    """
+    if callable(progress):
+        new = None if getattr(progress, "mode", "") == "quiet" else progress
+        return lambda items, desc, unit: track(items, new, desc, len(items), unit)
+    from tqdm.auto import tqdm
+    show = sys.stderr.isatty() if progress is None else bool(progress)
+    return lambda items, desc, unit: tqdm(items, desc=desc, unit=unit, disable=not show)

@@ -1,8 +1,9 @@
 """The backend contract (groupsrc/stats/backends.py): every backend gives the serial
 backend's null distribution bit for bit, whatever its worker count or batch size.
 
-Every backend in ``BACKENDS`` is tried automatically; a backend that needs a
-running service (a cluster) can be given a factory in ``FACTORIES``.  The
+Every backend in ``BACKENDS`` is tried automatically, with a job of every statistic
+kernel in ``KERNEL_JOBS``; a backend that needs a running service (a cluster) can be
+given a factory in ``FACTORIES``.  The
 promise checked is the project's own (DESIGN.md: a seed gives the same result
 whatever the batch size, worker count or engine); no outside value is
 involved.
@@ -17,6 +18,11 @@ from groupsrc.sources import VolumeGrid
 from groupsrc.stats.backends import BACKENDS, NullJob, make_backend
 from groupsrc.stats.corrections import TfceOptions, make_correction
 from groupsrc.stats.kernels import OLSKernel
+from groupsrc.stats.mixed import MixedCore
+from groupsrc.stats.mixed_fit import fit_features
+from groupsrc.stats.mixed_kernel import MixedKernel
+
+from _mixed_data import simulate, unbalanced_design
 
 #: how to build each backend for the test (default: make_backend(name, workers)); the
 #: Dask backend runs on a local cluster of `workers` processes on the loopback interface
@@ -24,11 +30,14 @@ FACTORIES = {"dask": lambda name, workers: make_backend(name, workers,
                                                         scheduler=f"local:{workers}")}
 
 
-def _job(correction, scheme="sign-flip", m=70, seed=5):
+GRID = VolumeGrid.from_mask(np.ones((5, 4, 3), bool), np.eye(4))
+T = 7
+
+
+def _ols_kernel(scheme):
     rng = np.random.default_rng(2)
-    grid = VolumeGrid.from_mask(np.ones((5, 4, 3), bool), np.eye(4))
-    n, T = 12, 7
-    Y = rng.standard_normal((n, grid.n_sources * T)).astype(np.float32) + 0.3
+    n = 12
+    Y = rng.standard_normal((n, GRID.n_sources * T)).astype(np.float32) + 0.3
     if scheme == "sign-flip":
         X = np.c_[np.ones(n), rng.standard_normal(n)]          # covariate: Freedman-Lane
         C = [1.0, 0.0]
@@ -36,12 +45,32 @@ def _job(correction, scheme="sign-flip", m=70, seed=5):
         X = np.c_[np.repeat([1.0, 0.0], n // 2), np.repeat([0.0, 1.0], n // 2),
                   rng.standard_normal(n)]
         C = [1.0, -1.0, 0.0]
-    kernel = OLSKernel(Y, X, C, scheme=scheme)
+    return OLSKernel(Y, X, C, scheme=scheme)
+
+
+def _mixed_kernel(scheme):
+    design = unbalanced_design(14, seed=31, missing=(2,), max_sessions=2,
+                               random_slope=scheme == "sign-flip")
+    Y = simulate(design, GRID.n_sources * T, seed=32)
+    kernel = MixedKernel(fit_features(MixedCore(design), Y), Y,
+                         [0, 1.0, 0, 0, 0, 0] if scheme == "sign-flip" else [0, 0, 1.0, 0, 0, 0],
+                         scheme=scheme)
+    kernel.observed("two")
+    return kernel
+
+
+#: a kernel of each kind, for a rearrangement scheme
+KERNEL_JOBS = {"ols": _ols_kernel, "mixed": _mixed_kernel}
+
+
+def _job(correction, scheme="sign-flip", kernel="ols", m=70, seed=5):
+    kernel = KERNEL_JOBS[kernel](scheme)
     rearr = kernel.rearrangements(m, seed)
+    assert rearr.kind == scheme
     kernel.prepare(rearr)
     thr = kernel.threshold(0.05, "two")
-    corr = make_correction(correction, kernel.kind, "two", (grid.n_sources, T),
-                           grid.adjacency("face"), threshold=thr, tfce=TfceOptions(steps=20))
+    corr = make_correction(correction, kernel.kind, "two", (GRID.n_sources, T),
+                           GRID.adjacency("face"), threshold=thr, tfce=TfceOptions(steps=20))
     return NullJob(kernel, corr), m
 
 
@@ -57,9 +86,10 @@ def _null(backend, job, m, batch):
 
 @pytest.mark.parametrize("correction", ["cluster-mass", "tfce", "max-stat"])
 @pytest.mark.parametrize("scheme", ["sign-flip", "permutation"])
+@pytest.mark.parametrize("kernel", list(KERNEL_JOBS))
 @pytest.mark.parametrize("name", list(BACKENDS))
-def test_every_backend_gives_the_serial_null_bit_for_bit(name, scheme, correction):
-    job, m = _job(correction, scheme)
+def test_every_backend_gives_the_serial_null_bit_for_bit(name, kernel, scheme, correction):
+    job, m = _job(correction, scheme, kernel)
     ref = _null(make_backend("serial"), job, m, batch=m)
     assert not np.isnan(ref[0]).any()
     for workers, batch in [(1, 16), (2, 7), (2, 33)]:

@@ -11,7 +11,6 @@ Nothing downstream opens a file again.
 from __future__ import annotations
 
 import math
-import sys
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -386,24 +385,15 @@ def _decode(headers, ref, mask, progress, allocate=None):
     on a terminal); ``allocate(shape)`` gives the array Y is decoded into (e.g.
     the cache's memory-mapped file, whose pages are handed back map by map).
     """
-    from ..progress import track
+    from ..progress import per_item
     from ..stats.pages import release
-    if callable(progress):
-        new = None if getattr(progress, "mode", "") == "quiet" else progress
-
-        def tqdm(items, desc, unit, disable):
-            return track(items, new, desc, len(items), unit)
-    else:
-        from tqdm.auto import tqdm
-    if progress is None:
-        progress = sys.stderr.isatty()
+    each = per_item(progress)
     n_t = ref.shape[3]
     broken = {}
     if mask is None:
         # default mask: sources finite (and not constantly zero) in every map
         mask = np.ones(ref.shape[:3], bool)
-        for i, h in enumerate(tqdm(headers, desc="scanning maps", unit="map",
-                                   disable=not progress)):
+        for i, h in enumerate(each(headers, "scanning maps", "map")):
             try:
                 data = read_data(h, np.float32)
             except DecodeError as exc:
@@ -417,7 +407,7 @@ def _decode(headers, ref, mask, progress, allocate=None):
     Y = np.empty(shape, dtype=np.float32) if Y is None else Y
     flat = grid.flat_index
     bad = {}
-    for i, h in enumerate(tqdm(headers, desc="loading maps", unit="map", disable=not progress)):
+    for i, h in enumerate(each(headers, "loading maps", "map")):
         if i in broken:
             continue
         try:

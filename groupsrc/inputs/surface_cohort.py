@@ -33,7 +33,6 @@ vertices finite and not constantly zero in every map (as for volumes).
 
 from __future__ import annotations
 
-import sys
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -86,16 +85,8 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
     ``progress``: a :func:`groupsrc.progress.reporter` (silent when quiet), or
     True/False/None (a bar on a terminal), as for volumes.
     """
-    if callable(progress):
-        from ..progress import track
-        new = None if getattr(progress, "mode", "") == "quiet" else progress
-
-        def tqdm(items, desc, unit, disable):
-            return track(items, new, desc, len(items), unit)
-    else:
-        from tqdm.auto import tqdm
-    if progress is None:
-        progress = sys.stderr.isatty()
+    from ..progress import per_item
+    each = per_item(progress)
     hemis = list(meshes)
     names = list(voxels.names) if voxels is not None else []
     broken, bad = {}, {}
@@ -110,7 +101,7 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
             use[h] = m if use[h] is None else use[h] & m
     if any(u is None for u in use.values()):
         scan = {h: np.ones(meshes[h].n, bool) for h in hemis}
-        for line in tqdm(lines, desc="scanning maps", unit="map", disable=not progress):
+        for line in each(lines, "scanning maps", "map"):
             try:
                 data = _read_row(fmt, headers, line, hemis)
             except gifti.DecodeError as exc:
@@ -123,7 +114,7 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
                                                   (voxels.parts if voxels is not None else ())]
     bounds = np.cumsum([0] + sizes)
     Y = np.empty((len(lines), int(bounds[-1]), n_t), dtype=np.float32)
-    for i, line in enumerate(tqdm(lines, desc="loading maps", unit="map", disable=not progress)):
+    for i, line in enumerate(each(lines, "loading maps", "map")):
         if line in broken:
             continue
         try:

@@ -195,24 +195,26 @@ MIXED_MODEL = '''mixed = true               # a linear mixed model on every map 
                            # the frequent tone and the third sessions included); the
                            # contrasts marked model = "glm" use the summary-statistic GLM
 '''
-MIXED_CONTRASTS = '''
-# the same three questions, answered by the mixed model from every map
-[[contrasts]]
-name = "rare_minus_frequent_mixed"
-description = "rare minus frequent tones, the two groups weighted equally (mixed model)"
-within = { rare = 1, frequent = -1 }
+#: the demo's three questions: name, description, the lines that define the contrast
+CONTRASTS = (
+    ("rare_minus_frequent", "rare minus frequent tones, the two groups weighted equally",
+     'within = { rare = 1, frequent = -1 }\n'),
+    ("group_by_tone", "rare-minus-frequent difference, patients minus controls",
+     'within = { rare = 1, frequent = -1 }\ncompare = { group = ["patient", "control"] }\n'),
+    ("age_slope", "change per year of age of the response averaged over tones",
+     'slope = "age"\n'),
+)
 
-[[contrasts]]
-name = "group_by_tone_mixed"
-description = "rare-minus-frequent difference, patients minus controls (mixed model)"
-within = { rare = 1, frequent = -1 }
-compare = { group = ["patient", "control"] }
 
-[[contrasts]]
-name = "age_slope_mixed"
-description = "change per year of age of the response averaged over tones (mixed model)"
-slope = "age"
-'''
+def contrasts_text(tail: str = "", name_suffix: str = "", description_suffix: str = "") -> str:
+    """The ``[[contrasts]]`` tables of the demo's analysis file, each followed by ``tail``."""
+    return "\n".join(f'[[contrasts]]\nname = "{name}{name_suffix}"\n'
+                     f'description = "{text}{description_suffix}"\n{lines}{tail}'
+                     for name, text, lines in CONTRASTS)
+
+
+MIXED_CONTRASTS = ("\n# the same three questions, answered by the mixed model from every map\n"
+                   + contrasts_text(name_suffix="_mixed", description_suffix=" (mixed model)"))
 
 
 def analysis_text(cfg: dict, size: str) -> str:
@@ -237,22 +239,7 @@ mask = "mask.nii.gz"
 between = "group + age"
 within = "condition"
 {MIXED_MODEL if mixed else ""}
-[[contrasts]]
-name = "rare_minus_frequent"
-description = "rare minus frequent tones, the two groups weighted equally"
-within = {{ rare = 1, frequent = -1 }}
-{glm}
-[[contrasts]]
-name = "group_by_tone"
-description = "rare-minus-frequent difference, patients minus controls"
-within = {{ rare = 1, frequent = -1 }}
-compare = {{ group = ["patient", "control"] }}
-{glm}
-[[contrasts]]
-name = "age_slope"
-description = "change per year of age of the response averaged over tones"
-slope = "age"
-{glm}{MIXED_CONTRASTS if mixed else ""}
+{contrasts_text(glm)}{MIXED_CONTRASTS if mixed else ""}
 [inference]
 correction = "cluster-mass"
 resamples = {int(sz["resamples"])}

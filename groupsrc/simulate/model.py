@@ -229,14 +229,20 @@ class DemoModel:
             out.append(max(a, 0.0))
         return np.array(out)
 
-    def sensor_signal(self, person: _Person, session: int, condition: str, group: str,
-                      age: float) -> np.ndarray:
-        """Noise-free sensor data (n_sensors, n_times) in T."""
+    def time_courses(self, person: _Person, session: int, condition: str, group: str,
+                     age: float) -> np.ndarray:
+        """Generator moments over time (G, n_times) in A m: amplitude x Gaussian wave."""
         amp = self.amplitudes_nAm(condition, group, age) * person.gain[session - 1] * 1e-9
         peak = np.array([g["peak_s"] for g in self.gens]) + person.latency
         width = np.array([g["width_s"] for g in self.gens])
         wave = np.exp(-0.5 * ((self.times[None, :] - peak[:, None]) / width[:, None]) ** 2)
-        moments = person.direction[:, :, None] * (amp[:, None] * wave)[:, None, :]  # (G,3,T)
+        return amp[:, None] * wave
+
+    def sensor_signal(self, person: _Person, session: int, condition: str, group: str,
+                      age: float) -> np.ndarray:
+        """Noise-free sensor data (n_sensors, n_times) in T."""
+        courses = self.time_courses(person, session, condition, group, age)
+        moments = person.direction[:, :, None] * courses[:, None, :]              # (G,3,T)
         L = lead_field(person.position_m, self.sensor_pos, self.sensor_ori)       # (m, 3G)
         return L @ moments.reshape(-1, self.times.size)
 

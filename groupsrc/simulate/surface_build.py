@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from ..formats import gifti
-from .build import MARKER, _check_target, _install, _write, participants_tsv
+from .build import MARKER, _check_target, _install, _write, contrasts_text, participants_tsv
 from .cortex import ATLAS
 from .settings import EFFECTS, size_settings
 from .surface_model import packaged_text, simulate_surface, surface_settings
@@ -164,22 +164,7 @@ sampling_interval = {1.0 / float(sz["sfreq"])}
 between = "group + age"
 within = "condition"
 
-[[contrasts]]
-name = "rare_minus_frequent"
-description = "rare minus frequent tones, the two groups weighted equally"
-within = {{ rare = 1, frequent = -1 }}
-
-[[contrasts]]
-name = "group_by_tone"
-description = "rare-minus-frequent difference, patients minus controls"
-within = {{ rare = 1, frequent = -1 }}
-compare = {{ group = ["patient", "control"] }}
-
-[[contrasts]]
-name = "age_slope"
-description = "change per year of age of the response averaged over tones"
-slope = "age"
-
+{contrasts_text()}
 [inference]
 correction = "cluster-mass"
 resamples = {int(sz["resamples"])}

@@ -143,7 +143,7 @@ def patch_centre(cortex, gen) -> int:
 class SurfaceDemoModel(DemoModel):
     """Sensors, cortex, normal gain, noise and inverse shared by all participants.
 
-    Reuses :class:`.model.DemoModel`'s amplitudes, noise and ``to_map``; the
+    Reuses :class:`.model.DemoModel`'s amplitudes, time courses, noise and ``to_map``; the
     geometry and generators are its own.  ``source`` marks the vertices that
     are sources (the cortex without its medial face); maps hold 0 elsewhere.
     """
@@ -220,13 +220,10 @@ class SurfaceDemoModel(DemoModel):
     def sensor_signal(self, person: _Person, session: int, condition: str, group: str,
                       age: float) -> np.ndarray:
         """Noise-free sensor data (n_sensors, n_times) in T."""
-        amp = self.amplitudes_nAm(condition, group, age) * person.gain[session - 1] * 1e-9
-        peak = np.array([g["peak_s"] for g in self.gens]) + person.latency
-        width = np.array([g["width_s"] for g in self.gens])
-        wave = np.exp(-0.5 * ((self.times[None, :] - peak[:, None]) / width[:, None]) ** 2)
+        courses = self.time_courses(person, session, condition, group, age)
         out = np.zeros((self.gain.shape[0], self.times.size))
-        for (idx, w), a, wv in zip(person.patches, amp, wave):
-            out += np.outer(self.gain[:, idx] @ w, a * wv)
+        for (idx, w), course in zip(person.patches, courses):
+            out += np.outer(self.gain[:, idx] @ w, course)
         return out
 
 
