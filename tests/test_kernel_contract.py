@@ -122,13 +122,21 @@ def mixed_slopes_three_groups_f():
     return _mixed(design, L, "permutation", 26)
 
 
+def mixed_every_fixed_effect_f():
+    """Random intercept; an F over every fixed effect (the null model has none):
+    whole-participant sign flips of the raw data."""
+    design = unbalanced_design(10, seed=27, missing=(2,), groups=1)
+    return _mixed(design, np.eye(design.X.shape[1]), "sign-flip", 28)
+
+
 KERNELS = {"OLS one-sample": ols_one_sample,
            "OLS sign flips + covariate (Freedman-Lane)": ols_sign_flip_with_covariate,
            "OLS two groups + covariate (Freedman-Lane)": ols_two_groups_with_covariate,
            "OLS F, three groups": ols_three_groups_f,
            "mixed, within effect, sign flips": mixed_within_sign_flips,
            "mixed, between effect + map covariate, permutations": mixed_between_permutations,
-           "mixed, random slope, F, permutations": mixed_slopes_three_groups_f}
+           "mixed, random slope, F, permutations": mixed_slopes_three_groups_f,
+           "mixed, F over every fixed effect, sign flips": mixed_every_fixed_effect_f}
 
 
 class _OlsReference:
@@ -199,10 +207,18 @@ class _MixedReference:
 
     def resampled(self, Y, row):
         """Freedman-Lane data in the model's metric (GLS fit under L b = 0 with the
-        kernel's covariance), rearranged by whole participants, refitted."""
+        kernel's covariance), rearranged by whole participants, refitted.  Sign flips
+        move leverage-adjusted residuals: participant i's whitened restricted residual
+        times (I - H0_ii)^(-1/2), H0 the whitened hat matrix of the restricted model
+        (the HC2 / CR2 residual of the wild bootstrap; Davidson & Flachaire 2008,
+        J Econometrics 146:162-169, cited from memory), written here with dense
+        matrix square roots; the identity is the observed statistic itself."""
         d, L = self.d, self.L
         X, Z, g = np.asarray(d.X), np.asarray(d.Z), np.asarray(d.groups)
         Nc = np.linalg.svd(L)[2][np.linalg.matrix_rank(L):].T
+        flips = self.kernel.rearr.kind == "sign-flip"
+        if flips and Nc.shape[1] and np.all(row == 1):
+            return self.observed(Y)[0]
         out = []
         for j in range(Y.shape[1]):
             V = np.eye(len(g)) + Z @ self.Psi[:, :, j] @ Z.T
@@ -212,7 +228,20 @@ class _MixedReference:
             bz = np.linalg.solve(Xz.T @ Vi @ Xz, Xz.T @ Vi @ Y[:, j])
             rz = Y[:, j] - Xz @ bz
             ystar = Xz @ bz
-            if self.kernel.rearr.kind == "sign-flip":
+            if flips and Nc.shape[1]:
+                w, E = np.linalg.eigh(V)
+                half = E @ np.diag(np.sqrt(w)) @ E.T                 # V^(1/2)
+                ihalf = E @ np.diag(1 / np.sqrt(w)) @ E.T            # V^(-1/2)
+                Xw = ihalf @ Xz
+                H0 = Xw @ np.linalg.solve(Xw.T @ Xw, Xw.T)
+                rw = ihalf @ rz
+                for i in np.unique(g):
+                    blk = np.ix_(g == i, g == i)
+                    lam, U = np.linalg.eigh(np.eye(int(np.sum(g == i))) - H0[blk])
+                    rw[g == i] = U @ np.diag(np.clip(lam, 1e-3, None) ** -0.5) @ U.T \
+                        @ rw[g == i]
+                rz = half @ rw
+            if flips:
                 ystar = ystar + row[g] * rz
             else:                       # slot i takes participant row[i]'s maps, in order
                 for i in range(len(row)):

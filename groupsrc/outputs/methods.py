@@ -33,6 +33,8 @@ REFERENCES = {
                   "block permutation. NeuroImage 123:253-268.",
     "freedman": "Freedman D, Lane D (1983). A nonstochastic interpretation of reported "
                 "significance levels. J Bus Econ Stat 1:292-298.",
+    "leverage": "Davidson R, Flachaire E (2008). The wild bootstrap, tamed at last. "
+                "J Econometrics 146:162-169.",
     "westfall": "Westfall J, Kenny DA, Judd CM (2014). Statistical power and optimal design in "
                 "experiments in which samples of participants respond to samples of stimuli. "
                 "J Exp Psychol Gen 143:2020-2045.",
@@ -51,9 +53,18 @@ MIXED_RESAMPLING = (
     "estimated without the tested effect describe every rearrangement alike, so holding them "
     "fixed keeps the test valid (it only decides how efficiently each participant's maps are "
     "combined); estimates that had seen the tested effect would not, and would inflate the "
-    "maximum statistic. The observed data are one of the rearrangements, and no model is "
-    "refitted per rearrangement. Estimates, standard errors, t, df and uncorrected p of the "
-    "maps are those of the full model's own fit.")
+    "maximum statistic. {moved}No model is refitted per rearrangement. Estimates, standard "
+    "errors, t, df and uncorrected p of the maps are those of the full model's own fit.")
+
+#: what the mixed model's rearrangements move, with nuisance terms (leverage-adjusted)
+MIXED_ADJUSTED = (
+    "Where the model has terms besides the tested effect, sign flips move "
+    "leverage-adjusted residuals: each participant's residual vector, in the metric of the "
+    "model's covariance, multiplied by (I - H_ii)^(-1/2), where H_ii is that participant's "
+    "block of the hat matrix of the model without the tested effect {leverage}; this undoes "
+    "the shrinkage of the residuals by the nuisance fit, which otherwise makes tests with few "
+    "participants liberal. The observed statistic is computed from the data as they are and "
+    "counts as the identity rearrangement. ")
 
 
 CORRECTION_TEXT = {
@@ -180,8 +191,11 @@ def methods_text(summary: dict, contrasts: list) -> str:
                 "rearrangements other than the observed one reached the observed value "
                 f"(exact tests: the share of all rearrangements) {cite('pvalues')}.")
         if any(c.get("model") == "mixed" for c in resampled):
+            adjusted = any("leverage-adjusted" in c.get("scheme", "") for c in resampled)
+            moved = (MIXED_ADJUSTED.format(leverage=cite("leverage")) if adjusted
+                     else "The observed data are one of the rearrangements. ")
             sent += " " + MIXED_RESAMPLING.format(multilevel=cite("multilevel"),
-                                                  freedman=cite("freedman"))
+                                                  freedman=cite("freedman"), moved=moved)
     else:
         sent = ("No correction for multiple comparisons was applied; p-values are parametric."
                 if correction == "none" else

@@ -212,7 +212,7 @@ class MixedCore:
         q, p, N = self.q, self.p, self.N
         G = np.stack([np.stack([onehot @ (Z[:, a] * Z[:, b]) for b in range(q)])
                       for a in range(q)])                            # (q, q, N)
-        self.H = np.stack([np.stack([onehot @ (Z[:, a] * X[:, j]) for j in range(p)], axis=1)
+        self.H = np.stack([np.asarray(onehot @ (Z[:, a:a + 1] * X)).reshape(N, p)
                            for a in range(q)])                       # (q, N, p)
         key = np.round(G.reshape(q * q, N).T, 10)
         _, first, cls = np.unique(key, axis=0, return_index=True, return_inverse=True)

@@ -73,6 +73,9 @@ def variance_components(fit: MixedFit, Y, chunk=FIT_CHUNK) -> dict:
 
 #: below this |z| the z of a t comes from Hill's transformation, above it from the tail
 Z_SWITCH = 3.0
+#: below these df the exact z is used at every |t| (Hill's accuracy is checked from 4 df;
+#: it is undefined below 1/2, which Satterthwaite df can reach near a boundary fit)
+HILL_MIN_DF = 4.0
 
 
 def hill_z(t, nu):
@@ -103,8 +106,9 @@ def scored_z(t, nu, switch):
     t = t.reshape(-1)
     nu = np.broadcast_to(nu, shape).reshape(-1)
     switch = np.broadcast_to(switch, shape).reshape(-1)
-    z = hill_z(t, nu)
-    big = np.flatnonzero(np.abs(t) >= switch)
+    with np.errstate(invalid="ignore"):          # nu < 1/2: replaced just below
+        z = hill_z(t, nu)
+    big = np.flatnonzero((np.abs(t) >= switch) | (nu < HILL_MIN_DF))
     if big.size:
         z[big] = z_of_t(t[big], nu[big])
     return z.reshape(shape)

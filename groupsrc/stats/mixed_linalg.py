@@ -36,6 +36,8 @@ def T(A):
 def trace_prod(A, B):
     """tr(A B) over the leading axes: sum_ij A_ij B_ji -> trailing shape."""
     n = A.shape[0]
+    if n == 0:
+        return np.zeros(np.broadcast_shapes(A.shape[2:], B.shape[2:]))
     s = A[0, 0] * B[0, 0]
     for i in range(n):
         for j in range(n):
