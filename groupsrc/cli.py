@@ -255,7 +255,10 @@ def cmd_check(analysis: Path, as_json=False) -> int:
     print(f"  samples      : {s['samples']}, {s['time_range_ms'][0]:g} to "
           f"{s['time_range_ms'][1]:g} ms every {s['sampling_interval_ms']:g} ms")
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
-    print(f"  design       : {prep.design.X.shape[0]} participants x "
+    left_out = len(prep.summary.get("glm_excluded") or ())
+    used = (f" ({prep.design.X.shape[0] - left_out} in the GLM contrasts, see below)"
+            if left_out and any(p.model != "mixed" for p in prep.plans) else "")
+    print(f"  design       : {prep.design.X.shape[0]} participants{used} x "
           f"{prep.design.X.shape[1]} coefficients: {', '.join(prep.design.X.columns)}")
     if prep.mixed is not None:
         _print_mixed(prep)

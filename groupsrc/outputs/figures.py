@@ -312,8 +312,10 @@ def null_figure(null_max, observed, critical, alpha, xlabel, title, base: Path) 
     ax = fig.add_subplot()
     top = max([null_max.max() if null_max.size else 1.0] + [v for _, v in observed])
     bins = np.linspace(0, top * 1.05, 41)
-    ax.hist(null_max, bins=bins, color="#7f7f7f", edgecolor="white", lw=0.3,
-            label=f"rearrangements (m = {null_max.size})")
+    counts, _, _ = ax.hist(null_max, bins=bins, color="#7f7f7f", edgecolor="white", lw=0.3,
+                           label=f"rearrangements (m = {null_max.size})")
+    hmax = float(np.max(counts)) if np.size(counts) else 1.0
+    ax.set_ylim(0, max(hmax, 1.0) * 1.4)         # a band above the bars for the labels
     if (critical is None or not np.isfinite(critical)) and null_max.size:
         critical = float(np.quantile(null_max, 1 - alpha, method="higher"))
     if critical is not None and np.isfinite(critical):
@@ -322,8 +324,9 @@ def null_figure(null_max, observed, critical, alpha, xlabel, title, base: Path) 
     ymax = ax.get_ylim()[1]
     for j, (lab, v) in enumerate(observed):
         ax.axvline(v, color=GROUP_COLOURS[1], lw=1.2, label="observed clusters" if j == 0 else None)
-        ax.text(v, ymax * (0.97 - 0.08 * (j % 3)), f" {lab}", color=GROUP_COLOURS[1],
-                fontsize=6.5, va="top", rotation=0)
+        ax.text(v, ymax * (0.98 - 0.07 * (j % 3)), f" {lab}", color=GROUP_COLOURS[1],
+                fontsize=6.5, va="top", rotation=0,
+                bbox=dict(facecolor="white", edgecolor="none", alpha=0.8, pad=0.5))
     ax.set_xlabel(xlabel)
     ax.set_ylabel("rearrangements (count)")
     ax.set_title(title)

@@ -45,8 +45,9 @@ residual; Davidson & Flachaire 2008, J Econometrics 146:162-169; MacKinnon,
 Nielsen & Webb 2023, J Appl Econometrics 38:671-694; both cited from
 memory), while the observed statistic is computed from the data as they are
 and stands in for the identity flip.  ``H0_ii`` lives in the span of
-participant i's design, so this costs a few p x p products per participant
-and feature, once, in :meth:`MixedKernel.prepare` (:func:`_leverage_adjust`);
+participant i's design, so this costs a few r x r products per participant
+and feature (r the number of distinct rows of a participant's design), once,
+in :meth:`MixedKernel.prepare` (:func:`_leverage_adjust`);
 the resampling loop is unchanged.  Whole-participant permutations move the
 residuals as they are: for a between-participant effect the nuisance terms
 live in the same (participant) stratum as the effect, and the re-estimated
@@ -268,6 +269,7 @@ class MixedKernel(StatisticKernel):
         self.Sx = sparse.csr_matrix((X.ravel(), (rows, cols)), shape=(N * p, n))
         self.XX = np.zeros((N, p, p))
         np.add.at(self.XX, g, X[:, :, None] * X[:, None, :])
+        self.spans = _ParticipantSpans(core) if self.adjusted else None
         if perm:
             d = core.design
             Lw = np.hstack([d.within] + ([d.map_cols] if self.pm else []))
@@ -309,7 +311,7 @@ class MixedKernel(StatisticKernel):
         g1 = la.solve_lower(LA[:, :, None, :], h).sum(axis=1)
         rr = np.where(live, np.maximum(ev.r2, 0.0), 1.0) + (g1 * g1).sum(axis=0)
         if self.adjusted:
-            h, extra = _leverage_adjust(h, Nz, Lz, self.XX, core.H, Ki)
+            h, extra = _leverage_adjust(h, Nz, Lz, self.spans, Ki)
             rr = rr + np.where(live, extra, 0.0)
         v = la.solve_lower(LA[:, :, None, :], h)                          # (p, N, f)
         # effect directions in the whitened coordinates
@@ -409,40 +411,67 @@ class MixedKernel(StatisticKernel):
         return out, mx, mn
 
 
-def _leverage_adjust(h, Nz, Lz, XX, H, Ki, cap=1.0 - 1e-3):
+class _ParticipantSpans:
+    """Design-only parts of the leverage adjustment (once per kernel).
+
+    Participant i's design ``X_i = Q_i R_i`` (thin SVD: ``Q_i`` orthonormal, n_i x r_i;
+    ``R_i`` r_i x p), padded to the largest rank r with zero rows; ``ZQ_i = Z_i' Q_i``
+    (the model's scaled random-effect columns).  r is the number of distinct rows of
+    a participant's design (2 for two conditions), usually far below p."""
+
+    def __init__(self, core):
+        X, Z, g = core.X, core.Z, core.groups
+        parts = []
+        for i in range(core.N):
+            U, sv, Vt = np.linalg.svd(X[g == i], full_matrices=False)
+            keep = sv > 1e-10 * sv.max(initial=0.0)
+            parts.append((U[:, keep], sv[keep, None] * Vt[keep], Z[g == i]))
+        r = max(1, max(Q.shape[1] for Q, _, _ in parts))
+        self.R = np.zeros((core.N, r, core.p))
+        self.RRinv = np.ones((core.N, r))
+        self.ZQ = np.zeros((core.q, core.N, r))
+        for i, (Q, R, Zi) in enumerate(parts):
+            k = Q.shape[1]
+            self.R[i, :k] = R
+            self.RRinv[i, :k] = 1.0 / (R * R).sum(axis=1)       # R_i R_i' is diagonal
+            self.ZQ[:, i, :k] = Zi.T @ Q
+
+
+def _leverage_adjust(h, Nz, Lz, spans, Ki, cap=1.0 - 1e-3):
     """Leverage-adjusted participant scores for sign flips (see the module docstring).
 
     ``h`` (p, N, f) holds ``X_i' Vbar_i^-1 r_z,i``.  Returns ``X_i' Vbar_i^-1 r*_i``,
     with ``r*_i`` participant i's restricted residual scaled by ``(I - H0_ii)^(-1/2)``
     in the whitened metric, and per feature the growth ``||r*||^2 - ||r_z||^2`` of
-    its whitened norm.  With ``C = Nz Lz^-T`` (so ``C C' = Nz A0^-1 Nz'``, ``Lz``
-    the Cholesky factor of the null model's ``A0``), ``M_i = X_i' Vbar_i^-1 X_i``,
-    ``c_i = C' h_i`` and ``E_i = C' M_i C = U diag(lam) U'`` (the nonzero spectrum
-    of ``H0_ii``): ``h*_i = h_i + M_i C U diag(phi(lam)) U' c_i`` with ``phi(x) =
-    ((1 - x)^(-1/2) - 1) / x``, and the norm grows by ``c_i' (I - E_i)^-1 c_i``.
-    Leverages are capped at ``cap`` (a participant that alone fixes a nuisance
-    direction has no residual there to scale)."""
+    its whitened norm.
+
+    ``H0_ii = U U'`` with ``U = Vbar_i^(-1/2) X_i C``, ``C = Nz Lz^-T`` (so ``C C' =
+    Nz A0^-1 Nz'``, ``Lz`` the Cholesky factor of the null model's ``A0``).  With
+    ``X_i = Q_i R_i`` (:class:`_ParticipantSpans`), ``S_i = Q_i' Vbar_i^-1 Q_i =
+    L_S L_S'`` and the orthonormal basis ``Y = Vbar_i^(-1/2) Q_i L_S^-T`` of the
+    whitened span: ``H0_ii = Y E Y'`` with ``E = T T'``, ``T = L_S' R_i C`` (r x r,
+    ``E = W diag(lam) W'``).  So ``(I - H0_ii)^(-1/2) = I + Y W diag(psi) W' Y'``,
+    ``psi = (1 - lam)^(-1/2) - 1``; ``Y' r~_i = y = L_S^-1 (R_i R_i')^-1 R_i h_i``;
+    ``X~_i' Y = R_i' L_S``; hence ``h*_i = h_i + R_i' L_S W diag(psi) W' y`` and the
+    norm grows by ``sum_a (W'y)_a^2 (1 / (1 - lam_a) - 1)``.  Leverages are capped at
+    ``cap`` (a participant that alone fixes a nuisance direction has no residual
+    there to scale)."""
     p, N, f = h.shape
     p0 = Nz.shape[1]
     Ct = la.solve_lower(Lz, np.broadcast_to(Nz.T[:, :, None], (p0, p, f)))   # C' (p0, p, f)
-    XXt = np.transpose(XX, (1, 2, 0))[..., None]                              # (p, p, N, 1)
-    out = np.empty_like(h)
-    extra = np.zeros(f)
-    step = max(1, 2_000_000 // (p * p * N))
-    for a in range(0, f, step):
-        b = min(f, a + step)
-        C, hb = Ct[:, :, a:b], h[:, :, a:b]
-        M = XXt - np.einsum("aik,abif,bil->klif", H, Ki[:, :, :, a:b], H)     # (p, p, N, fb)
-        MC = np.einsum("klif,alf->kaif", M, C)                                # (p, p0, N, fb)
-        E = np.einsum("akf,kbif->ifab", C, MC)                                # (N, fb, p0, p0)
-        lam, U = np.linalg.eigh(E)
-        lam = np.clip(lam, 0.0, cap)
-        s = np.sqrt(1.0 - lam)
-        d = np.einsum("ifab,ifa->ifb", U, np.einsum("akf,kif->ifa", C, hb))   # U' c_i
-        extra[a:b] = (d * d / (1.0 - lam)).sum(axis=(0, 2))
-        y = np.einsum("ifab,ifb->ifa", U, d / (s * (1.0 + s)))
-        out[:, :, a:b] = hb + np.einsum("kaif,ifa->kif", MC, y)
-    return out, extra
+    R, ZQ = spans.R, spans.ZQ
+    r = R.shape[1]
+    S = la.eye_like(r, (1, 1)) - np.einsum("aij,abif,bik->jkif", ZQ, Ki, ZQ)  # (r, r, N, f)
+    LS, _ = la.chol(S)
+    P = np.einsum("ijk,akf->jaif", R, Ct)                                      # R_i C
+    T = np.einsum("kjif,kaif->jaif", LS, P)                                    # L_S' R_i C
+    lam, W = np.linalg.eigh(np.einsum("jaif,kaif->ifjk", T, T))                # (N, f, r)
+    lam = np.clip(lam, 0.0, cap)
+    y = la.solve_lower(LS, spans.RRinv.T[:, :, None] * np.einsum("ijk,kif->jif", R, h))
+    d = np.einsum("ifab,aif->ifb", W, y)                                       # W' y
+    extra = (d * d * (1.0 / (1.0 - lam) - 1.0)).sum(axis=(0, 2))
+    back = np.einsum("ifab,ifb->aif", W, d * (1.0 / np.sqrt(1.0 - lam) - 1.0))
+    return h + np.einsum("ijk,jlif,lif->kif", R, LS, back), extra
 
 
 def _orthonormal_columns(A):
