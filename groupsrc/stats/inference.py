@@ -55,6 +55,9 @@ SCHEMES = ("sign-flip", "permutation")
 #: seeds are non-negative integers below 2**63 (signed 64-bit, as TOML 1.0 integers)
 SEED_LIMIT = 2 ** 63
 NULL_COLUMNS = ["resample", "max_stat", "max_pos", "max_neg"]
+#: with progress reported, at least this many batches (batch sizes never change results),
+#: so that progress advances in steps of about a tenth
+PROGRESS_BATCHES = 10
 
 
 def _probability(v):
@@ -223,9 +226,10 @@ def run_inference(Y, X, contrast, adjacency, *, scheme="sign-flip", nuisance=Non
 def _null(job, m, kernel, correction, spec, execution, fixed):
     options = {"scheduler": execution.scheduler} if execution.backend == "dask" else {}
     backend = make_backend(execution.backend, execution.n_jobs, **options)
+    tasks = max(backend.tasks, PROGRESS_BATCHES) if execution.progress else backend.tasks
     B = execution.batch_size or auto_batch(m, kernel.n_features, correction.needs_maps,
                                            backend.buffers, budget=execution.map_budget,
-                                           tasks=backend.tasks)
+                                           tasks=tasks)
     pos, neg = np.zeros(m), np.zeros(m)
     done = np.zeros(m, bool)
     saved = execution.checkpoint

@@ -1,0 +1,31 @@
+"""Progress of the resampling comes in steps of about a tenth (issue: progress lines
+"every ~10%" in batch-job logs), and asking for progress never changes the result (the
+project's own promise: batch sizes never change a seed's null distribution)."""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy import sparse
+
+from groupsrc.stats.inference import run_inference
+
+
+def _data():
+    rng = np.random.default_rng(5)
+    Y = (rng.standard_normal((10, 6, 5)) + 0.2).astype(np.float32)
+    adj = sparse.csr_matrix(np.eye(6, k=1) + np.eye(6, k=-1))
+    return Y, np.ones((10, 1)), adj
+
+
+def test_progress_steps_of_a_tenth_and_the_same_null():
+    Y, X, adj = _data()
+    seen = []
+    with_progress = run_inference(Y, X, [1.0], adj, correction="max-stat", n_resamples=1000,
+                                  seed=3, progress=lambda done, total: seen.append(done))
+    quiet = run_inference(Y, X, [1.0], adj, correction="max-stat", n_resamples=1000, seed=3)
+    steps = np.diff(sorted(set(seen)))
+    assert seen[-1] == 1000 and len(steps) >= 9
+    assert steps.max() <= 128                      # a tenth, rounded up to whole blocks of 16
+    np.testing.assert_array_equal(with_progress.null["max_stat"],
+                                  quiet.null["max_stat"])
+    assert with_progress.resampling.batch_size < quiet.resampling.batch_size
