@@ -17,7 +17,8 @@ Labelling
 :func:`label_codes` joins neighbouring points that carry the same nonzero
 code (+1 / -1: the two signs, never joined to each other) with a union-find
 (union by size, path halving).  Its cost follows the number ``K`` of coded
-points times their degree, plus one pass over the map to find them: it does
+points times their degree, plus one pass over the map to list them (every
+later pass visits the listed points only): it does
 not collapse at liberal thresholds the way a per-level or per-graph
 construction does.  Components are numbered in order of their first point
 (flat C order), the numbering ``scipy.sparse.csgraph.connected_components``
@@ -83,17 +84,17 @@ def _union(parent, size, a, b):
 
 
 @njit(**_JIT)
-def _join_forward(code, up_ptr, up_idx, T, parent, size):
+def _join_forward(code, idx, K, up_ptr, up_idx, T, parent, size):
     """Union every coded point with its forward neighbours of the same code.
 
-    ``up_ptr`` / ``up_idx``: the upper triangle (u > s) of the source
-    adjacency, so each spatial edge is seen once; in time the next sample.
+    ``idx[:K]``: the coded points in ascending flat order (the only points
+    visited, so the cost follows K, not the map size); ``up_ptr`` /
+    ``up_idx``: the upper triangle (u > s) of the source adjacency, so each
+    spatial edge is seen once; in time the next sample.
     """
-    F = code.size
-    for v in range(F):
+    for i in range(K):
+        v = idx[i]
         c = code[v]
-        if c == 0:
-            continue
         s = v // T
         t = v - s * T
         if t + 1 < T and code[v + 1] == c:
@@ -115,31 +116,29 @@ def label_codes(code, up_ptr, up_idx, T):
     F = code.size
     parent = np.empty(F, np.int64)
     size = np.empty(F, np.int64)
+    listed = np.empty(F, np.int64)
     K = 0
     for v in range(F):
         if code[v] != 0:
             parent[v] = v
             size[v] = 1
+            listed[K] = v
             K += 1
-    _join_forward(code, up_ptr, up_idx, T, parent, size)
-    idx = np.empty(K, np.int64)
+    _join_forward(code, listed, K, up_ptr, up_idx, T, parent, size)
+    idx = listed[:K].copy()
     comp = np.empty(K, np.int64)
     number = size                        # reused: -1 on roots not yet numbered
-    for v in range(F):
-        if code[v] != 0 and parent[v] == v:
+    for i in range(K):
+        v = idx[i]
+        if parent[v] == v:
             number[v] = -1
     n = 0
-    i = 0
-    for v in range(F):
-        if code[v] == 0:
-            continue
-        r = _find(parent, v)
+    for i in range(K):
+        r = _find(parent, idx[i])
         if number[r] == -1:              # first point of its component: next number
             number[r] = -2 - n
             n += 1
-        idx[i] = v
         comp[i] = -2 - number[r]
-        i += 1
     return idx, comp, n
 
 
@@ -157,8 +156,13 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
     parent = np.empty(F, np.int64)
     size = np.empty(F, np.int64)
     acc = np.zeros(F, np.float64)
+    idx = np.empty(F, np.int64)
+    K = 0
     for b in range(B):
         x = maps[b]
+        for i in range(K):               # clear the previous map's points only
+            code[idx[i]] = 0
+        K = 0
         for v in range(F):
             xv = x[v]
             c = 0
@@ -166,24 +170,27 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
                 c = 1
             elif want_neg and xv < -threshold:
                 c = -1
-            code[v] = c
             if c != 0:
+                code[v] = c
                 parent[v] = v
                 size[v] = 1
                 acc[v] = 0.0
-        _join_forward(code, up_ptr, up_idx, T, parent, size)
+                idx[K] = v
+                K += 1
+        _join_forward(code, idx, K, up_ptr, up_idx, T, parent, size)
         # scores summed in flat order, as numpy.bincount over the points would
-        for v in range(F):
-            if code[v] != 0:
-                r = _find(parent, v)
-                if by_mass:
-                    acc[r] += x[v]
-                else:
-                    acc[r] += code[v]
+        for i in range(K):
+            v = idx[i]
+            r = _find(parent, v)
+            if by_mass:
+                acc[r] += x[v]
+            else:
+                acc[r] += code[v]
         hi = 0.0
         lo = 0.0
-        for v in range(F):
-            if code[v] != 0 and parent[v] == v:
+        for i in range(K):
+            v = idx[i]
+            if parent[v] == v:
                 if acc[v] > hi:
                     hi = acc[v]
                 if acc[v] < lo:
