@@ -75,8 +75,10 @@ def _parser():
     f.add_argument("--contrast", default=None, help="only this contrast's clusters")
     f.add_argument("--cluster", type=int, nargs="+", default=None, metavar="K",
                    help="these cluster numbers of --contrast (default: the significant ones)")
-    f.add_argument("--mask", type=Path, default=None,
-                   help="a region of yours: 3D NIfTI mask on the template grid")
+    f.add_argument("--mask", type=Path, action="append", default=None, metavar="FILE",
+                   help="a region of yours, nonzero = in it: a 3D NIfTI mask on the template "
+                        "grid; on a surface a GIfTI mask per hemisphere (give --mask once per "
+                        "file) or a CIFTI-2 .dscalar.nii / .dlabel.nii")
     f.add_argument("--window", type=float, nargs=2, default=None, metavar=("START", "STOP"),
                    help="time window of the --mask region in seconds (default: all samples)")
     f.add_argument("--out", type=Path, default=None,
@@ -208,9 +210,12 @@ def _dispatch(args, argv) -> int:
         return cmd_demo(args, command)
     if args.command == "followup":
         from .followup import followup
+        notes = []
         out = followup(args.results, contrast=args.contrast, clusters=args.cluster,
                        mask=args.mask, window=args.window, out=args.out,
-                       overwrite=args.overwrite)
+                       overwrite=args.overwrite, notes=notes)
+        for note in notes:
+            print(f"note: {note}")
         print(f"follow-up written to {out}; read {out / 'followup.md'}")
         return EXIT_OK
     return EXIT_USAGE

@@ -2,8 +2,10 @@
 
 For each significant cluster of a results folder (the clusters the report
 marks, every contrast or the one ``--contrast`` names, or the ``--cluster``
-numbers given) and for a region of the user's (``--mask`` on the template
-grid and ``--window START STOP`` in seconds), the mean of every map over the
+numbers given) and for a region of the user's (``--mask``: a NIfTI mask on
+the template grid of volume results; GIfTI masks per hemisphere and/or a
+CIFTI-2 dense scalar / label file on surface results, read by
+:func:`load_mask`; and ``--window START STOP`` in seconds), the mean of every map over the
 region's source x sample points is tabulated, one row per map, and the
 analysis's model is refitted on those means with statsmodels ``MixedLM``: the
 same fixed effects (the mixed model's columns, which ``groupsrc check``
@@ -135,10 +137,9 @@ def _cluster_regions(results, summary, maps, contrast, clusters, problems):
     return out
 
 
-def _mask_region(mask, window, maps, summary, problems):
-    from .formats.nifti import DecodeError, affine_difference, read_mask
+def _mask_region(masks, window, maps, summary, problems, notes):
+    """The region of the user's: the ``--mask`` files' sources x the ``--window`` samples."""
     from .outputs.layout import times_ms
-    grid = maps.space
     times = times_ms(summary["window"]) / 1e3
     if window is None:
         keep_t = np.ones(times.size, bool)
@@ -150,16 +151,132 @@ def _mask_region(mask, window, maps, summary, problems):
                          f"window ({times[0]:g} to {times[-1]:g} s)",
                          "give START < STOP in seconds inside that window")
             return None
-    if mask is None:
+    if not masks:
         if window is not None:
             problems.add("--window", "needs --mask", "give the region as --mask FILE")
         return None
-    path = Path(mask)
-    if getattr(grid, "kind", "volume") != "volume":
-        problems.add(f"--mask {path}", "a region of one's own is read as a 3D NIfTI mask on a "
-                     f"volume grid; these results are on a {grid.kind} source space",
-                     "follow up their clusters with --contrast NAME [--cluster K ...] (surface "
-                     "masks are not read by followup yet)")
+    loaded = load_mask(masks, maps.space, problems)
+    if loaded is None:
+        return None
+    src, left_out = loaded
+    notes += left_out
+    t_used = times[keep_t]
+    stems = list(dict.fromkeys(Path(m).name.split(".")[0] for m in masks))
+    kept = f" ({'; '.join(left_out)})" if left_out else ""
+    return Region(f"mask_{'+'.join(stems)}", src[:, None] & keep_t[None, :], "mask",
+                  what=f"{', '.join(Path(m).name for m in masks)}, {int(src.sum())} sources"
+                  f"{kept}, {t_used[0] * 1e3:g} to {t_used[-1] * 1e3:g} ms")
+
+
+# ----------------------------------------------------------------------------
+# reading a region of the user's: one entry, one reader per mask file format
+# ----------------------------------------------------------------------------
+
+#: file-name endings of CIFTI-2 dense files (CIFTI-2 specification, 2014, from memory);
+#: read before NIfTI, whose ".nii" they also end in
+CIFTI_ENDINGS = (".dscalar.nii", ".dlabel.nii", ".dtseries.nii")
+SURFACE_FIX = ("give one GIfTI mask per hemisphere (REGION.left.shape.gii / "
+               "REGION.right.shape.gii, one value per vertex of the results' "
+               "source_space.<hemisphere>.surf.gii, nonzero = in the region) or a CIFTI-2 "
+               "dense scalar or label file (REGION.dscalar.nii / REGION.dlabel.nii)")
+
+
+@dataclass
+class MaskPart:
+    """What one mask file marks: sources of the analysis, and what it covers."""
+
+    path: Path
+    sources: np.ndarray          # (n_sources,) bool
+    covers: tuple                # hemispheres / volume parts / "volume" the file marks in
+    n_marked: int                # elements marked (finite, nonzero)
+    unit: str = "voxels"         # what the file marks: voxels or vertices
+
+
+def mask_format(path) -> str | None:
+    """'nifti', 'gifti' or 'cifti' by the file name's ending; None for another."""
+    name = Path(path).name.lower()
+    if name.endswith(".gii"):
+        return "gifti"
+    if name.endswith(CIFTI_ENDINGS):
+        return "cifti"
+    if name.endswith((".nii", ".nii.gz")):
+        return "nifti"
+    return None
+
+
+def load_mask(paths, space, problems):
+    """(sources (n_sources,) bool, notes) of the region the mask files mark together.
+
+    A mask marks with a finite nonzero value (label files: a nonzero key).
+    Each file is read by its format (:func:`mask_format`): a 3D NIfTI on a
+    volume grid; on a surface, GIfTI files of one hemisphere each and CIFTI-2
+    dense files (either, or both).  Two files may not both mark in one
+    hemisphere / structure (one file per hemisphere).  Marked elements that are
+    not sources (outside the results' source mask) are left out with a note;
+    a file marking no source is a problem.  None when any file is a problem
+    (every one reported).
+    """
+    readers = {"nifti": _nifti_mask, "gifti": _gifti_mask, "cifti": _cifti_mask}
+    parts, bad = [], False
+    seen = {}
+    for path in map(Path, paths):
+        if path.resolve() in seen:
+            problems.add(f"--mask {path}", "is given twice", "give each file once")
+            bad = True
+            continue
+        seen[path.resolve()] = path
+        fmt = mask_format(path)
+        if not path.exists():
+            problems.add(path, "mask file not found", "check the path")
+            bad = True
+            continue
+        if fmt is None:
+            problems.add(f"--mask {path}", "is not a mask file followup reads (expected .nii / "
+                         ".nii.gz, .gii, or a CIFTI-2 .dscalar.nii / .dlabel.nii)",
+                         "give the region in one of those formats")
+            bad = True
+            continue
+        part = readers[fmt](path, space, problems)
+        bad |= part is None
+        parts += [part] if part is not None else []
+    for a_i, a in enumerate(parts):
+        for b in parts[a_i + 1:]:
+            both = [c for c in a.covers if c in b.covers]
+            if both:
+                problems.add(f"--mask {b.path}", f"gives {', '.join(both)} again, as "
+                             f"{a.path} does", "give each hemisphere or structure in one file")
+                bad = True
+    for p in parts:
+        if p.n_marked and not p.sources.any():
+            problems.add(p.path, f"marks {p.n_marked} {p.unit}, none of them a source of the "
+                         "analysis (all outside the results' source mask)",
+                         "mark sources inside the results' " + _source_mask_name(space))
+            bad = True
+    if bad:
+        return None
+    notes = [f"{p.path.name}: {p.n_marked - int(p.sources.sum())} marked {p.unit} are not "
+             "sources of the analysis and were left out" for p in parts
+             if p.n_marked > p.sources.sum()]
+    return np.logical_or.reduce([p.sources for p in parts]), notes
+
+
+def _source_mask_name(space) -> str:
+    if space.kind == "volume":
+        return "source_mask.nii.gz"
+    return " / ".join(f"source_mask.{h}.shape.gii" for h in space.names)
+
+
+def _marked(values) -> np.ndarray:
+    values = np.asarray(values, np.float64)
+    return np.isfinite(values) & (values != 0)
+
+
+def _nifti_mask(path, grid, problems):
+    """A 3D NIfTI mask on the template grid of volume results."""
+    from .formats.nifti import DecodeError, affine_difference, read_mask
+    if grid.kind != "volume":
+        problems.add(f"--mask {path}", f"is read as a NIfTI volume mask (by its name); these "
+                     f"results are on a {grid.kind} source space", SURFACE_FIX)
         return None
     try:
         vol, affine = read_mask(path)
@@ -181,10 +298,149 @@ def _mask_region(mask, window, maps, summary, problems):
         problems.add(path, "holds no source of the analysis", "mark sources inside the "
                      "results' source_mask.nii.gz")
         return None
-    t_used = times[keep_t]
-    return Region(f"mask_{path.name.split('.')[0]}", src[:, None] & keep_t[None, :], "mask",
-                  what=f"{path.name}, {int(src.sum())} sources, {t_used[0] * 1e3:g} to "
-                  f"{t_used[-1] * 1e3:g} ms")
+    return MaskPart(path, src, ("volume",), int(vol.sum()))
+
+
+def _not_volume(path, space, problems, what) -> bool:
+    if space.kind == "volume":
+        problems.add(f"--mask {path}", f"is {what}; these results are on a volume grid",
+                     "give a 3D NIfTI mask on the template grid (source_mask.nii.gz in the "
+                     "results folder is one, with your sources marked)")
+        return False
+    return True
+
+
+def _gifti_mask(path, space, problems):
+    """One hemisphere's GIfTI mask (shape, func or label file, one array) on a surface."""
+    from .formats import gifti
+    if not _not_volume(path, space, problems, "a GIfTI surface file"):
+        return None
+    try:
+        values, structure = gifti.read_vertex_values(path, one_array=True)
+    except FileNotFoundError:
+        problems.add(path, "mask file not found", "check the path")
+        return None
+    except ValueError as exc:
+        problems.add(path, str(exc), SURFACE_FIX)
+        return None
+    hemi = _hemisphere(path, structure, problems)
+    if hemi is None:
+        return None
+    if hemi not in space.names:
+        problems.add(path, f"is a mask of the {hemi} hemisphere; these results have no {hemi} "
+                     "hemisphere", f"give masks of the {' and '.join(space.names)} only")
+        return None
+    h = space.hemisphere(hemi)
+    if values.size != h.n_vertices:
+        other = [o.name for o in space.hemispheres if o.name != hemi
+                 and o.n_vertices == values.size]
+        hint = (f" (the {other[0]} mesh's count: is it that hemisphere's mask?)"
+                if other else "")
+        problems.add(path, f"has {values.size} values; the results' {hemi} mesh has "
+                     f"{h.n_vertices} vertices{hint}", f"give one value per vertex of "
+                     f"source_space.{hemi}.surf.gii in the results folder (source_mask.{hemi}"
+                     ".shape.gii there is one, with your vertices marked)")
+        return None
+    marked = _marked(values)
+    if not marked.any():
+        problems.add(path, "marks no vertex (every value is 0 or not finite)",
+                     "mark the region with nonzero values")
+        return None
+    src = np.zeros(space.n_sources, bool)
+    src[space.source_slice(hemi)] = marked[h.sources]
+    return MaskPart(path, src, (f"the {hemi} hemisphere",), int(marked.sum()), "vertices")
+
+
+def _hemisphere(path, structure, problems) -> str | None:
+    """The hemisphere of a GIfTI mask: its AnatomicalStructurePrimary metadata, else a
+    '.left.' / '.right.' part of its file name; a problem when neither or they differ."""
+    from .sources.surface import HEMISPHERES
+    named = [h for h in HEMISPHERES if h in Path(path).name.lower().split(".")]
+    if structure is not None and named and named != [structure]:
+        problems.add(path, f"its metadata (AnatomicalStructurePrimary) says {structure} "
+                     f"but its name says {' and '.join(named)}",
+                     "rename the file or correct its metadata")
+        return None
+    if structure is not None:
+        return structure
+    if len(named) == 1:
+        return named[0]
+    problems.add(path, "does not say which hemisphere it is on (no AnatomicalStructurePrimary "
+                 "CortexLeft / CortexRight in its metadata, and "
+                 + ("both 'left' and 'right'" if named else "no '.left.' or '.right.'")
+                 + " in its name)", "name it REGION.left.shape.gii or REGION.right.shape.gii")
+    return None
+
+
+def _cifti_mask(path, space, problems):
+    """A CIFTI-2 dense scalar / label file (one map) on the results' meshes and volume."""
+    from .formats import cifti
+    if not _not_volume(path, space, problems, "a CIFTI-2 file"):
+        return None
+    try:
+        header = cifti.read_header(path, rows="any")
+        if header.n_times != 1:
+            problems.add(path, f"holds {header.n_times} maps (rows)", "keep the one map of "
+                         "the region (a mask holds one)")
+            return None
+        if not _cifti_geometry(header, space, problems):
+            return None
+        data = cifti.read_data(header, np.float64)
+    except FileNotFoundError:
+        problems.add(path, "mask file not found", "check the path")
+        return None
+    except ValueError as exc:   # DecodeError is one
+        problems.add(path, str(exc), SURFACE_FIX)
+        return None
+    src = np.zeros(space.n_sources, bool)
+    n_marked, covers = 0, []
+    for hemi in header.parts:
+        marked = _marked(data[hemi][:, 0])
+        n_marked += int(marked.sum())
+        covers += [f"the {hemi} hemisphere"] if marked.any() else []
+        if hemi in space.names:
+            src[space.source_slice(hemi)] = marked[space.hemisphere(hemi).sources]
+    vox = space.voxels
+    for name, ijk in header.voxels.items():
+        marked = _marked(data[name][:, 0])
+        n_marked += int(marked.sum())
+        covers += [name] if marked.any() else []
+        if vox is None or name not in vox.names:
+            continue
+        where = np.full(vox.shape, -1, np.int64)
+        own = vox.part_slice(name)
+        where[tuple(vox.ijk[own].T)] = np.arange(own.start, own.stop)
+        at = where[tuple(ijk[marked].T)]
+        src[space.voxel_slice.start + at[at >= 0]] = True
+    if not n_marked:
+        problems.add(path, "marks nothing (every value is 0 or not finite)",
+                     "mark the region with nonzero values")
+        return None
+    return MaskPart(path, src, tuple(covers), n_marked, "vertices or voxels" if header.voxels
+                    else "vertices")
+
+
+def _cifti_geometry(header, space, problems) -> bool:
+    """The file's surfaces have the results' vertex counts, its volume their volume."""
+    from .formats import cifti
+    ok = True
+    for hemi, (n, _) in header.parts.items():
+        if hemi in space.names and n != space.hemisphere(hemi).n_vertices:
+            problems.add(header.path, f"its {cifti.STRUCTURES[hemi]} has {n} vertices; "
+                         f"the results' {hemi} mesh has "
+                         f"{space.hemisphere(hemi).n_vertices}", "give a mask on the results' "
+                         "meshes (the brain models of the analysed maps)")
+            ok = False
+    vox = space.voxels
+    if header.voxels and vox is not None and (
+            tuple(header.volume_shape) != tuple(vox.shape)
+            or not np.allclose(header.volume_affine, vox.affine, atol=1e-3)):
+        problems.add(header.path, f"its volume parts lie in a volume of shape "
+                     f"{tuple(header.volume_shape)} that is not the results' "
+                     f"{tuple(vox.shape)} (or has another affine)", "give a mask on the "
+                     "brain models of the analysed maps")
+        ok = False
+    return ok
 
 
 # ----------------------------------------------------------------------------
@@ -278,8 +534,16 @@ def _contrast_weights(prep, mdesign):
 # ----------------------------------------------------------------------------
 
 def followup(results, *, contrast=None, clusters=None, mask=None, window=None, out=None,
-             overwrite=False) -> Path:
-    """Write the follow-up tables of a results folder; return the folder written."""
+             overwrite=False, notes=None) -> Path:
+    """Write the follow-up tables of a results folder; return the folder written.
+
+    ``mask``: one mask file or a list of them, read together as one region
+    (:func:`load_mask`); ``notes``: a list that receives what the user should
+    know (marked elements left out of the region).
+    """
+    masks = [] if mask is None else [mask] if isinstance(mask, (str, os.PathLike)) \
+        else list(mask)
+    notes = [] if notes is None else notes
     from .inputs.mixed_design import build_mixed_design
     from .inputs.settings import parse_settings
     from .outputs.layout import open_maps
@@ -297,9 +561,9 @@ def followup(results, *, contrast=None, clusters=None, mask=None, window=None, o
     mdesign = prep.mixed or build_mixed_design(prep.settings, prep.design, prep.cohort.maps,
                                                problems, f"{analysis} [model]")
     maps = open_maps(results, summary)
-    regions = [] if (mask is not None and not clusters and not contrast) else \
+    regions = [] if (masks and not clusters and not contrast) else \
         _cluster_regions(results, summary, maps, contrast, clusters, problems)
-    user = _mask_region(mask, window, maps, summary, problems)
+    user = _mask_region(masks, window, maps, summary, problems, notes)
     regions += [user] if user is not None else []
     if not regions and not problems:
         problems.add(results, "no significant cluster to follow up",

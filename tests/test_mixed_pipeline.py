@@ -234,12 +234,20 @@ def test_followup_of_a_region_of_ones_own(results, tmp_path, capsys):
     (["--cluster", "1"], ["--cluster", "needs --contrast"]),
     (["--mask", "MAP", "--window", "0", "0.01"], ["3D", "mask"]),
     (["--mask", "MASK", "--window", "2", "3"], ["--window 2 3", "holds no sample"]),
+    (["--mask", "region.left.shape.gii"], ["--mask", "region.left.shape.gii", "GIfTI",
+                                           "volume grid", "source_mask.nii.gz"]),
+    (["--mask", "region.dscalar.nii"], ["--mask", "region.dscalar.nii", "CIFTI-2",
+                                        "volume grid"]),
+    (["--mask", "MASK", "--mask", "MASK"], ["mask.nii.gz", "is given twice"]),
 ])
 def test_followup_problems_are_named(results, tmp_path, capsys, args, fragments):
     cohort, out = results
     maps = pd.read_csv(cohort / "maps.tsv", sep="\t", dtype=str)
+    for name in ("region.left.shape.gii", "region.dscalar.nii"):   # refused by their kind
+        (tmp_path / name).write_bytes(b"")
     args = [str(cohort / maps.path[0]) if a == "MAP" else str(cohort / "mask.nii.gz")
-            if a == "MASK" else a for a in args]
+            if a == "MASK" else str(tmp_path / a) if a.startswith("region.") else a
+            for a in args]
     rc, fu = _followup(out, tmp_path, *args)
     text = capsys.readouterr().err
     assert rc == 1 and "Traceback" not in text

@@ -71,8 +71,8 @@ class CiftiHeader:
     """What the checks need of one CIFTI-2 dense time series."""
 
     path: Path
-    n_times: int
-    time_axis: TimeAxis
+    n_times: int                 # rows: samples of a series, maps of a scalar / label file
+    time_axis: TimeAxis | None   # None for a scalar or label file (read_header(rows="any"))
     #: hemisphere -> (vertex count of the whole surface, indices of the vertices present)
     parts: dict
     #: structures not read (surfaces other than the cortex): name -> number of elements
@@ -91,8 +91,14 @@ class CiftiHeader:
                                   + sum(len(v) for v in self.voxels.values())))
 
 
-def read_header(path) -> CiftiHeader:
-    """Inspect a dense time series lazily; ValueError with a readable reason."""
+def read_header(path, rows="series") -> CiftiHeader:
+    """Inspect a dense file lazily; ValueError with a readable reason.
+
+    ``rows="series"`` (the maps): a dense time series, with at least one
+    cortex surface.  ``rows="any"`` (a region mask): also a dense scalar or
+    label file (rows of one map each, ``time_axis`` None), and volume parts
+    without a cortex surface.  :func:`read_data` reads either.
+    """
     path = Path(path)
     if not path.exists():
         raise FileNotFoundError("file not found")
@@ -108,10 +114,14 @@ def read_header(path) -> CiftiHeader:
         series, models = img.header.get_axis(0), img.header.get_axis(1)
     except Exception as exc:
         raise ValueError(f"its CIFTI-2 axes cannot be read ({type(exc).__name__}: {exc})") from None
-    if not isinstance(series, cifti2.SeriesAxis) or not isinstance(models, cifti2.BrainModelAxis):
+    row_axes = (cifti2.SeriesAxis,) if rows == "series" else (
+        cifti2.SeriesAxis, cifti2.ScalarAxis, cifti2.LabelAxis)
+    if not isinstance(series, row_axes) or not isinstance(models, cifti2.BrainModelAxis):
         raise ValueError(f"has axes {type(series).__name__} x {type(models).__name__}; a dense "
-                         "time series (series x brain models) is expected")
-    if series.unit != "SECOND":
+                         + ("time series (series x brain models)" if rows == "series" else
+                            "file (series, scalars or labels x brain models)") + " is expected")
+    is_series = isinstance(series, cifti2.SeriesAxis)
+    if is_series and series.unit != "SECOND":
         raise ValueError(f"its series axis runs in {series.unit}, not SECOND")
     parts, voxels, ignored = {}, {}, {}
     for name, slc, bm in models.iter_structures():
@@ -124,9 +134,10 @@ def read_header(path) -> CiftiHeader:
             parts[hemi] = (int(bm.nvertices[name]), np.asarray(bm.vertex, dtype=np.int64))
         else:
             ignored[name] = int(len(bm))
-    if not parts:
+    if not parts and (rows == "series" or not voxels):
         raise ValueError("holds no cortex surface (CIFTI_STRUCTURE_CORTEX_LEFT / _RIGHT)")
-    taxis = TimeAxis(float(series.start), float(series.step), int(series.size))
+    taxis = TimeAxis(float(series.start), float(series.step), int(series.size)) \
+        if is_series else None
     affine = np.asarray(models.affine, float) if voxels else None
     shape = tuple(int(n) for n in models.volume_shape) if voxels else None
     return CiftiHeader(path, int(series.size), taxis, parts, ignored, img, voxels=voxels,

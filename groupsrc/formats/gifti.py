@@ -212,11 +212,22 @@ def read_mesh(path):
     return v, t.astype(np.int64), structure_of(img)
 
 
-def read_vertex_values(path) -> tuple:
-    """(values (V,) float64 of the first data array, hemisphere or None)."""
+def read_vertex_values(path, one_array=False) -> tuple:
+    """(values (V,) float64 of the first data array, hemisphere or None).
+
+    ``one_array``: a file of several data arrays (a map over time) is a
+    ValueError instead of being read by its first array (a region mask).
+    """
     img = _load(path)
     if not img.darrays:
         raise ValueError("holds no data array")
+    if one_array and any(_intent(d) in ("NIFTI_INTENT_POINTSET", "NIFTI_INTENT_TRIANGLE")
+                         for d in img.darrays):
+        raise ValueError("is a mesh file (vertex coordinates and triangles), not values per "
+                         "vertex")
+    if one_array and len(img.darrays) > 1:
+        raise ValueError(f"holds {len(img.darrays)} data arrays (a map over time?); a mask "
+                         "holds one array of one value per vertex")
     d = np.asarray(img.darrays[0].data, dtype=np.float64)
     if d.ndim == 2 and d.shape[1] == 1:
         d = d[:, 0]
