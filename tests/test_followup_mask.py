@@ -69,6 +69,16 @@ def _gifti_data(path):
 # ----------------------------------------------------------------------------
 
 @pytest.mark.filterwarnings("ignore")
+
+def _each_problem_on_its_file_line(err, expect):
+    """Every file of ``expect`` has a problem line naming it, with each fragment."""
+    lines = err.splitlines()
+    for name, fragments in expect.items():
+        mine = [ln for ln in lines if f"{name}:" in ln]
+        assert mine, (name, err)
+        for f in fragments:
+            assert any(f in ln for ln in mine), (name, f, err)
+
 def test_gifti_masks_give_the_region_means_nibabel_reads(gifti_run, tmp_path, capsys):
     """Left: a shape file with no metadata, its hemisphere from '.left.' in the name,
     marking some medial-cap vertices (no sources: left out with a note).  Right: a label
@@ -145,12 +155,7 @@ def test_bad_masks_on_gifti_results_are_all_named(gifti_run, tmp_path, capsys):
               "vol.nii.gz": ["NIfTI", "surface", "dscalar"],
               "broken.left.shape.gii": ["cannot be read as GIfTI"],
               "missing.left.shape.gii": ["not found"]}
-    lines = err.splitlines()
-    for name, fragments in expect.items():
-        mine = [ln for ln in lines if f"{name}:" in ln]
-        assert mine, (name, err)
-        for f in fragments:
-            assert any(f in ln for ln in mine), (name, f, err)
+    _each_problem_on_its_file_line(err, expect)
     assert f"{len(expect)} problems found" in err
 
 
@@ -238,9 +243,4 @@ def test_bad_cifti_masks_are_all_named(cifti_run, tmp_path, capsys):
               "count.dscalar.nii": [f"{n_left + 1} vertices", f"{n_left}"],
               "cap.dscalar.nii": ["none of them a source"],
               "broken.dlabel.nii": ["cannot be read as CIFTI-2"]}
-    lines = err.splitlines()
-    for name, fragments in expect.items():
-        mine = [ln for ln in lines if f"{name}:" in ln]
-        assert mine, (name, err)
-        for f in fragments:
-            assert any(f in ln for ln in mine), (name, f, err)
+    _each_problem_on_its_file_line(err, expect)
