@@ -84,10 +84,10 @@ def main():
                ("exact, 2 threads", dict(n_jobs=2, backend="threads")),
                ("exact, 2 processes", dict(n_jobs=2, backend="processes")),
                ("exact, Dask local:2", dict(n_jobs=2, backend="dask", scheduler="local:2"))]
-    skip = set(filter(None, a.skip.split(",")))
+    skip = set(filter(None, a.skip.lower().split(",")))
     results = {}
     for name, kw in configs:
-        if any(s in name for s in skip):
+        if any(s in name.lower() for s in skip):
             continue
         results[name] = time_groupsrc(Y, X, adj, a.resamples, a.repeats, **kw)
         print(f"  {name:24s}: {results[name][0] * 1e3:8.1f} ms / resample incl. setup, "
