@@ -227,6 +227,31 @@ def test_gifti_file_in_a_cifti_table(ccopy, capsys):
                                    "what this column holds", "path_left / path_right"])
 
 
+@pytest.mark.parametrize("suffix,kind", [(".dscalar.nii", "dense scalar"),
+                                         (".dlabel.nii", "dense label")])
+def test_cifti_file_that_is_not_a_time_series(ccopy, capsys, suffix, kind):
+    """File kinds by the name endings of the CIFTI-2 standard (common practice): a dense
+    scalar or label file is refused before it is opened (never read as a NIfTI volume)."""
+    maps = _maps(ccopy)
+    src = ccopy.parent / maps.loc[0, "path"]
+    shutil.copy(src, ccopy.parent / "maps" / f"one{suffix}")
+    maps.loc[0, "path"] = f"maps/one{suffix}"
+    maps.to_csv(ccopy.parent / "maps.tsv", sep="\t", index=False)
+    assert_refused(ccopy, capsys, ["maps.tsv row 2", f"is a CIFTI-2 {kind} file",
+                                   ".dtseries.nii"])
+
+
+def test_volume_analysis_given_a_cifti_scalar_file(tiny_cohort, capsys, tmp_path):
+    """The same refusal on a volume cohort, instead of a NIfTI reading error."""
+    analysis = tmp_path / "c" / "analysis.toml"
+    shutil.copytree(tiny_cohort.parent, analysis.parent)
+    maps = pd.read_csv(analysis.parent / "maps.tsv", sep="\t")
+    shutil.copy(analysis.parent / maps.loc[0, "path"], analysis.parent / "x.dscalar.nii")
+    maps.loc[0, "path"] = "x.dscalar.nii"
+    maps.to_csv(analysis.parent / "maps.tsv", sep="\t", index=False)
+    assert_refused(analysis, capsys, ["x.dscalar.nii", "is a CIFTI-2 dense scalar file"])
+
+
 def test_same_file_for_two_hemispheres(gcopy, capsys):
     maps = _maps(gcopy)
     maps.loc[4, "path_right"] = maps.loc[5, "path_right"]

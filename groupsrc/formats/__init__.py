@@ -38,6 +38,11 @@ def known_suffixes() -> list:
 
 def read_header(path):
     """Open a map file lazily through its format; ValueError for an unknown type."""
+    name = Path(path).name.lower()
+    kind = next((k for suffix, k in cifti.OTHER_KINDS.items() if name.endswith(suffix)), None)
+    if kind is not None:
+        raise ValueError(f"is a CIFTI-2 {kind} file, not a map over time (input maps are "
+                         f"CIFTI-2 dense time series, .dtseries.nii, or NIfTI / GIfTI)")
     fmt = format_for(path)
     if fmt is None:
         p = Path(path)

@@ -60,6 +60,12 @@ from ..sources.voxels import VoxelParts
 from .gifti import LABEL_COLOURS, DecodeError
 
 SUFFIXES = (".dtseries.nii",)
+#: other CIFTI-2 file kinds (by the name ending the standard gives them): not input maps
+OTHER_KINDS = {".dscalar.nii": "dense scalar", ".dlabel.nii": "dense label",
+               ".dconn.nii": "dense connectivity", ".ptseries.nii": "parcellated time series",
+               ".pscalar.nii": "parcellated scalar", ".pconn.nii": "parcellated connectivity",
+               ".pdconn.nii": "parcel-dense connectivity",
+               ".dpconn.nii": "dense-parcel connectivity"}
 
 #: CIFTI-2 brain-structure names of the two cortical hemispheres
 STRUCTURES = {"left": "CIFTI_STRUCTURE_CORTEX_LEFT", "right": "CIFTI_STRUCTURE_CORTEX_RIGHT"}
