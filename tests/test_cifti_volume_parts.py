@@ -223,9 +223,12 @@ def test_check_lists_the_volume_parts(run, capsys):
     text = capsys.readouterr().out
     first = nib.load(str(analysis.parent / pd.read_csv(analysis.parent / "maps.tsv",
                                                        sep="\t").path[0]))
+    parts = 0
     for name, _, bm in first.header.get_axis(1).iter_structures():    # counts via nibabel
         if bm.volume_mask.all():
+            parts += 1
             assert f"  volume part  : {name} ({len(bm)} voxels)" in text.splitlines(), text
+    assert parts == 2                                # the fixture's two volume parts
 
 
 def test_result_maps_carry_the_inputs_brain_models(run):

@@ -68,8 +68,6 @@ def _gifti_data(path):
 # GIfTI results
 # ----------------------------------------------------------------------------
 
-@pytest.mark.filterwarnings("ignore")
-
 def _each_problem_on_its_file_line(err, expect):
     """Every file of ``expect`` has a problem line naming it, with each fragment."""
     lines = err.splitlines()
@@ -79,6 +77,7 @@ def _each_problem_on_its_file_line(err, expect):
         for f in fragments:
             assert any(f in ln for ln in mine), (name, f, err)
 
+@pytest.mark.filterwarnings("ignore")
 def test_gifti_masks_give_the_region_means_nibabel_reads(gifti_run, tmp_path, capsys):
     """Left: a shape file with no metadata, its hemisphere from '.left.' in the name,
     marking some medial-cap vertices (no sources: left out with a note).  Right: a label

@@ -57,6 +57,7 @@ def test_two_groups_equal_two_sample_t_of_means_with_N_minus_2_df():
     grp = (g >= N // 2).astype(float)
     Y = rng.standard_normal((N, 40))[g] + 0.3 * grp[:, None] + rng.standard_normal((N * k, 40))
     fit, ok = _fit(np.c_[np.ones(N * k), grp], g, Y)
+    assert ok.sum() >= 10                  # enough interior fits to compare
     cs = mf.contrast_statistics(fit, Y, [0.0, 1.0])
     means = np.stack([Y[g == i].mean(axis=0) for i in range(N)])
     ref = stats.ttest_ind(means[N // 2:], means[:N // 2])
@@ -72,6 +73,7 @@ def test_three_groups_f_equals_one_way_anova_of_means():
     X = np.c_[np.ones(N * k), lev == 1, lev == 2].astype(float)
     Y = rng.standard_normal((N, 40))[g] + rng.standard_normal((N * k, 40))
     fit, ok = _fit(X, g, Y)
+    assert ok.sum() >= 10                  # enough interior fits to compare
     cs = mf.contrast_statistics(fit, Y, [[0, 1.0, 0], [0, 0, 1.0]])
     means = np.stack([Y[g == i].mean(axis=0) for i in range(N)])
     ref = stats.f_oneway(*[means[np.arange(N) % 3 == j] for j in range(3)])
@@ -126,6 +128,7 @@ def test_scoring_df_are_those_of_the_restricted_model():
         + rng.standard_normal((2 * n, 30))
     X = np.c_[np.ones(2 * n), cond]
     fit, ok = _fit(X, g, Y)
+    assert ok.sum() >= 10                  # enough interior fits to compare
     fit0, ok0 = _fit(X[:, :1], g, Y)
     _, _, nu = mf.score_statistics(fit, fit0, Y, [0.0, 1.0])
     assert (ok & ok0).sum() >= 20
@@ -136,6 +139,7 @@ def test_scoring_df_are_those_of_the_restricted_model():
     Y = rng.standard_normal((N, 30))[g] + rng.standard_normal((N * k, 30))
     X = np.c_[np.ones(N * k), grp]
     fit, ok = _fit(X, g, Y)
+    assert ok.sum() >= 10                  # enough interior fits to compare
     fit0, ok0 = _fit(X[:, :1], g, Y)
     _, _, nu = mf.score_statistics(fit, fit0, Y, [0.0, 1.0])
     assert (ok & ok0).sum() >= 20
