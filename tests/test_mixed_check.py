@@ -49,7 +49,8 @@ def test_check_reports_maps_per_participant_and_empty_cells(tmp_path, capsys):
     assert "  empty cells  : sub-03 frequent" in text.splitlines(), text
     assert f"{(counts == 4).sum()} with 4 maps" in text
     assert f"{(counts == 2).sum()} with 2 maps (sub-03, sub-05)" in text
-    assert "mixed model  : REML, 28 maps x 6 coefficients" in text
+    # fixed effects: (intercept, group, age) x (intercept, condition) -- the model's terms
+    assert f"mixed model  : REML, {len(maps)} maps x 6 coefficients" in text
     assert "[t, sign-flip, mixed model]" in text and "[t, permutation, mixed model]" in text
 
 

@@ -26,6 +26,7 @@ from scipy import stats
 from groupsrc.cli import main
 
 from _mixed_data import statsmodels_reml
+from conftest import DT, N_T, T0
 from test_mixed_check import _model, _unbalanced
 
 
@@ -138,10 +139,14 @@ def test_model_folder_and_report(results):
     icc = np.asanyarray(nib.load(str(model / "icc.nii.gz")).dataobj)
     assert np.all((icc >= 0) & (icc <= 1))
     summary = json.loads((model / "summary.json").read_text())
-    assert sum(summary["counts"].values()) == summary["n_features"] == 60 * 9
-    assert summary["n_maps"] == 28 and summary["n_participants"] == 8
+    # the counts from the cohort's own files (nibabel, pandas), not from groupsrc
+    n_sources = int((_img(cohort / "mask.nii.gz") > 0).sum())
+    maps = pd.read_csv(cohort / "maps.tsv", sep="\t")
+    assert sum(summary["counts"].values()) == summary["n_features"] == n_sources * N_T
+    assert summary["n_maps"] == len(maps)
+    assert summary["n_participants"] == maps.participant_id.nunique()
     design = pd.read_csv(model / "design.tsv", sep="\t")
-    assert len(design) == 28 and list(design.columns[:3]) == ["participant_id", "condition",
+    assert len(design) == len(maps) and list(design.columns[:3]) == ["participant_id", "condition",
                                                               "session"]
     record = json.loads((out / "run.json").read_text())
     assert "model/icc.nii.gz" in record["output_files"]
@@ -216,7 +221,9 @@ def test_followup_of_a_region_of_ones_own(results, tmp_path, capsys):
                        "--window", "0", "0.012")
     assert rc == 0, capsys.readouterr()
     regions = pd.read_csv(fu / "regions.tsv", sep="\t")
-    assert list(regions.origin) == ["mask"] and regions.loc[0, "n_samples"] == 4
+    times = T0 + DT * np.arange(N_T)                 # the fixture's time axis (seconds)
+    in_window = int(np.sum((times >= 0 - 1e-9) & (times <= 0.012 + 1e-9)))
+    assert list(regions.origin) == ["mask"] and regions.loc[0, "n_samples"] == in_window
     assert set(pd.read_csv(fu / "coefficients.tsv", sep="\t").circular) == {"no"}
     contrasts = pd.read_csv(fu / "coefficients.tsv", sep="\t").query("kind == 'contrast'")
     assert len(contrasts) == 3
@@ -225,7 +232,7 @@ def test_followup_of_a_region_of_ones_own(results, tmp_path, capsys):
     assert rc == 1 and "add --overwrite" in capsys.readouterr().err
     rc, _ = _followup(out, tmp_path, "--mask", str(cohort / "mask.nii.gz"), "--overwrite")
     assert rc == 0
-    assert pd.read_csv(fu / "regions.tsv", sep="\t").loc[0, "n_samples"] == 9
+    assert pd.read_csv(fu / "regions.tsv", sep="\t").loc[0, "n_samples"] == N_T
 
 
 @pytest.mark.parametrize("args,fragments", [
