@@ -171,17 +171,25 @@ def plan_contrast(spec, design: Design, problems: ProblemList, where) -> Contras
         return None
 
 
+def weights_over(spec, cols, problems: ProblemList, where, what="a design-matrix column"):
+    """The raw ``weights`` of a contrast as a vector over ``cols``, or None after naming
+    every key that is not one of them."""
+    unknown = [k for k in spec.weights if k not in cols]
+    for k in unknown:
+        problems.add(f"{where} weights", f"'{k}' is not {what}",
+                     closest(k, cols) or f"columns are: {', '.join(cols)}")
+    if unknown:
+        return None
+    return np.array([float(spec.weights.get(c, 0.0)) for c in cols])
+
+
 def _plan_contrast(spec, design: Design, problems: ProblemList, where) -> ContrastPlan | None:
     cols = list(design.X.columns)
     within = spec.within
     if spec.weights:
-        unknown = [k for k in spec.weights if k not in cols]
-        for k in unknown:
-            problems.add(f"{where} weights", f"'{k}' is not a design-matrix column",
-                         closest(k, cols) or f"columns are: {', '.join(cols)}")
-        if unknown:
+        w = weights_over(spec, cols, problems, where)
+        if w is None:
             return None
-        w = np.array([float(spec.weights.get(c, 0.0)) for c in cols])
         kind, scheme = "t", ("sign-flip" if within else "permutation")
         desc = "raw weights " + ", ".join(f"{v:+g} {k}" for k, v in spec.weights.items())
     elif spec.compare:

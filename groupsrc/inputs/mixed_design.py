@@ -25,8 +25,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from .design import ID, ContrastPlan, Design, plan_contrast
-from .problems import ProblemList, closest
+from .design import ID, ContrastPlan, Design, plan_contrast, weights_over
+from .problems import ProblemList
 
 
 @dataclass
@@ -196,13 +196,9 @@ def plan_mixed_contrast(spec, design: Design, mdesign: MixedModelDesign, problem
     cols = list(mdesign.X.columns)
     p_m = len(mdesign.map_names)
     if spec.weights:
-        unknown = [k for k in spec.weights if k not in cols]
-        for k in unknown:
-            problems.add(f"{where} weights", f"'{k}' is not a column of the mixed model",
-                         closest(k, cols) or f"columns are: {', '.join(cols)}")
-        if unknown:
+        L = weights_over(spec, cols, problems, where, "a column of the mixed model")
+        if L is None:
             return None
-        L = np.array([float(spec.weights.get(c, 0.0)) for c in cols])
         pw = mdesign.within.shape[1]
         lw = L[:len(cols) - p_m].reshape(-1, pw)
         scheme = "sign-flip" if (np.any(lw[:, 1:]) or np.any(L[len(cols) - p_m:])) \
