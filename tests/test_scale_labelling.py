@@ -65,9 +65,11 @@ def test_cluster_extremes_equal_component_sums():
     adj = _random_graph(rng, S, 0.1)
     maps = rng.standard_normal((B, S * T)).astype(np.float32)
     ptr, ind = _up_csr(adj)
+    ws = unionfind.cluster_workspace(S * T)      # one workspace reused by every call
     for by_mass in (True, False):
         pos, neg = np.zeros(B), np.zeros(B)
-        unionfind.cluster_extremes(maps, 0.8, True, True, by_mass, ptr, ind, T, pos, neg)
+        unionfind.cluster_extremes(maps, 0.8, True, True, by_mass, ptr, ind, T, pos, neg, ws)
+        assert not ws[0].any()                   # left clean for the next call
         for b in range(B):
             x = maps[b].astype(np.float64)
             code = (x > 0.8).astype(np.int8) - (x < -0.8).astype(np.int8)
@@ -84,5 +86,6 @@ def test_one_sign_only():
     maps = rng.standard_normal((2, 30 * 4)).astype(np.float32)
     ptr, ind = _up_csr(adj)
     pos, neg = np.zeros(2), np.zeros(2)
-    unionfind.cluster_extremes(maps, 0.5, True, False, True, ptr, ind, 4, pos, neg)
+    unionfind.cluster_extremes(maps, 0.5, True, False, True, ptr, ind, 4, pos, neg,
+                               unionfind.cluster_workspace(30 * 4))
     assert np.all(neg == 0) and np.all(pos > 0)

@@ -27,6 +27,7 @@ connected components of ``p <= alpha``.
 
 from __future__ import annotations
 
+import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -38,6 +39,7 @@ from .resampling import null_p_values
 from .tfce import E_DEFAULT, H_DEFAULT, check_parameters
 from .tfce import tfce as tfce_map
 from .tfce import tfce_batch
+from .unionfind import tfce_workspace
 
 @dataclass(frozen=True)
 class TfceOptions:
@@ -109,6 +111,25 @@ class Correction:
         self.adj = adjacency
         self.threshold = threshold
         self.tfce = tfce
+        self._local = threading.local()
+
+    def scratch(self, make):
+        """The calling thread's scratch arrays, ``make()`` on its first call: allocated
+        once per thread and contrast, not per batch (large allocations page-fault, and
+        their faults serialise threads).  Not pickled: each process makes its own."""
+        ws = getattr(self._local, "ws", None)
+        if ws is None:
+            ws = self._local.ws = make()
+        return ws
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        del state["_local"]
+        return state
+
+    def __setstate__(self, state):
+        self.__dict__.update(state)
+        self._local = threading.local()
 
     # -- resampling side ------------------------------------------------------
     def null_extremes(self, maps, lo, hi):  # pragma: no cover - map-based corrections
@@ -138,8 +159,10 @@ class ClusterMass(Correction):
         want = signs(self.kind, self.tails)
         pos, neg = np.zeros(hi - lo), np.zeros(hi - lo)
         ptr, ind = _up_csr(self.adj)
+        F = self.shape[0] * self.shape[1]
+        ws = self.scratch(lambda: unionfind.cluster_workspace(F))
         unionfind.cluster_extremes(maps[lo:hi], float(self.threshold), 1 in want, -1 in want,
-                                   self.score == "mass", ptr, ind, self.shape[1], pos, neg)
+                                   self.score == "mass", ptr, ind, self.shape[1], pos, neg, ws)
         return pos, neg
 
     def outcome(self, stat_map, null_max, alpha):
@@ -181,8 +204,10 @@ class Tfce(Correction):
         """Compiled one-pass TFCE of maps[lo:hi], extremes only (:mod:`.tfce`)."""
         two = not (self.kind == "F" or self.tails in ("greater", "less"))
         less = self.kind == "t" and self.tails == "less"
+        F = self.shape[0] * self.shape[1]
+        ws = self.scratch(lambda: tfce_workspace(F))
         pos, neg = tfce_batch(maps[lo:hi], self.adj, two_sided=two, scale=-1.0 if less else 1.0,
-                              extremes=True, **self.tfce.keywords())
+                              extremes=True, workspace=ws, **self.tfce.keywords())
         return pos, neg
 
     def outcome(self, stat_map, null_max, alpha):

@@ -18,7 +18,7 @@ from __future__ import annotations
 import numpy as np
 
 #: elements of the maps read per chunk (float64 working copy ~ 8x this in bytes)
-CHUNK_ELEMENTS = 2e7
+CHUNK_ELEMENTS = 4e6
 
 
 def reduce_maps(Y, W, samples: slice, *, chunk_bytes=None, out=None,

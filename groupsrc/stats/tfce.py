@@ -98,12 +98,14 @@ def _step_args(steps, dh):
 
 
 def tfce_batch(maps, adjacency, *, E=E_DEFAULT, H=H_DEFAULT, steps=None, dh=None,
-               two_sided=True, scale=1.0, extremes=False):
+               two_sided=True, scale=1.0, extremes=False, workspace=None):
     """TFCE of each map of ``maps`` (B, n_sources * n_times), one compiled pass each.
 
     ``scale = -1`` enhances ``-maps`` and returns the result negated
     (lower-tailed use).  With ``extremes`` only each map's largest positive
     and most negative value are returned, ``(pos, neg)``, without the maps.
+    ``workspace``: scratch arrays from ``unionfind.tfce_workspace(F)`` reused
+    across calls by one thread (default: allocated for this call).
     Releases the GIL: threads may run batches side by side.
     """
     check_parameters(E, H, steps, dh)
@@ -117,12 +119,12 @@ def tfce_batch(maps, adjacency, *, E=E_DEFAULT, H=H_DEFAULT, steps=None, dh=None
                          f"{n_sources}-source adjacency")
     ptr, idx = _csr(adjacency, n_sources)
     st, step = _step_args(steps, dh)
-    ws = unionfind.tfce_workspace(F)
+    ws = unionfind.tfce_workspace(F) if workspace is None else workspace
     args = (float(scale), bool(two_sided), ptr, idx, F // n_sources, float(E), float(H),
             st, step)
     if extremes:
         pos, neg = np.zeros(B), np.zeros(B)
-        unionfind.tfce_extremes(maps, *args, pos, neg, np.empty(F), ws)
+        unionfind.tfce_extremes(maps, *args, pos, neg, ws)
         return pos, neg
     out = np.empty((B, F), np.float64)
     unionfind.tfce_maps(maps, *args, out, ws)
