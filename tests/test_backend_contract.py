@@ -17,6 +17,7 @@ import pytest
 from groupsrc.sources import VolumeGrid
 from groupsrc.stats.backends import BACKENDS, NullJob, make_backend
 from groupsrc.stats.corrections import TfceOptions, make_correction
+from groupsrc.stats import kernels, mixed_kernel
 from groupsrc.stats.kernels import OLSKernel
 from groupsrc.stats.mixed import MixedCore
 from groupsrc.stats.mixed_fit import fit_features
@@ -88,8 +89,14 @@ def _null(backend, job, m, batch):
 @pytest.mark.parametrize("scheme", ["sign-flip", "permutation"])
 @pytest.mark.parametrize("kernel", list(KERNEL_JOBS))
 @pytest.mark.parametrize("name", list(BACKENDS))
-def test_every_backend_gives_the_serial_null_bit_for_bit(name, kernel, scheme, correction):
+def test_every_backend_gives_the_serial_null_bit_for_bit(name, kernel, scheme, correction,
+                                                        monkeypatch):
+    # feature chunks of 64 (7 per map) so that threads sharing a batch's products by
+    # runs of chunks really split them
+    monkeypatch.setattr(kernels, "FEATURE_CHUNK", 64)
+    monkeypatch.setattr(mixed_kernel, "FEATURE_CHUNK", 64)
     job, m = _job(correction, scheme, kernel)
+    assert job.kernel.fc == 64
     ref = _null(make_backend("serial"), job, m, batch=m)
     assert not np.isnan(ref[0]).any()
     for workers, batch in [(1, 16), (2, 7), (2, 33)]:

@@ -31,6 +31,7 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
+from groupsrc.stats import kernels, mixed_kernel
 from groupsrc.stats.kernels import OLSKernel, StatisticKernel
 from groupsrc.stats.mixed import MixedCore, lambda_of
 from groupsrc.stats.mixed_fit import fit_features
@@ -334,6 +335,32 @@ def test_resampled_statistics_equal_direct_refits(case):
         ref = reference.resampled(Y, rearr.matrix[i])
         np.testing.assert_allclose(maps[i], ref, rtol=2e-4, atol=2e-4,
                                    err_msg=f"resample {i}")
+
+
+def test_feature_parts_assemble_the_whole(case, monkeypatch):
+    # part = (j, J): J threads share one batch's products; the parts must tile the
+    # features and give the whole call's values bit for bit (kernels contract)
+    kernel, X, C, Y = case
+    fc = max(1, kernel.n_features // 4)                   # four chunks or more
+    monkeypatch.setattr(kernels, "FEATURE_CHUNK", fc)
+    monkeypatch.setattr(mixed_kernel, "FEATURE_CHUNK", fc)
+    rearr = kernel.rearrangements(20, seed=5)
+    kernel.prepare(rearr)
+    assert kernel.fc == fc and -(-kernel.n_features // fc) >= 4
+    m, F = rearr.n_resamples, kernel.n_features
+    whole = kernel.resampled(0, m, np.empty((m, F), np.float32))[0].copy()
+    _, mx, mn = kernel.resampled(0, m)
+    for J in (2, 3):
+        out = np.full((m, F), np.nan, np.float32)
+        maxima, minima = [], []
+        for j in range(J):
+            kernel.resampled(0, m, out, part=(j, J))
+            _, a, b = kernel.resampled(0, m, part=(j, J))
+            maxima.append(a)
+            minima.append(b)
+        np.testing.assert_array_equal(out, whole)
+        np.testing.assert_array_equal(np.max(maxima, axis=0), mx)
+        np.testing.assert_array_equal(np.min(minima, axis=0), mn)
 
 
 def test_identity_first_and_split_independent(case):

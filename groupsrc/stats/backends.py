@@ -15,8 +15,9 @@ machine, a checkpointed run) must keep both properties.
 
 ======== ====================================================================
 serial   batches one after the other in the calling thread
-threads  products in the calling thread, labelling of each batch's maps on
-         ``workers`` threads, pipelined with the next batch's products
+threads  one batch at a time in one buffer: ``workers`` threads share its
+         products (each a run of feature chunks), then its scoring (each a
+         run of maps)
 processes whole batches on ``workers`` joblib process workers (loky)
 dask      whole batches as tasks on a Dask distributed cluster: a running
           scheduler (``scheduler="tcp://host:port"``) or a local cluster
@@ -48,11 +49,12 @@ class NullJob:
         self.kernel, self.correction = kernel, correction
         self.needs_maps = correction.needs_maps
 
-    def products(self, lo, hi, out=None):
-        """Resampled statistic maps (into ``out``) or, without maps, their extremes."""
+    def products(self, lo, hi, out=None, part=None):
+        """Resampled statistic maps (into ``out``) or, without maps, their extremes;
+        ``part = (j, J)``: the j-th of J runs of feature chunks only (``out`` given)."""
         if self.needs_maps and out is None:
             out = self.kernel.buffer(hi - lo)
-        return self.kernel.resampled(lo, hi, out if self.needs_maps else None)
+        return self.kernel.resampled(lo, hi, out if self.needs_maps else None, part)
 
     def scores(self, maps, u, v):
         return self.correction.null_extremes(maps, u, v)
@@ -120,44 +122,39 @@ class SerialBackend(Backend):
 
 
 class ThreadBackend(Backend):
-    """Products here (BLAS on one thread), labelling on a pool, pipelined."""
+    """One batch at a time, in one buffer: its products split over the threads by
+    runs of feature chunks, then its maps' scoring split over them by maps.
+
+    One buffer instead of one per worker (or two alternating) keeps the resampled
+    maps held at once to one batch, and both stages use every thread.  BLAS stays on
+    one thread for the whole run (:func:`.kernels.one_blas_thread`), so every
+    product has the serial backend's shape and thread count.
+    """
 
     name = "threads"
-
-    @property
-    def buffers(self):
-        return 1 if self.workers == 1 else 2
 
     def run(self, job, batches, collect):
         if self.workers == 1 or not batches:
             return SerialBackend().run(job, batches, collect)
         from concurrent.futures import ThreadPoolExecutor
 
-        def finish(pending):
-            a0, futs = pending
-            outs = [f.result() for f in futs]
-            collect(a0, np.concatenate([o[0] for o in outs]),
-                    np.concatenate([o[1] for o in outs]))
-
+        from .kernels import one_blas_thread
+        J = self.workers
         B = max(b - a for a, b in batches)
-        # two buffers alternate: one is labelled while the next batch fills the other
-        bufs = ([np.empty((B, job.kernel.n_features), np.float32) for _ in range(2)]
-                if job.needs_maps else [None, None])
-        pending = None
-        with ThreadPoolExecutor(max_workers=self.workers) as pool:
-            for i, (a, b) in enumerate(batches):
-                out = bufs[i % 2][:b - a] if job.needs_maps else None
-                maps, mx, mn = job.products(a, b, out)
-                if pending is not None:
-                    finish(pending)
-                    pending = None
-                if maps is None:
-                    collect(a, mx, mn)
+        buf = np.empty((B, job.kernel.n_features), np.float32) if job.needs_maps else None
+        with one_blas_thread(), ThreadPoolExecutor(max_workers=J) as pool:
+            for a, b in batches:
+                out = buf[:b - a] if job.needs_maps else None
+                parts = [f.result() for f in [pool.submit(job.products, a, b, out, (j, J))
+                                              for j in range(J)]]
+                if not job.needs_maps:      # extremes of the parts: max of maxima
+                    collect(a, np.max([p[1] for p in parts], axis=0),
+                            np.min([p[2] for p in parts], axis=0))
                     continue
-                pending = (a, [pool.submit(job.scores, maps, u, v)
-                               for u, v in job.pieces(b - a, self.workers)])
-            if pending is not None:
-                finish(pending)
+                outs = [f.result() for f in [pool.submit(job.scores, out, u, v)
+                                             for u, v in job.pieces(b - a, J)]]
+                collect(a, np.concatenate([o[0] for o in outs]),
+                        np.concatenate([o[1] for o in outs]))
 
 
 class ProcessBackend(Backend):

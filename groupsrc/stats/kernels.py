@@ -21,11 +21,14 @@ rearranged, for the methods text), ``freedman_lane``, and
 * ``rearrangements(n_resamples, seed, blocks) -> Rearrangements`` -- the
   rearrangement set that respects the model's exchangeability;
 * ``prepare(rearrangements)`` -- precompute what the resamples share;
-* ``resampled(lo, hi, out=None) -> (maps or None, max, min)`` -- the
-  statistic of resamples ``lo..hi-1``: (B, n_features) float32 maps written
-  into ``out`` when given, else only each resample's maximum and minimum.
-  The arithmetic of resample ``i`` must not depend on ``lo``, ``hi`` or the
-  process computing it (bit-for-bit reproducibility, see below).
+* ``resampled(lo, hi, out=None, part=None) -> (maps or None, max, min)`` --
+  the statistic of resamples ``lo..hi-1``: (B, n_features) float32 maps
+  written into ``out`` when given, else only each resample's maximum and
+  minimum.  ``part = (j, J)`` computes only the j-th of J contiguous runs of
+  feature chunks (:meth:`StatisticKernel.chunk_range`), so J threads can
+  share one batch; the maxima and minima are then those of that part.  The
+  arithmetic of resample ``i`` must not depend on ``lo``, ``hi``, ``part`` or
+  the process computing it (bit-for-bit reproducibility, see below).
 
 The ordinary least-squares kernel
 ---------------------------------
@@ -137,7 +140,15 @@ class StatisticKernel(ABC):
     def prepare(self, rearr: Rearrangements) -> None: ...
 
     @abstractmethod
-    def resampled(self, lo: int, hi: int, out=None): ...
+    def resampled(self, lo: int, hi: int, out=None, part=None): ...
+
+    @staticmethod
+    def chunk_range(n_chunks, part):
+        """The feature chunks ``range(c0, c1)`` that ``part = (j, J)`` covers (all when None)."""
+        if part is None:
+            return range(n_chunks)
+        j, J = part
+        return range(n_chunks * j // J, n_chunks * (j + 1) // J)
 
     @abstractmethod
     def info(self) -> FitInfo: ...
@@ -391,6 +402,7 @@ class OLSKernel(StatisticKernel):
             R, Q = Yf, b.q
             rr = _sum_squares(R)
         self.R, self.rr, self.Q = R, rr, Q.astype(np.float32)
+        self.fc = min(FEATURE_CHUNK, self.n_features)      # travels with the kernel
 
     @property
     def scheme_name(self):
@@ -415,7 +427,7 @@ class OLSKernel(StatisticKernel):
         G[:(b - a) * r] = self._gemm_rows(self.rearr.matrix[a:b])
         return G
 
-    def resampled(self, lo, hi, out=None):
+    def resampled(self, lo, hi, out=None, part=None):
         """Statistics of resamples lo..hi-1 (see the contract in the module docstring)."""
         B = hi - lo
         r = self.Q.shape[1]
@@ -423,13 +435,14 @@ class OLSKernel(StatisticKernel):
         ks = range(lo // RES_BLOCK, (hi - 1) // RES_BLOCK + 1)
         mx = np.full(B, -np.inf)
         mn = np.full(B, np.inf)
-        fc = min(FEATURE_CHUNK, F)
+        fc = self.fc
+        chunks = self.chunk_range(-(-F // fc), part)
         on_disk = isinstance(self.R, np.memmap) or isinstance(getattr(self.R, "base", None),
                                                                np.memmap)
         with one_blas_thread():
             Gs = [self._block_rows(k) for k in ks]
             pad = None
-            for a in range(0, F, fc):
+            for a in range(chunks.start * fc, chunks.stop * fc, fc):
                 b = min(F, a + fc)
                 Rc = self.R[:, a:b]
                 if on_disk:                         # read the chunk, hand its pages back

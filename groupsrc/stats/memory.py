@@ -90,7 +90,7 @@ class Plan:
         return _disk_array(shape)
 
 
-def minimum(n_features, buffers=2) -> int:
+def minimum(n_features, buffers=1) -> int:
     """The smallest working set that runs: one product block per buffer, the
     per-feature results and the smallest chunks."""
     return int(PER_FEATURE * n_features + RES_BLOCK * 4 * n_features * buffers
@@ -101,9 +101,9 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False) -> Plan:
     """The sizes that keep the working set within ``memory`` bytes (None: defaults)."""
     if memory is None:
         return Plan()
-    buffers = 1 if distributed else (2 if workers > 1 else 1)
-    if not distributed and workers > 1:
-        buffers = max(buffers, 2)
+    # one map buffer in this process: the threads backend shares one batch between its
+    # threads, and Dask workers hold theirs in their own processes
+    buffers = 1
     low = minimum(n_features, buffers)
     if memory < low:
         raise MemoryTooSmall(

@@ -383,7 +383,7 @@ class MixedKernel(StatisticKernel):
         Fv = sum(u * u for u in U) * (m / rss) / np.float32(k)
         return z_of_f(Fv.astype(np.float64), k, nu).astype(np.float32)
 
-    def resampled(self, lo, hi, out=None):
+    def resampled(self, lo, hi, out=None, part=None):
         """z maps of resamples lo..hi-1 (see the contract in :mod:`.kernels`)."""
         B = hi - lo
         F, fc = self.n_features, self.fc
@@ -392,7 +392,7 @@ class MixedKernel(StatisticKernel):
         mn = np.full(B, np.inf)
         with one_blas_thread():
             Gs = [self._block_rows(k) for k in ks]
-            for c in range(self.data.shape[0]):
+            for c in self.chunk_range(self.data.shape[0], part):
                 a, b = c * fc, min(F, (c + 1) * fc)
                 D = self.data[c]
                 for k, G in zip(ks, Gs):

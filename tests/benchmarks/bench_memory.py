@@ -89,7 +89,7 @@ def main():
           f"load average {os.getloadavg()[0]:.2f}")
     out = {}
     from groupsrc.stats.memory import minimum
-    low = minimum(S * T, 2)
+    low = minimum(S * T)
     for label, memory in (("in memory", None), ("--memory data/2", max(data // 2, low)),
                           ("--memory minimum", low)):
         r = subprocess.run([sys.executable, "-c", CHILD, str(path), json.dumps(shape),
