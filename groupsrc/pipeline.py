@@ -181,7 +181,7 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     :class:`groupsrc.stats.checkpoint.Checkpoint` saving (and resuming) the
     resampling.
     """
-    from .stats.corrections import TfceOptions
+    from .stats.corrections import CORRECTIONS, TfceOptions
     from .stats.inference import Execution, InferenceSpec, infer
     from .stats.kernels import OLSKernel
     from .stats.reduction import reduce_maps
@@ -202,7 +202,8 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     n_features = cohort.grid.n_sources * (samples.stop - samples.start)
     mixed = any(p.model == "mixed" for p in prep.plans)
     plan_memory = _memory_plan(memory, len(glm.participants), n_features, workers, scheduler,
-                               s, mixed=mixed)
+                               s, mixed=mixed,
+                               scratch=CORRECTIONS[inf["correction"]].scratch_bytes)
     results, timings = [], {}
     fitted = _fit_mixed(prep, samples, timings,
                         _stage(new_progress, "fitting the mixed model", "feature"))
@@ -440,7 +441,8 @@ def _stage(new_progress, desc, unit):
     return report
 
 
-def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixed=False):
+def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixed=False,
+                 scratch=0):
     from .stats.memory import MemoryTooSmall, plan
     if memory is not None and mixed:
         problems = ProblemList()
@@ -450,7 +452,8 @@ def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixe
                      "(or mixed = false) when the bound is needed")
         raise InputError(problems)
     try:
-        return plan(memory, n_units, n_features, workers=workers, distributed=bool(scheduler))
+        return plan(memory, n_units, n_features, workers=workers, distributed=bool(scheduler),
+                    scratch_per_thread=scratch)
     except MemoryTooSmall as exc:
         problems = ProblemList()
         problems.add("--memory", str(exc), exc.fix)

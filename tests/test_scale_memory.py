@@ -7,14 +7,15 @@ import numpy as np
 import pytest
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats import unionfind
+from groupsrc.stats.corrections import CORRECTIONS, TfceOptions
 from groupsrc.stats.inference import Execution, InferenceSpec, infer
 from groupsrc.stats.kernels import OLSKernel
 from groupsrc.stats.memory import MemoryTooSmall, minimum, parse_size, plan
 from groupsrc.stats.reduction import reduce_maps
 
 
-def _problem(n=200, seed=0):
+def _problem(n=240, seed=0):
     rng = np.random.default_rng(seed)
     grid = VolumeGrid.from_mask(np.ones((10, 10, 10), bool), np.eye(4))
     T = 20
@@ -29,7 +30,8 @@ def _problem(n=200, seed=0):
 
 def _run(grid, Y, W, X, memory, correction):
     n_features = grid.n_sources * Y.shape[2]
-    p = plan(memory, W.shape[0], n_features, workers=2)
+    p = plan(memory, W.shape[0], n_features, workers=2,
+             scratch_per_thread=CORRECTIONS[correction].scratch_bytes)
     data = reduce_maps(Y, W, slice(0, Y.shape[2]), chunk_bytes=p.chunk_bytes,
                        out=p.array((W.shape[0], grid.n_sources, Y.shape[2])))
     kernel = OLSKernel(data.reshape(W.shape[0], -1), X, [1.0, 0.0], scheme="sign-flip")
@@ -47,7 +49,7 @@ def test_bounded_run_equals_in_memory_run(correction):
     n_features = grid.n_sources * Y.shape[2]
     data_bytes = W.shape[0] * n_features * 4
     memory = data_bytes // 2                    # the data are twice the setting
-    assert memory >= minimum(n_features)
+    assert memory >= minimum(n_features, scratch=2 * CORRECTIONS[correction].scratch_bytes)
     p, data, bounded = _run(grid, Y, W, X, memory, correction)
     assert p.on_disk and isinstance(data, np.memmap)
     assert bounded.resampling.batch_size < 64   # several batches
@@ -79,3 +81,24 @@ def test_sizes(text, value):
 def test_bad_sizes(text):
     with pytest.raises(ValueError):
         parse_size(text)
+
+
+def test_scratch_bytes_are_the_workspaces():
+    # the memory plan's per-feature scratch figures are the arrays the scorers allocate
+    F = 1000
+    for make, declared in ((unionfind.cluster_workspace, CORRECTIONS["cluster-mass"]),
+                           (unionfind.tfce_workspace, CORRECTIONS["tfce"])):
+        assert sum(a.nbytes for a in make(F)) == declared.scratch_bytes * F
+    assert CORRECTIONS["max-stat"].scratch_bytes == 0
+
+
+def test_scratch_raises_the_minimum_and_counts_every_thread():
+    n = 1_250_000
+    base = minimum(n)
+    assert minimum(n, scratch=93) - base == 93 * n
+    with pytest.raises(MemoryTooSmall):
+        plan(base, 40, n, workers=2, scratch_per_thread=93)
+    plan(minimum(n, scratch=2 * 93), 40, n, workers=2, scratch_per_thread=93)
+    with pytest.raises(MemoryTooSmall):                 # three threads need more
+        plan(minimum(n, scratch=2 * 93), 40, n, workers=3, scratch_per_thread=93)
+    plan(base, 40, n, workers=2, distributed=True, scratch_per_thread=93)  # scored elsewhere

@@ -105,6 +105,8 @@ class Correction:
     name = ""
     resamples = True
     needs_maps = False
+    #: bytes per feature of each scoring thread's scratch arrays (for the memory plan)
+    scratch_bytes = 0
 
     def __init__(self, kind, tails, shape, adjacency, threshold=None, tfce=None):
         self.kind, self.tails, self.shape = kind, tails, tuple(shape)
@@ -121,6 +123,10 @@ class Correction:
         if ws is None:
             ws = self._local.ws = make()
         return ws
+
+    def release_scratch(self):
+        """Drop every thread's scratch arrays (after the null distribution)."""
+        self._local = threading.local()
 
     def __getstate__(self):
         state = dict(self.__dict__)
@@ -150,6 +156,7 @@ class ClusterMass(Correction):
     name = "cluster-mass"
     needs_maps = True
     score = "mass"
+    scratch_bytes = unionfind.CLUSTER_SCRATCH_BYTES
 
     def _values(self, sc):
         return sc.mass if self.score == "mass" else sc.sign * sc.extent.astype(float)
@@ -189,6 +196,7 @@ class ClusterExtent(ClusterMass):
 class Tfce(Correction):
     name = "tfce"
     needs_maps = True
+    scratch_bytes = unionfind.TFCE_SCRATCH_BYTES
 
     def enhance(self, st):
         """TFCE of one map (S, T), signed like the statistic."""

@@ -154,13 +154,13 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
           execution: Execution = Execution()) -> InferenceResult:
     """One contrast: observed statistic, null distribution, corrected p, clusters."""
     adjacency, shape = _validate(kernel, adjacency, spec)
-    obs = kernel.observed(spec.tails)
     threshold = (kernel.threshold(spec.forming_p, spec.tails)
                  if spec.correction in ("cluster-mass", "cluster-extent") else None)
     correction = make_correction(spec.correction, kernel.kind, spec.tails, shape, adjacency,
                                  threshold=threshold, tfce=spec.tfce)
-    stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
     if not correction.resamples:
+        obs = kernel.observed(spec.tails)
+        stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
         outcome = correction.parametric(stat_map, obs.p_uncorrected, spec.alpha)
         null = pd.DataFrame(columns=NULL_COLUMNS)
         return _result(kernel, obs, outcome, null, spec, threshold, shape, None, None)
@@ -170,6 +170,12 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
                  exact=bool(rearr.exact), freedman_lane=bool(kernel.freedman_lane))
     null, batch = _null(NullJob(kernel, correction), rearr.n_resamples, kernel, correction,
                         spec, execution, fixed)
+    # the observed maps after the null: the resampling's buffers and scratch are gone
+    # by then, so the two never take memory at the same time
+    correction.release_scratch()
+    kernel.release_buffers()
+    obs = kernel.observed(spec.tails)
+    stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
     outcome = correction.outcome(stat_map, null["max_stat"].to_numpy(), spec.alpha)
     record = ResamplingRecord(
         seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,

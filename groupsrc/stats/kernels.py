@@ -69,6 +69,7 @@ from abc import ABC, abstractmethod
 from dataclasses import dataclass
 
 import numpy as np
+from scipy import special
 from scipy import stats as sps
 
 from . import glm
@@ -161,6 +162,10 @@ class StatisticKernel(ABC):
         state["_buffers"] = {}
         return state
 
+    def release_buffers(self):
+        """Drop every thread's work array (after the null distribution)."""
+        self._buffers = {}
+
     def buffer(self, B):
         """A (B, n_features) float32 work array reused by the calling thread."""
         key = threading.get_ident()
@@ -176,14 +181,25 @@ class StatisticKernel(ABC):
 # ----------------------------------------------------------------------------
 
 def parametric_p(stat, kind, tails, df):
-    """Parametric p of a t or F statistic for the given tails (F: upper tail)."""
+    """Parametric p of a t or F statistic for the given tails (F: upper tail).
+
+    The t tails are Student's distribution function (``scipy.special.stdtr``, what
+    ``scipy.stats.t.sf`` / ``cdf`` evaluate) computed in place: one result array,
+    no temporaries the size of the map.
+    """
     if kind == "F":
         return sps.f.sf(stat, df[0], df[1])
+    p = np.array(stat, dtype=np.float64)
+    if tails == "two":                       # 2 P(T >= |t|) = 2 P(T <= -|t|)
+        np.abs(p, out=p)
+        np.negative(p, out=p)
+    elif tails == "greater":                 # P(T >= t) = P(T <= -t)
+        np.negative(p, out=p)
+    special.stdtr(df[0], p, out=p)
     if tails == "two":
-        return np.minimum(1.0, 2.0 * sps.t.sf(np.abs(stat), df[0]))
-    if tails == "greater":
-        return sps.t.sf(stat, df[0])
-    return sps.t.cdf(stat, df[0])
+        p *= 2.0
+        np.minimum(p, 1.0, out=p)
+    return p
 
 
 def forming_threshold(kind, forming_p, tails, df):
@@ -356,6 +372,7 @@ class OLSKernel(StatisticKernel):
             fit = _by_chunks(glm.t_contrast, Yf, X, C)
             stat, est, se = fit.t, fit.estimate, fit.se
             effect = glm.cohens_d(fit.estimate, fit.sigma, fit.df)
+            del fit                                # sigma goes before the p-values come
         else:
             fit = _by_chunks(glm.f_contrast, Yf, X, C)
             stat, est, se = fit.F, nan, nan

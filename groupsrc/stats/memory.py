@@ -5,7 +5,10 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
 
 * per-feature results: about ``PER_FEATURE`` x F (the observed statistic,
   estimate, standard error, effect, p-values, labels; float64);
-* the resampled maps of the batches alive at once: ``B x F x 4`` per buffer;
+* the resampled maps of the batch in hand: ``B x F x 4`` (one buffer, shared by
+  the threads of the threads backend);
+* the scorers' scratch arrays, per scoring thread: ``Correction.scratch_bytes``
+  per feature (21 for cluster mass / extent, 93 for TFCE, 0 otherwise);
 * the reduced data and their residuals, ``2 x n x F x 4``: in memory while
   they fit half of what is left, else in files (memory-mapped, read chunk by
   chunk with the pages handed back after each chunk, :func:`release`);
@@ -90,28 +93,38 @@ class Plan:
         return _disk_array(shape)
 
 
-def minimum(n_features, buffers=1) -> int:
+def minimum(n_features, buffers=1, scratch=0) -> int:
     """The smallest working set that runs: one product block per buffer, the
-    per-feature results and the smallest chunks."""
-    return int(PER_FEATURE * n_features + RES_BLOCK * 4 * n_features * buffers
+    per-feature results, the scorers' scratch (``scratch`` bytes per feature, all
+    threads together) and the smallest chunks."""
+    return int((PER_FEATURE + scratch) * n_features + RES_BLOCK * 4 * n_features * buffers
                + 2 * CHUNK_MIN)
 
 
-def plan(memory, n_units, n_features, *, workers=1, distributed=False) -> Plan:
-    """The sizes that keep the working set within ``memory`` bytes (None: defaults)."""
+def plan(memory, n_units, n_features, *, workers=1, distributed=False,
+         scratch_per_thread=0) -> Plan:
+    """The sizes that keep the working set within ``memory`` bytes (None: defaults).
+
+    One map buffer lives in this process (the threads backend shares one batch
+    between its threads; Dask workers hold theirs in their own processes).
+    ``scratch_per_thread``: the correction's scratch bytes per feature
+    (``Correction.scratch_bytes``), held by each of the ``workers`` threads that
+    score maps here (none when ``distributed``).
+    """
     if memory is None:
         return Plan()
-    # one map buffer in this process: the threads backend shares one batch between its
-    # threads, and Dask workers hold theirs in their own processes
     buffers = 1
-    low = minimum(n_features, buffers)
+    threads = workers if workers > 0 else (os.cpu_count() or 1)
+    scratch = 0 if distributed else scratch_per_thread * threads
+    low = minimum(n_features, buffers, scratch)
     if memory < low:
         raise MemoryTooSmall(
             f"{size_text(memory)} is below what one batch needs: {RES_BLOCK} resampled maps "
-            f"of {n_features:,} source x sample points per buffer and the result maps take "
-            f"at least {size_text(low)}", f"give --memory {size_text(low)} or more")
+            f"of {n_features:,} source x sample points, the scorers' work arrays and the "
+            f"result maps take at least {size_text(low)}",
+            f"give --memory {size_text(low)} or more")
     chunk = float(min(CHUNK_MAX, max(CHUNK_MIN, memory / 32)))
-    left = memory - PER_FEATURE * n_features - 2 * chunk
+    left = memory - (PER_FEATURE + scratch) * n_features - 2 * chunk
     data = 2 * 4.0 * n_units * n_features
     on_disk = data > left / 2
     budget = left - (0 if on_disk else data)

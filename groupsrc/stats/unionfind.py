@@ -127,9 +127,9 @@ def label_codes(code, up_ptr, up_idx, T):
     order of first appearance.
     """
     F = code.size
-    parent = np.empty(F, np.int64)
-    size = np.empty(F, np.int64)
-    listed = np.empty(F, np.int64)
+    parent = np.empty(F, np.int32)      # int32: maps below 2^31 points, half the memory
+    size = np.empty(F, np.int32)
+    listed = np.empty(F, np.int32)
     K = 0
     for v in range(F):
         if code[v] != 0:
@@ -138,7 +138,7 @@ def label_codes(code, up_ptr, up_idx, T):
             listed[K] = v
             K += 1
     _join_forward(code, listed, K, up_ptr, up_idx, T, parent, size)
-    idx = listed[:K].copy()
+    idx = listed[:K].astype(np.int64)
     comp = np.empty(K, np.int64)
     number = size                        # reused: -1 on roots not yet numbered
     for i in range(K):
@@ -153,6 +153,11 @@ def label_codes(code, up_ptr, up_idx, T):
             n += 1
         comp[i] = -2 - number[r]
     return idx, comp, n
+
+
+#: bytes per point of :func:`cluster_workspace` (int8 code, int32 parent, size and
+#: list, float64 sums)
+CLUSTER_SCRATCH_BYTES = 1 + 4 + 4 + 8 + 4
 
 
 def cluster_workspace(F):
@@ -279,6 +284,10 @@ def _radix_order(vals, order, src):
 
 #: how many points ahead of the visit the TFCE pass prefetches (cache lines in flight)
 _AHEAD = 16
+
+
+#: bytes per point of :func:`tfce_workspace`
+TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 2 * 4 + 4 + 6 * 8 + 4 + 8 + 4 + 4
 
 
 def tfce_workspace(F):

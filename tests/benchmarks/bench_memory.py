@@ -52,7 +52,8 @@ assert grid.n_sources == shape[1], grid.n_sources
 W = np.zeros((n, 2 * n)); W[np.arange(n), 2 * np.arange(n)] = 1; W[np.arange(n), 2 * np.arange(n) + 1] = -1
 X = np.zeros((n, 2)); X[: n // 2, 0] = 1; X[n // 2:, 1] = 1
 F = shape[1] * shape[2]
-p = plan(memory, n, F, workers=2)
+from groupsrc.stats.corrections import CORRECTIONS
+p = plan(memory, n, F, workers=2, scratch_per_thread=CORRECTIONS["cluster-mass"].scratch_bytes)
 t0 = time.perf_counter()
 data = reduce_maps(Y, W, slice(0, shape[2]), chunk_bytes=p.chunk_bytes, out=p.array((n,) + shape[1:]))
 kernel = OLSKernel(data.reshape(n, -1), X, [1.0, -1.0], scheme="permutation")
@@ -89,7 +90,8 @@ def main():
           f"load average {os.getloadavg()[0]:.2f}")
     out = {}
     from groupsrc.stats.memory import minimum
-    low = minimum(S * T)
+    from groupsrc.stats.corrections import CORRECTIONS
+    low = minimum(S * T, scratch=2 * CORRECTIONS["cluster-mass"].scratch_bytes)
     for label, memory in (("in memory", None), ("--memory data/2", max(data // 2, low)),
                           ("--memory minimum", low)):
         r = subprocess.run([sys.executable, "-c", CHILD, str(path), json.dumps(shape),
