@@ -287,7 +287,7 @@ _AHEAD = 16
 
 
 #: bytes per point of :func:`tfce_workspace`
-TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 2 * 4 + 4 + 6 * 8 + 4 + 8 + 4 + 4
+TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 4 + 6 * 8 + 4 + 8 + 4 + 4
 
 
 def tfce_workspace(F):
@@ -295,17 +295,24 @@ def tfce_workspace(F):
     maps: no allocation per map (large allocations and their page faults serialise
     threads)."""
     return (np.empty(F, np.float64), np.empty(F, np.int8), np.empty(F, np.int32),
-            np.empty(2 * F, np.int32), np.empty(F, np.int32), np.empty(6 * F, np.float64),
+            np.empty(F, np.int32), np.empty(6 * F, np.float64),
             np.empty(F, np.int32), np.empty(F, np.float64), np.empty(F, np.int32),
             np.empty(F, np.int32))
 
 
 @njit(**_JIT)
-def _find_point(par, x):
-    while par[x] != x:
-        par[x] = par[par[x]]                   # path halving
-        x = par[x]
-    return x
+def _find_root(par, x):
+    """Root of ``x``: a point whose ``par`` is itself (no node yet) or negative
+    (``-1 - node``); path halving on the way."""
+    while True:
+        p = par[x]
+        if p < 0 or p == x:
+            return x
+        gp = par[p]
+        if gp < 0 or gp == p:
+            return p
+        par[x] = gp
+        x = gp
 
 
 @njit(**_JIT)
@@ -327,7 +334,7 @@ def _close_node(nodes, nd, g, parent, E):
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     """Build the component tree of one map ``x`` (F,); return (K, nn).
 
-    After the call, with ``a, sgn, par, sr, rank, nodes, leaf, vals, scratch, P = ws``:
+    After the call, with ``a, sgn, par, rank, nodes, leaf, vals, scratch, P = ws``:
     ``P[:K]`` are the visited points (time-major indices ``t * S + s``) from the
     highest down, ``sgn`` their signs (by time-major index), ``leaf[:K]`` the node
     each opened, and ``nodes[3 nd + 1]`` (nd < nn) each node's TFCE, accumulated
@@ -336,12 +343,13 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     sum with the fixed step ``dh`` or ``max|x| / steps``.
 
     The union-find is indexed by point, not by rank: ``par`` (parent point, or
-    ``_NOT_YET``) of a neighbour lies in the cache line its visit check reads, and
-    a component's size and node (``sr[2 r]``, ``sr[2 r + 1]``) sit together.  The
-    lines of the point ``_AHEAD`` visits later and of its neighbours are
-    prefetched (:mod:`.prefetch`).
+    ``_NOT_YET``) of a neighbour lies in the cache line its visit check reads.  A
+    root holds ``-1 - node`` of its open node, which keeps the component's size
+    until it closes (a point alone, with no node yet, is its own parent), so the
+    root's one line gives both.  The lines of the point ``_AHEAD`` visits later
+    and of its neighbours are prefetched (:mod:`.prefetch`).
     """
-    a, sgn, par, sr, rank, nodes, leaf, vals, scratch, P = ws
+    a, sgn, par, rank, nodes, leaf, vals, scratch, P = ws
     F = x.size
     S = F // T
     top = 0.0
@@ -402,7 +410,6 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
             sq = q - tq * S
             prefetch(par, q)
             prefetch(sgn, q)
-            prefetch(sr, 2 * q)
             if tq > 0:
                 prefetch(par, q - S)
             if tq + 1 < T:
@@ -413,9 +420,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
         v = np.int64(P[i])
         g = _height_weight(A[i], H, step, prefix)
         sg = sgn[v]
-        par[v] = v
-        sr[2 * v] = 1
-        sr[2 * v + 1] = -1            # a single point: no node until needed
+        par[v] = v                    # a single point: its own root, no node until needed
         ri = v                        # the root of v's component
         t = v // S
         s = v - t * S
@@ -434,27 +439,31 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
                 u = t * S + np.int64(adj_idx[j0 + d])
             if par[u] == _NOT_YET or sgn[u] != sg:
                 continue
-            rj = np.int64(_find_point(par, u))
+            rj = np.int64(_find_root(par, u))
             if rj == ri:
                 continue
-            # close the nodes of both components at this height (a node opened at
-            # this same height has length zero); the merged component opens here
-            for r0 in (rj, ri):
-                nd = sr[2 * r0 + 1]
-                if nd >= 0:
-                    _close_node(nodes, nd, g, nn, E)
-            if sr[2 * ri] < sr[2 * rj]:   # union by size
+            # sizes (kept in the open nodes), then close the nodes of both components
+            # at this height (a node opened at this same height has length zero); the
+            # merged component opens here
+            pi = np.int64(par[ri])
+            pj = np.int64(par[rj])
+            ni = 1.0 if pi >= 0 else nodes[3 * (-1 - pi) + 1]
+            nj = 1.0 if pj >= 0 else nodes[3 * (-1 - pj) + 1]
+            if pj < 0:
+                _close_node(nodes, -1 - pj, g, nn, E)
+            if pi < 0:
+                _close_node(nodes, -1 - pi, g, nn, E)
+            if ni < nj:                   # union by size
                 ri, rj = rj, ri
             par[rj] = ri
-            sr[2 * ri] += sr[2 * rj]
-            sr[2 * ri + 1] = nn
-            _open_node(nodes, nn, g, sr[2 * ri])
+            par[ri] = -1 - nn
+            _open_node(nodes, nn, g, ni + nj)
             nn += 1
-        if sr[2 * ri + 1] < 0:        # no neighbour yet: a node of its own
-            sr[2 * ri + 1] = nn
-            _open_node(nodes, nn, g, sr[2 * ri])
+        if par[ri] >= 0:              # no neighbour yet: a node of its own
+            par[ri] = -1 - nn
+            _open_node(nodes, nn, g, 1.0)
             nn += 1
-        leaf[i] = sr[2 * ri + 1]
+        leaf[i] = -1 - par[ri]
     for nd in range(nn):              # nodes still open at height 0: the roots
         if nodes[3 * nd + 2] < 0.0:
             _close_node(nodes, nd, 0.0, -1.0, E)
@@ -469,7 +478,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
 def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
     """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see :func:`_tfce_tree`)."""
     K, nn = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
-    sgn, nodes, leaf, P = ws[1], ws[5], ws[6], ws[9]
+    sgn, nodes, leaf, P = ws[1], ws[4], ws[5], ws[8]
     out[:] = 0.0
     S = x.size // T
     for i in range(K):
@@ -493,7 +502,7 @@ def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, 
     Read from the nodes the points opened, without writing the map.
     """
     B = maps.shape[0]
-    sgn, nodes, leaf, P = ws[1], ws[5], ws[6], ws[9]
+    sgn, nodes, leaf, P = ws[1], ws[4], ws[5], ws[8]
     for b in range(B):
         K, nn = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh,
                            ws)
