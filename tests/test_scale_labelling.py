@@ -89,3 +89,14 @@ def test_one_sign_only():
     unionfind.cluster_extremes(maps, 0.5, True, False, True, ptr, ind, 4, pos, neg,
                                unionfind.cluster_workspace(30 * 4))
     assert np.all(neg == 0) and np.all(pos > 0)
+
+
+def test_maps_beyond_int32_indices_are_refused():
+    # the compiled loops index points with int32 (numpy's int32 range, common practice)
+    from scipy import sparse
+
+    from groupsrc.stats.corrections import make_correction
+    adj = sparse.csr_matrix((70_000, 70_000))
+    with pytest.raises(ValueError, match="points a map may have"):
+        make_correction("cluster-mass", "t", "two", (70_000, 40_000), adj, threshold=2.0)
+    make_correction("cluster-mass", "t", "two", (70_000, 30_000), adj, threshold=2.0)

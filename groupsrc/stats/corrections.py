@@ -41,6 +41,10 @@ from .tfce import tfce as tfce_map
 from .tfce import tfce_batch
 from .unionfind import tfce_workspace
 
+#: points per map the compiled loops can index (int32)
+MAX_POINTS = 2 ** 31
+
+
 @dataclass(frozen=True)
 class TfceOptions:
     """TFCE settings: ``extent_power`` and ``height_power`` are the exponents the
@@ -109,6 +113,10 @@ class Correction:
     scratch_bytes = 0
 
     def __init__(self, kind, tails, shape, adjacency, threshold=None, tfce=None):
+        if int(shape[0]) * int(shape[1]) >= MAX_POINTS:
+            raise ValueError(f"{shape[0]:,} sources x {shape[1]:,} samples is more than the "
+                             f"{MAX_POINTS - 1:,} points a map may have -> analyse a shorter "
+                             f"time window or fewer sources per run")
         self.kind, self.tails, self.shape = kind, tails, tuple(shape)
         self.adj = adjacency
         self.threshold = threshold
