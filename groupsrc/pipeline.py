@@ -29,6 +29,8 @@ from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_sett
 from .inputs.tables import HEMISPHERE_PATHS
 
 log = logging.getLogger("groupsrc")
+#: one line per stage with its duration; silent with --quiet (notices stay on ``log``)
+stage_log = logging.getLogger("groupsrc.stages")
 
 
 @dataclass
@@ -237,10 +239,10 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
                 within=plan.within)
         results.append(result)
         timings[plan.name] = round(time.perf_counter() - t0, 3)
-        log.info(f"contrast {plan.name}: "
-                 + (f"reduction {t1 - t0:.1f} s, " if plan.model != "mixed" else "")
-                 + f"model and {result.inference.n_resamples} resamples "
-                 f"{time.perf_counter() - t1:.1f} s")
+        stage_log.info(f"contrast {plan.name}: "
+                       + (f"reduction {t1 - t0:.1f} s, " if plan.model != "mixed" else "")
+                       + f"model and {result.inference.n_resamples} resamples "
+                       f"{time.perf_counter() - t1:.1f} s")
     settings_dict = s.as_dict()
     settings_dict["inference"] = inf
     settings_dict["check_summary"] = prep.summary
@@ -276,7 +278,8 @@ def _fit_mixed(prep, samples, timings, progress=None):
     fit = fit_features(core, Yf, reml=reml, progress=progress)
     vc = variance_components(fit, Yf)
     timings["mixed_model_fit"] = round(time.perf_counter() - t0, 3)
-    log.info(f"mixed model: {Yf.shape[1]} features fitted in {timings['mixed_model_fit']:.1f} s")
+    stage_log.info(f"mixed model: {Yf.shape[1]} features fitted in "
+                   f"{timings['mixed_model_fit']:.1f} s")
     shape = (Y.shape[1], Yf.shape[1] // Y.shape[1])
     summary = {"method": "REML" if reml else "ML", "counts": fit.counts(),
                "code": fit.code.reshape(shape), "iterations": fit.iterations.reshape(shape),
@@ -329,6 +332,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     from .progress import reporter
 
     t_start = time.perf_counter()
+    stage_log.setLevel(logging.WARNING if quiet else logging.NOTSET)
     new_progress = reporter(quiet=quiet) if progress is None else _reporter(progress)
     settings = parse_settings(analysis_path)
     out = Path(out_dir) if out_dir else settings.base / "results"
@@ -339,8 +343,8 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     prep = prepare(settings, progress=new_progress)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
-    log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
-             + (" (loading cache reused)" if prep.cohort.cache_hit else ""))
+    stage_log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
+                   + (" (loading cache reused)" if prep.cohort.cache_hit else ""))
     if scheduler:                  # an unanswering scheduler is refused before any work
         from .stats.backends import dask_client
         dask_client(scheduler)
@@ -361,7 +365,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
             from .stats.backends import close_clients
             close_clients()
     t_stats = time.perf_counter()
-    log.info(f"statistics done in {t_stats - t_loaded:.1f} s")
+    stage_log.info(f"statistics done in {t_stats - t_loaded:.1f} s")
     record = run_record(settings, prep, result, command, workers)
     record["timings_s"] = {"load": round(t_loaded - t_start, 3),
                            "statistics": round(t_stats - t_loaded, 3),
@@ -369,7 +373,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     with staged(out) as tmp:
         write_results(result, tmp, record)
     checkpoint.remove()            # the results are in place: nothing left to resume
-    log.info(f"results written in {time.perf_counter() - t_stats:.1f} s")
+    stage_log.info(f"results written in {time.perf_counter() - t_stats:.1f} s")
     return out
 
 

@@ -213,3 +213,21 @@ def test_ctrl_c_then_resume_in_process(cohort, reference, tmp_path, capsys, monk
     for name in ("rare_minus_frequent/null_distribution.tsv", "group_by_tone/p_corrected.nii.gz",
                  "age_slope/clusters.tsv"):
         assert (ref / name).read_bytes() == (out / name).read_bytes(), name
+
+
+def test_quiet_keeps_notices_but_not_stage_lines(cohort, reference, tmp_path, capsys,
+                                                 monkeypatch):
+    # README: --quiet turns the progress bars and the per-stage lines off; notices that
+    # need the user (here: the checkpoint is resumed) are still printed
+    _, cache = reference
+    monkeypatch.setenv("GROUPSRC_CACHE_DIR", str(cache))
+    loud = tmp_path / "loud"
+    assert main(["run", str(cohort), "--out", str(loud), "--resamples", "64"]) == 0
+    assert "statistics done in" in capsys.readouterr().err
+    out = _interrupted(cohort, tmp_path, cache)
+    assert main(["run", str(cohort), "--out", str(out), "--resamples", RESAMPLES, "--quiet",
+                 "--resume"]) == 0
+    err = capsys.readouterr().err
+    assert "resuming the interrupted run" in err
+    for line in ("loaded and checked", "contrast ", "statistics done in", "results written in"):
+        assert line not in err, line
