@@ -94,11 +94,12 @@ def test_scratch_bytes_are_the_workspaces():
 
 def test_scratch_raises_the_minimum_and_counts_every_thread():
     n = 1_250_000
+    per = CORRECTIONS["tfce"].scratch_bytes
     base = minimum(n)
-    assert minimum(n, scratch=93) - base == 93 * n
+    assert minimum(n, scratch=per) - base == per * n
     with pytest.raises(MemoryTooSmall):
-        plan(base, 40, n, workers=2, scratch_per_thread=93)
-    plan(minimum(n, scratch=2 * 93), 40, n, workers=2, scratch_per_thread=93)
+        plan(base, 40, n, workers=2, scratch_per_thread=per)
+    plan(minimum(n, scratch=2 * per), 40, n, workers=2, scratch_per_thread=per)
     with pytest.raises(MemoryTooSmall):                 # three threads need more
-        plan(minimum(n, scratch=2 * 93), 40, n, workers=3, scratch_per_thread=93)
-    plan(base, 40, n, workers=2, distributed=True, scratch_per_thread=93)  # scored elsewhere
+        plan(minimum(n, scratch=2 * per), 40, n, workers=3, scratch_per_thread=per)
+    plan(base, 40, n, workers=2, distributed=True, scratch_per_thread=per)  # scored elsewhere

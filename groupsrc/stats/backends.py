@@ -73,6 +73,11 @@ class NullJob:
         return [(a, min(B, a + step)) for a in range(0, B, step)]
 
 
+def worker_count(workers: int) -> int:
+    """The workers a setting means: itself, or every core for -1."""
+    return workers if workers > 0 else max(1, os.cpu_count() or 1)
+
+
 def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16, budget=None,
                tasks=1):
     """Default batch size: a whole number of product blocks (at least one) whose
@@ -97,7 +102,7 @@ class Backend(ABC):
         workers = int(workers)
         if workers == 0 or workers < -1:
             raise ValueError(f"workers must be a positive integer or -1, got {workers}")
-        self.workers = workers if workers > 0 else max(1, os.cpu_count() or 1)
+        self.workers = worker_count(workers)
 
     @property
     def buffers(self) -> int:

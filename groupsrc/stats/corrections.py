@@ -27,7 +27,6 @@ connected components of ``p <= alpha``.
 
 from __future__ import annotations
 
-import threading
 from dataclasses import dataclass
 
 import numpy as np
@@ -35,6 +34,7 @@ import pandas as pd
 from . import unionfind
 from .clusters import _up_csr, cluster_scores, components_by_sign, cluster_table
 from .fdr import fdr_bh
+from .perthread import PerThread
 from .resampling import null_p_values
 from .tfce import E_DEFAULT, H_DEFAULT, check_parameters
 from .tfce import tfce as tfce_map
@@ -113,7 +113,8 @@ class Correction:
     scratch_bytes = 0
 
     def __init__(self, kind, tails, shape, adjacency, threshold=None, tfce=None):
-        if int(shape[0]) * int(shape[1]) >= MAX_POINTS:
+        self.n_points = int(shape[0]) * int(shape[1])
+        if self.n_points >= MAX_POINTS:
             raise ValueError(f"{shape[0]:,} sources x {shape[1]:,} samples is more than the "
                              f"{MAX_POINTS - 1:,} points a map may have -> analyse a shorter "
                              f"time window or fewer sources per run")
@@ -121,29 +122,15 @@ class Correction:
         self.adj = adjacency
         self.threshold = threshold
         self.tfce = tfce
-        self._local = threading.local()
+        self._scratch = PerThread()     # allocated once per thread and contrast
 
     def scratch(self, make):
-        """The calling thread's scratch arrays, ``make()`` on its first call: allocated
-        once per thread and contrast, not per batch (large allocations page-fault, and
-        their faults serialise threads).  Not pickled: each process makes its own."""
-        ws = getattr(self._local, "ws", None)
-        if ws is None:
-            ws = self._local.ws = make()
-        return ws
+        """The calling thread's scratch arrays, ``make()`` on its first call."""
+        return self._scratch.get(make)
 
     def release_scratch(self):
         """Drop every thread's scratch arrays (after the null distribution)."""
-        self._local = threading.local()
-
-    def __getstate__(self):
-        state = dict(self.__dict__)
-        del state["_local"]
-        return state
-
-    def __setstate__(self, state):
-        self.__dict__.update(state)
-        self._local = threading.local()
+        self._scratch.clear()
 
     # -- resampling side ------------------------------------------------------
     def null_extremes(self, maps, lo, hi):  # pragma: no cover - map-based corrections
@@ -174,8 +161,7 @@ class ClusterMass(Correction):
         want = signs(self.kind, self.tails)
         pos, neg = np.zeros(hi - lo), np.zeros(hi - lo)
         ptr, ind = _up_csr(self.adj)
-        F = self.shape[0] * self.shape[1]
-        ws = self.scratch(lambda: unionfind.cluster_workspace(F))
+        ws = self.scratch(lambda: unionfind.cluster_workspace(self.n_points))
         unionfind.cluster_extremes(maps[lo:hi], float(self.threshold), 1 in want, -1 in want,
                                    self.score == "mass", ptr, ind, self.shape[1], pos, neg, ws)
         return pos, neg
@@ -220,8 +206,7 @@ class Tfce(Correction):
         """Compiled one-pass TFCE of maps[lo:hi], extremes only (:mod:`.tfce`)."""
         two = not (self.kind == "F" or self.tails in ("greater", "less"))
         less = self.kind == "t" and self.tails == "less"
-        F = self.shape[0] * self.shape[1]
-        ws = self.scratch(lambda: tfce_workspace(F))
+        ws = self.scratch(lambda: tfce_workspace(self.n_points))
         pos, neg = tfce_batch(maps[lo:hi], self.adj, two_sided=two, scale=-1.0 if less else 1.0,
                               extremes=True, workspace=ws, **self.tfce.keywords())
         return pos, neg

@@ -64,7 +64,6 @@ arithmetic.
 from __future__ import annotations
 
 import dataclasses
-import threading
 from abc import ABC, abstractmethod
 from dataclasses import dataclass
 
@@ -73,6 +72,7 @@ from scipy import special
 from scipy import stats as sps
 
 from . import glm
+from .perthread import PerThread
 from .resampling import Rearrangements, rearrangements
 
 #: resamples per product block
@@ -155,24 +155,16 @@ class StatisticKernel(ABC):
     def info(self) -> FitInfo: ...
 
     # -- per-thread work arrays (shared by every kernel) ----------------------
-    _buffers: dict
-
-    def __getstate__(self):                 # work buffers stay with their process
-        state = dict(self.__dict__)
-        state["_buffers"] = {}
-        return state
+    _buffers: PerThread             # set by each kernel's __init__; not pickled
 
     def release_buffers(self):
         """Drop every thread's work array (after the null distribution)."""
-        self._buffers = {}
+        self._buffers.clear()
 
     def buffer(self, B):
         """A (B, n_features) float32 work array reused by the calling thread."""
-        key = threading.get_ident()
-        buf = self._buffers.get(key)
-        if buf is None or buf.shape[0] < B:
-            buf = np.empty((B, self.n_features), np.float32)
-            self._buffers[key] = buf
+        buf = self._buffers.get(lambda: np.empty((B, self.n_features), np.float32),
+                                fits=lambda b: b.shape[0] >= B)
         return buf[:B]
 
 
@@ -362,7 +354,7 @@ class OLSKernel(StatisticKernel):
         self.df = (b.df,) if self.kind == "t" else (b.df1, b.df)
         self.rearr = None
         self.freedman_lane = False
-        self._buffers = {}
+        self._buffers = PerThread()
 
     # -- observed -------------------------------------------------------------
     def observed(self, tails):

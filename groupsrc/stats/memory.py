@@ -35,6 +35,7 @@ from pathlib import Path
 
 import numpy as np
 
+from .backends import worker_count
 from .kernels import RES_BLOCK
 from .pages import release  # noqa: F401  (re-exported)
 
@@ -114,8 +115,7 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False,
     if memory is None:
         return Plan()
     buffers = 1
-    threads = workers if workers > 0 else (os.cpu_count() or 1)
-    scratch = 0 if distributed else scratch_per_thread * threads
+    scratch = 0 if distributed else scratch_per_thread * worker_count(workers)
     low = minimum(n_features, buffers, scratch)
     if memory < low:
         raise MemoryTooSmall(

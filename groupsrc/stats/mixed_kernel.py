@@ -104,6 +104,7 @@ from scipy import sparse, special
 
 from . import mixed_linalg as la
 from .kernels import FEATURE_CHUNK, RES_BLOCK, FitInfo, Observed, StatisticKernel, one_blas_thread
+from .perthread import PerThread
 from .mixed import MixedCore, MixedDesign
 from .mixed_fit import MixedFit, fit_features
 from .mixed_inference import (contrast_statistics, score_statistics, scored_z, t_switch,
@@ -151,7 +152,7 @@ class MixedKernel(StatisticKernel):
         self._fit0 = None
         self.rearr = None
         self.df = (float("nan"),) if self.kind == "t" else (self.L.shape[0], float("nan"))
-        self._buffers = {}
+        self._buffers = PerThread()
 
     # -- observed -------------------------------------------------------------
     def null_fit(self) -> MixedFit:

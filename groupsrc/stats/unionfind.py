@@ -56,8 +56,9 @@ land at random places of the map): the pass works on time-major indices
 slice; the union-find is indexed by point, so the parent of a neighbour is in
 the cache line its visit check reads anyway; and the lines of the point
 visited ``_AHEAD`` steps later are prefetched (:mod:`.prefetch`), so those
-reads overlap.  Each step gave identical values; together about 2.6x faster
-per map than a rank-indexed pass on the source-major layout
+reads overlap; a root keeps its open tree node in its parent slot.  Each step
+gave identical values; together about 3x faster per map than a rank-indexed
+pass on the source-major layout
 (``tests/benchmarks/README.md``).  The null distribution only needs each map's
 extremes, which :func:`tfce_extremes` reads from the nodes without writing the
 map.
@@ -71,7 +72,7 @@ from numba import njit
 from .prefetch import prefetch
 
 _JIT = dict(nogil=True, cache=True)
-#: rank of a point not (yet) visited
+#: the TFCE pass's parent value of a point not (yet) visited
 _NOT_YET = np.int32(2 ** 31 - 1)
 
 
@@ -179,7 +180,6 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
     """
     B, F = maps.shape
     code, parent, size, acc, idx = ws
-    K = 0
     for b in range(B):
         x = maps[b]
         K = 0
@@ -334,7 +334,7 @@ def _close_node(nodes, nd, g, parent, E):
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     """Build the component tree of one map ``x`` (F,); return (K, nn).
 
-    After the call, with ``a, sgn, par, rank, nodes, leaf, vals, scratch, P = ws``:
+    After the call, with ``a, sgn, par, order_buf, nodes, leaf, vals, scratch, P = ws``:
     ``P[:K]`` are the visited points (time-major indices ``t * S + s``) from the
     highest down, ``sgn`` their signs (by time-major index), ``leaf[:K]`` the node
     each opened, and ``nodes[3 nd + 1]`` (nd < nn) each node's TFCE, accumulated
@@ -349,7 +349,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     root's one line gives both.  The lines of the point ``_AHEAD`` visits later
     and of its neighbours are prefetched (:mod:`.prefetch`).
     """
-    a, sgn, par, rank, nodes, leaf, vals, scratch, P = ws
+    a, sgn, par, order_buf, nodes, leaf, vals, scratch, P = ws
     F = x.size
     S = F // T
     top = 0.0
@@ -397,7 +397,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
             K += 1
     if K == 0:
         return 0, 0
-    order = _radix_order(vals[:K], rank, scratch)   # descending height
+    order = _radix_order(vals[:K], order_buf, scratch)   # descending height
     A = a                             # heights by rank (a is no longer needed)
     for i in range(K):
         P[i] = pts[order[i]]
@@ -478,7 +478,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
 def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
     """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see :func:`_tfce_tree`)."""
     K, nn = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
-    sgn, nodes, leaf, P = ws[1], ws[4], ws[5], ws[8]
+    _, sgn, _, _, nodes, leaf, _, _, P = ws
     out[:] = 0.0
     S = x.size // T
     for i in range(K):
@@ -502,7 +502,7 @@ def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, 
     Read from the nodes the points opened, without writing the map.
     """
     B = maps.shape[0]
-    sgn, nodes, leaf, P = ws[1], ws[4], ws[5], ws[8]
+    _, sgn, _, _, nodes, leaf, _, _, P = ws
     for b in range(B):
         K, nn = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh,
                            ws)
