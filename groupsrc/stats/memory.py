@@ -8,7 +8,7 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
 * the resampled maps of the batch in hand: ``B x F x 4`` (one buffer, shared by
   the threads of the threads backend);
 * the scorers' scratch arrays, per scoring thread: ``Correction.scratch_bytes``
-  per feature (21 for cluster mass / extent, 85 for TFCE, 0 otherwise);
+  per feature (at most 17 for cluster mass / extent, 85 for TFCE, 0 otherwise);
 * the reduced data and their residuals, ``2 x n x F x 4``: in memory while
   they fit half of what is left, else in files (memory-mapped, read chunk by
   chunk with the pages handed back after each chunk, :func:`release`);

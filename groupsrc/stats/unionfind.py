@@ -78,33 +78,43 @@ _NOT_YET = np.int32(2 ** 31 - 1)
 
 @njit(**_JIT)
 def _find(parent, x):
-    while parent[x] != x:
-        parent[x] = parent[parent[x]]          # path halving
-        x = parent[x]
-    return x
+    """Root of ``x``; a root's slot holds a negative number (minus its size while
+    joining), every other point's slot its parent (path halving)."""
+    while True:
+        p = parent[x]
+        if p < 0:
+            return x
+        g = parent[p]
+        if g < 0:
+            return p
+        parent[x] = g
+        x = g
 
 
 @njit(**_JIT)
-def _union(parent, size, a, b):
+def _union(parent, a, b):
+    """Join the components of ``a`` and ``b``: union by size, the larger (or, on a
+    tie, ``a``'s) root stays."""
     ra = _find(parent, a)
     rb = _find(parent, b)
     if ra == rb:
         return ra
-    if size[ra] < size[rb]:
+    if parent[ra] > parent[rb]:                # -size: ra is the smaller one
         ra, rb = rb, ra
+    parent[ra] += parent[rb]
     parent[rb] = ra
-    size[ra] += size[rb]
     return ra
 
 
 @njit(**_JIT)
-def _join_forward(code, idx, K, up_ptr, up_idx, T, parent, size):
+def _join_forward(code, idx, K, up_ptr, up_idx, T, parent):
     """Union every coded point with its forward neighbours of the same code.
 
     ``idx[:K]``: the coded points in ascending flat order (the only points
-    visited, so the cost follows K, not the map size); ``up_ptr`` /
-    ``up_idx``: the upper triangle (u > s) of the source adjacency, so each
-    spatial edge is seen once; in time the next sample.
+    visited, so the cost follows K, not the map size), each a root of size
+    one (``parent = -1``); ``up_ptr`` / ``up_idx``: the upper triangle (u > s)
+    of the source adjacency, so each spatial edge is seen once; in time the
+    next sample.
     """
     for i in range(K):
         v = idx[i]
@@ -112,11 +122,32 @@ def _join_forward(code, idx, K, up_ptr, up_idx, T, parent, size):
         s = v // T
         t = v - s * T
         if t + 1 < T and code[v + 1] == c:
-            _union(parent, size, v, v + 1)
+            _union(parent, v, v + 1)
         for j in range(up_ptr[s], up_ptr[s + 1]):
             u = np.int64(up_idx[j]) * T + t
             if code[u] == c:
-                _union(parent, size, v, u)
+                _union(parent, v, u)
+
+
+#: a root's slot before it is numbered (below every ``-1 - number``)
+_UNNUMBERED = np.int32(-2 ** 31)
+
+
+@njit(**_JIT)
+def _number_components(parent, idx, K):
+    """Number the components of ``idx[:K]`` 0..n-1 in order of their first point
+    (``idx`` ascending): each root's slot becomes ``-1 - number``.  Returns n."""
+    for i in range(K):
+        v = idx[i]
+        if parent[v] < 0:
+            parent[v] = _UNNUMBERED
+    n = 0
+    for i in range(K):
+        r = _find(parent, idx[i])
+        if parent[r] == _UNNUMBERED:
+            parent[r] = -1 - n
+            n += 1
+    return n
 
 
 @njit(**_JIT)
@@ -129,43 +160,32 @@ def label_codes(code, up_ptr, up_idx, T):
     """
     F = code.size
     parent = np.empty(F, np.int32)      # int32: maps below 2^31 points, half the memory
-    size = np.empty(F, np.int32)
     listed = np.empty(F, np.int32)
     K = 0
     for v in range(F):
         if code[v] != 0:
-            parent[v] = v
-            size[v] = 1
+            parent[v] = -1
             listed[K] = v
             K += 1
-    _join_forward(code, listed, K, up_ptr, up_idx, T, parent, size)
+    _join_forward(code, listed, K, up_ptr, up_idx, T, parent)
+    n = _number_components(parent, listed, K)
     idx = listed[:K].astype(np.int64)
     comp = np.empty(K, np.int64)
-    number = size                        # reused: -1 on roots not yet numbered
     for i in range(K):
-        v = idx[i]
-        if parent[v] == v:
-            number[v] = -1
-    n = 0
-    for i in range(K):
-        r = _find(parent, idx[i])
-        if number[r] == -1:              # first point of its component: next number
-            number[r] = -2 - n
-            n += 1
-        comp[i] = -2 - number[r]
+        comp[i] = -1 - parent[_find(parent, idx[i])]
     return idx, comp, n
 
 
-#: bytes per point of :func:`cluster_workspace` (int8 code, int32 parent, size and
-#: list, float64 sums)
-CLUSTER_SCRATCH_BYTES = 1 + 4 + 4 + 8 + 4
+#: bytes per point of :func:`cluster_workspace` (int8 code, int32 parent and list)
+#: plus, at most, the float64 sum of one component per point (allocated per map,
+#: one per component)
+CLUSTER_SCRATCH_BYTES = 1 + 4 + 4 + 8
 
 
 def cluster_workspace(F):
     """Scratch arrays for :func:`cluster_extremes` on maps of ``F`` points, reused
     across calls by one thread (``code`` must start all zero; the function leaves it so)."""
-    return (np.zeros(F, np.int8), np.empty(F, np.int32), np.empty(F, np.int32),
-            np.empty(F, np.float64), np.empty(F, np.int32))
+    return (np.zeros(F, np.int8), np.empty(F, np.int32), np.empty(F, np.int32))
 
 
 @njit(**_JIT)
@@ -176,10 +196,12 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
     ``maps`` (B, F); clusters are ``x > threshold`` (when ``want_pos``) and
     ``x < -threshold`` (when ``want_neg``).  ``pos`` / ``neg`` (B,) receive
     the extremes (0 when there is no cluster of that sign).  ``ws``:
-    :func:`cluster_workspace` (int32 indices: maps below 2^31 points).
+    :func:`cluster_workspace` (int32 indices: maps below 2^31 points).  The
+    scores are summed in one array of one entry per component, allocated per
+    map.
     """
     B, F = maps.shape
-    code, parent, size, acc, idx = ws
+    code, parent, idx = ws
     for b in range(B):
         x = maps[b]
         K = 0
@@ -192,29 +214,27 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
                 c = -1
             if c != 0:
                 code[v] = c
-                parent[v] = v
-                size[v] = 1
-                acc[v] = 0.0
+                parent[v] = -1
                 idx[K] = v
                 K += 1
-        _join_forward(code, idx, K, up_ptr, up_idx, T, parent, size)
+        _join_forward(code, idx, K, up_ptr, up_idx, T, parent)
+        n = _number_components(parent, idx, K)
         # scores summed in flat order, as numpy.bincount over the points would
+        acc = np.zeros(n)
         for i in range(K):
             v = idx[i]
-            r = _find(parent, v)
+            k = -1 - parent[_find(parent, v)]
             if by_mass:
-                acc[r] += x[v]
+                acc[k] += x[v]
             else:
-                acc[r] += code[v]
+                acc[k] += code[v]
         hi = 0.0
         lo = 0.0
-        for i in range(K):
-            v = idx[i]
-            if parent[v] == v:
-                if acc[v] > hi:
-                    hi = acc[v]
-                if acc[v] < lo:
-                    lo = acc[v]
+        for k in range(n):
+            if acc[k] > hi:
+                hi = acc[k]
+            if acc[k] < lo:
+                lo = acc[k]
         pos[b] = hi
         neg[b] = lo
         for i in range(K):               # clear this map's points only
