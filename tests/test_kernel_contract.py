@@ -92,6 +92,18 @@ def ols_three_groups_f():
     return OLSKernel(Y, X, C, scheme="permutation"), X, C, Y
 
 
+def ols_three_groups_f_with_covariate():
+    """An F over the group means with an age covariate: Freedman-Lane, the basis of
+    the products (effect and nuisance) wider than the F's numerator."""
+    Y, rng = _data(15, 4, 4)
+    lev = np.repeat([0, 1, 2], 5)
+    age = rng.uniform(20, 60, 15) + 6 * lev
+    X = np.c_[lev == 0, lev == 1, lev == 2, age].astype(float)
+    Y += (0.04 * age)[:, None].astype(np.float32)
+    C = np.array([[1.0, 0, -1, 0], [0, 1, -1, 0]])
+    return OLSKernel(Y, X, C, scheme="permutation"), X, C, Y
+
+
 def _mixed(design, L, scheme, seed):
     # strong participant variance: interior fits (statsmodels' fixed-covariance
     # refit is unreliable at an exactly zero variance)
@@ -134,6 +146,7 @@ KERNELS = {"OLS one-sample": ols_one_sample,
            "OLS sign flips + covariate (Freedman-Lane)": ols_sign_flip_with_covariate,
            "OLS two groups + covariate (Freedman-Lane)": ols_two_groups_with_covariate,
            "OLS F, three groups": ols_three_groups_f,
+           "OLS F, three groups + covariate (Freedman-Lane)": ols_three_groups_f_with_covariate,
            "mixed, within effect, sign flips": mixed_within_sign_flips,
            "mixed, between effect + map covariate, permutations": mixed_between_permutations,
            "mixed, random slope, F, permutations": mixed_slopes_three_groups_f,

@@ -68,6 +68,7 @@ from abc import ABC, abstractmethod
 from dataclasses import dataclass
 
 import numpy as np
+from numba import njit
 from scipy import special
 from scipy import stats as sps
 
@@ -290,33 +291,47 @@ def _invariant(q_nui, rearr, tol=1e-8):
     return True
 
 
-def _stat_from_u(U, rr, kind, df, q, out=None):
-    """Statistic (B, f) float32 from projections U (B, r, f) and ||R||^2 (f,).
+@njit(nogil=True, cache=True)
+def _stat_rows(U, u_lo, n_rows, w, rr, is_t, df, q, q_inv, out, o_lo, o_col):
+    """Statistic of projections, compiled: ``out[o_lo + i, o_col:o_col + w]``
+    from ``U[u_lo + i, :, :w]`` (U: (rows, r, fc) float32) and ``rr[:w]``
+    (||R||^2 of those features) for ``i < n_rows``.
 
-    Written into ``out`` (B, f) when given.
+    ``ss = sum_j U_j^2``, ``rss = max(rr - ss, 1e-30)`` (rss <= 0 only for
+    constant features, where U = 0 and the statistic is 0, or from float32
+    rounding of a perfect fit); t: ``sqrt(df / rss) U_0``; F:
+    ``(df / rss) (sum_{j<q} U_j^2) / q``.  Every operation is one float32 IEEE
+    operation in a fixed order (no fused multiply-add), so the values do not
+    depend on where the rows sit; each row is a loop over contiguous features
+    that the compiler vectorises.
     """
     r = U.shape[1]
-    ss = np.multiply(U[:, 0], U[:, 0], out=out)
-    for j in range(1, r):
-        ss += U[:, j] * U[:, j]
-    if kind == "t":
-        eff = U[:, 0]
-    else:
-        eff = U[:, 0] * U[:, 0]
-        for j in range(1, q):
-            eff += U[:, j] * U[:, j]
-    np.subtract(rr, ss, out=ss)                    # rss, in place
-    # rss <= 0 only for constant features (then U = 0 and the statistic is 0)
-    # or from float32 rounding of a perfect fit
-    np.maximum(ss, np.float32(1e-30), out=ss)
-    np.divide(np.float32(df), ss, out=ss)
-    if kind == "t":
-        np.sqrt(ss, out=ss)
-        np.multiply(ss, eff, out=ss)
-    else:
-        np.multiply(ss, eff, out=ss)
-        ss *= np.float32(1.0 / q)
-    return ss
+    tiny = np.float32(1e-30)
+    rw = rr[:w]
+    eff = np.empty(w, np.float32)
+    for i in range(n_rows):
+        o = out[o_lo + i, o_col:o_col + w]
+        u0 = U[u_lo + i, 0, :w]
+        for j in range(w):
+            o[j] = u0[j] * u0[j]
+        for k in range(1, r):
+            uk = U[u_lo + i, k, :w]
+            for j in range(w):
+                o[j] += uk[j] * uk[j]
+        if is_t:
+            for j in range(w):
+                s = max(rw[j] - o[j], tiny)
+                o[j] = np.sqrt(df / s) * u0[j]
+        else:
+            for j in range(w):
+                eff[j] = u0[j] * u0[j]
+            for k in range(1, q):
+                uk = U[u_lo + i, k, :w]
+                for j in range(w):
+                    eff[j] += uk[j] * uk[j]
+            for j in range(w):
+                s = max(rw[j] - o[j], tiny)
+                o[j] = ((df / s) * eff[j]) * q_inv
 
 
 # ----------------------------------------------------------------------------
@@ -436,6 +451,13 @@ class OLSKernel(StatisticKernel):
         G[:(b - a) * r] = self._gemm_rows(self.rearr.matrix[a:b])
         return G
 
+    def _stat_block(self, U, u_lo, n_rows, a, b, out, o_lo, o_col):
+        """Statistic of ``n_rows`` rows of one product block ``U`` (features a..b-1)
+        into ``out`` from row ``o_lo`` and column ``o_col`` (:func:`_stat_rows`)."""
+        q = self.basis.df1
+        _stat_rows(U, u_lo, n_rows, b - a, self.rr[a:b], self.kind == "t",
+                   np.float32(self.basis.df), q, np.float32(1.0 / q), out, o_lo, o_col)
+
     def resampled(self, lo, hi, out=None, part=None):
         """Statistics of resamples lo..hi-1 (see the contract in the module docstring)."""
         B = hi - lo
@@ -450,7 +472,7 @@ class OLSKernel(StatisticKernel):
                                                                np.memmap)
         with one_blas_thread():
             Gs = [self._block_rows(k) for k in ks]
-            pad = None
+            pad = tmp = None
             for a in range(chunks.start * fc, chunks.stop * fc, fc):
                 b = min(F, a + fc)
                 Rc = self.R[:, a:b]
@@ -465,12 +487,13 @@ class OLSKernel(StatisticKernel):
                 for k, G in zip(ks, Gs):
                     i0, i1 = max(lo, k * RES_BLOCK), min(hi, (k + 1) * RES_BLOCK)
                     U = (G @ Rc).reshape(RES_BLOCK, r, fc)
-                    U = U[i0 - k * RES_BLOCK:i1 - k * RES_BLOCK, :, :b - a]
-                    st = _stat_from_u(U, self.rr[a:b], self.kind, self.basis.df,
-                                      self.basis.df1,
-                                      out=None if out is None else out[i0 - lo:i1 - lo, a:b])
                     if out is None:
+                        tmp = np.empty((RES_BLOCK, fc), np.float32) if tmp is None else tmp
+                        self._stat_block(U, i0 - k * RES_BLOCK, i1 - i0, a, b, tmp, 0, 0)
+                        st = tmp[:i1 - i0, :b - a]
                         seg = slice(i0 - lo, i1 - lo)
                         np.maximum(mx[seg], st.max(axis=1), out=mx[seg])
                         np.minimum(mn[seg], st.min(axis=1), out=mn[seg])
+                    else:
+                        self._stat_block(U, i0 - k * RES_BLOCK, i1 - i0, a, b, out, i0 - lo, a)
         return out, mx, mn
