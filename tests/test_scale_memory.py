@@ -105,3 +105,24 @@ def test_scratch_raises_the_minimum_and_counts_every_thread():
     with pytest.raises(MemoryTooSmall):                 # three threads need more
         plan(minimum(n, scratch=2 * per), 40, n, workers=3, scratch_per_thread=per)
     plan(base, 40, n, workers=2, distributed=True, scratch_per_thread=per)  # scored elsewhere
+
+
+@pytest.mark.parametrize("offset", [0, 128])
+def test_reduction_reads_a_map_file_as_the_array_says(tmp_path, offset):
+    # the positioned reads of a whole-file map (groupsrc.stats.reduction) give W @ Y
+    # as numpy's own product over the same array (reference: numpy.tensordot in memory),
+    # for a file with a header before the maps, a window of samples and uneven chunks
+    rng = np.random.default_rng(3)
+    Y = rng.standard_normal((6, 37, 9)).astype(np.float32)
+    path = tmp_path / "maps.f32"
+    with open(path, "wb") as f:
+        f.write(b"\0" * offset)
+        f.write(Y.tobytes())
+    mm = np.memmap(path, dtype=np.float32, mode="r", offset=offset, shape=Y.shape)
+    W = rng.standard_normal((3, 6))
+    samples = slice(2, 8)
+    expected = np.tensordot(W, Y[:, :, samples].astype(np.float64), axes=(1, 0)).astype(np.float32)
+    got = reduce_maps(mm, W, samples, chunk_bytes=8 * 6 * 6 * 5)   # chunks of 5 sources
+    np.testing.assert_array_equal(got, expected)
+    view = reduce_maps(mm[:, 1:], W, samples)                       # a view: sliced, not read
+    np.testing.assert_array_equal(view, expected[:, 1:])

@@ -48,6 +48,7 @@ from .backends import BACKENDS, NullJob, auto_batch, make_backend
 from .clusters import check_adjacency
 from .corrections import CORRECTIONS, TfceOptions, make_correction, max_from
 from .kernels import OLSKernel, StatisticKernel
+from .pages import trim
 from .results import InferenceResult, ResamplingRecord
 
 TAILS = ("two", "greater", "less")
@@ -166,6 +167,7 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
         return _result(kernel, obs, outcome, null, spec, threshold, shape, None, None)
     rearr = kernel.rearrangements(spec.n_resamples, spec.seed, spec.blocks)
     kernel.prepare(rearr)
+    trim()                                   # the stages before leave freed memory held
     fixed = dict(seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
                  exact=bool(rearr.exact), freedman_lane=bool(kernel.freedman_lane))
     null, batch = _null(NullJob(kernel, correction), rearr.n_resamples, kernel, correction,
@@ -174,6 +176,7 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
     # by then, so the two never take memory at the same time
     correction.release_scratch()
     kernel.release_buffers()
+    trim()
     obs = kernel.observed(spec.tails)
     stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
     outcome = correction.outcome(stat_map, null["max_stat"].to_numpy(), spec.alpha)
