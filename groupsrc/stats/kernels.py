@@ -314,7 +314,11 @@ def _stat_rows(U, u_lo, n_rows, w, rr, is_t, df, q, q_inv, out, o_lo, o_col):
         u0 = U[u_lo + i, 0, :w]
         for j in range(w):
             o[j] = u0[j] * u0[j]
-        for k in range(1, r):
+        for k in range(1, r + 1):
+            if not is_t and k == q:          # F: the numerator's sum (its first q terms)
+                eff[:] = o
+            if k == r:
+                break
             uk = U[u_lo + i, k, :w]
             for j in range(w):
                 o[j] += uk[j] * uk[j]
@@ -323,12 +327,6 @@ def _stat_rows(U, u_lo, n_rows, w, rr, is_t, df, q, q_inv, out, o_lo, o_col):
                 s = max(rw[j] - o[j], tiny)
                 o[j] = np.sqrt(df / s) * u0[j]
         else:
-            for j in range(w):
-                eff[j] = u0[j] * u0[j]
-            for k in range(1, q):
-                uk = U[u_lo + i, k, :w]
-                for j in range(w):
-                    eff[j] += uk[j] * uk[j]
             for j in range(w):
                 s = max(rw[j] - o[j], tiny)
                 o[j] = ((df / s) * eff[j]) * q_inv
