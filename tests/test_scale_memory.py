@@ -12,7 +12,7 @@ from groupsrc.stats.corrections import CORRECTIONS, TfceOptions
 from groupsrc.stats.inference import Execution, InferenceSpec, infer
 from groupsrc.stats.kernels import OLSKernel
 from groupsrc.stats.memory import MemoryTooSmall, minimum, parse_size, plan
-from groupsrc.stats.reduction import reduce_maps
+from groupsrc.stats.reduction import _SourceReader, reduce_maps
 
 
 def _problem(n=216, seed=0):
@@ -122,7 +122,9 @@ def test_reduction_reads_a_map_file_as_the_array_says(tmp_path, offset):
     W = rng.standard_normal((3, 6))
     samples = slice(2, 8)
     expected = np.tensordot(W, Y[:, :, samples].astype(np.float64), axes=(1, 0)).astype(np.float32)
+    with _SourceReader(mm) as whole, _SourceReader(mm[:, 1:]) as part:
+        assert whole.direct and not part.direct      # the file read; a view sliced
     got = reduce_maps(mm, W, samples, chunk_bytes=8 * 6 * 6 * 5)   # chunks of 5 sources
     np.testing.assert_array_equal(got, expected)
-    view = reduce_maps(mm[:, 1:], W, samples)                       # a view: sliced, not read
+    view = reduce_maps(mm[:, 1:], W, samples)
     np.testing.assert_array_equal(view, expected[:, 1:])

@@ -94,11 +94,11 @@ class Plan:
         return _disk_array(shape)
 
 
-def minimum(n_features, buffers=1, scratch=0) -> int:
-    """The smallest working set that runs: one product block per buffer, the
+def minimum(n_features, scratch=0) -> int:
+    """The smallest working set that runs: one product block of maps, the
     per-feature results, the scorers' scratch (``scratch`` bytes per feature, all
     threads together) and the smallest chunks."""
-    return int((PER_FEATURE + scratch) * n_features + RES_BLOCK * 4 * n_features * buffers
+    return int((PER_FEATURE + scratch) * n_features + RES_BLOCK * 4 * n_features
                + 2 * CHUNK_MIN)
 
 
@@ -114,9 +114,8 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False,
     """
     if memory is None:
         return Plan()
-    buffers = 1
     scratch = 0 if distributed else scratch_per_thread * worker_count(workers)
-    low = minimum(n_features, buffers, scratch)
+    low = minimum(n_features, scratch)
     if memory < low:
         raise MemoryTooSmall(
             f"{size_text(memory)} is below what one batch needs: {RES_BLOCK} resampled maps "
@@ -128,7 +127,7 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False,
     data = 2 * 4.0 * n_units * n_features
     on_disk = data > left / 2
     budget = left - (0 if on_disk else data)
-    return Plan(chunk_bytes=chunk, map_budget=max(budget, RES_BLOCK * 4.0 * n_features * buffers),
+    return Plan(chunk_bytes=chunk, map_budget=max(budget, RES_BLOCK * 4.0 * n_features),
                 on_disk=on_disk)
 
 

@@ -9,6 +9,8 @@ content stays in the file (and the system's page cache).
 
 from __future__ import annotations
 
+import ctypes
+import functools
 import mmap
 
 
@@ -27,20 +29,20 @@ def release(array) -> None:
         a = getattr(a, "base", None)
 
 
-_TRIM = []
-
-
 def trim() -> None:
     """Hand the free memory the C allocator still holds back to the system (glibc's
     ``malloc_trim``; a no-op where there is none).  Called before the resampling
     and before the observed maps: the temporaries of the stages before them (the
     reduction's chunks, the residual norms) would otherwise stay in the resident
     set (about 45 MiB on ``tests/benchmarks/bench_memory.py``)."""
-    if not _TRIM:
-        try:
-            import ctypes
-            _TRIM.append(getattr(ctypes.CDLL(None), "malloc_trim", None))
-        except (OSError, AttributeError):  # pragma: no cover - other systems
-            _TRIM.append(None)
-    if _TRIM[0] is not None:
-        _TRIM[0](0)
+    fn = _malloc_trim()
+    if fn is not None:
+        fn(0)
+
+
+@functools.cache
+def _malloc_trim():
+    try:
+        return getattr(ctypes.CDLL(None), "malloc_trim", None)
+    except OSError:  # pragma: no cover - other systems
+        return None

@@ -55,7 +55,8 @@ def reduce_maps(Y, W, samples: slice, *, chunk_bytes=None, out=None,
             block = np.asarray(read(a, b)[:, :, samples], dtype=np.float64)
             out[:, a:b, :] = np.tensordot(W, block, axes=(1, 0)).astype(np.float32)
             del block
-            release(Y)
+            if not read.direct:             # read through the mapping: hand the pages back
+                release(Y)
             release(out)
             if progress is not None:
                 progress(b, S)
@@ -72,6 +73,11 @@ class _SourceReader:
                 and Y.flags.c_contiguous and Y.ndim == 3):
             self.fd = os.open(Y.filename, os.O_RDONLY)
 
+    @property
+    def direct(self) -> bool:
+        """True when the reads go to the file, not through ``Y``'s mapping."""
+        return self.fd is not None
+
     def __enter__(self):
         return self
 
@@ -81,7 +87,7 @@ class _SourceReader:
 
     def __call__(self, a, b):
         Y = self.Y
-        if self.fd is None:
+        if not self.direct:
             return Y[:, a:b, :]
         n, S, T = Y.shape
         item = Y.dtype.itemsize
