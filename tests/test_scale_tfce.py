@@ -123,3 +123,48 @@ def test_threads_give_the_same_maps():
     for t in threads:
         t.join()
     np.testing.assert_array_equal(np.stack(got), serial)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_sort_down_orders_like_a_stable_sort(dtype):
+    # the TFCE pass's radix sort against numpy's stable argsort (reference library):
+    # largest first, ties in reverse position order; keys sharing their high bytes
+    # (skipped passes), exact ties, and a single key
+    from groupsrc.stats.unionfind import _sort_down
+    rng = np.random.default_rng(3)
+    utype = np.uint32 if dtype == np.float32 else np.uint64
+    for vals in (rng.exponential(2.0, 5000).astype(dtype),
+                 np.round(rng.uniform(1.0, 1.5, 3000), 2).astype(dtype),   # ties
+                 (1.0 + np.arange(300) % 7).astype(dtype),
+                 np.array([2.5], dtype)):
+        K = vals.size
+        pts = np.arange(K, dtype=np.int32) * 3 + 1
+        sk, sp = _sort_down(vals.copy().view(utype), pts.copy(), np.empty(K, utype),
+                            np.empty(K, np.int32))
+        want = np.argsort(vals, kind="stable")[::-1]
+        np.testing.assert_array_equal(sp[::-1], pts[want])
+        np.testing.assert_array_equal(sk[::-1].view(dtype), vals[want])
+
+
+@pytest.mark.parametrize("seed", range(2))
+def test_float32_maps_equal_their_float64_copies_and_the_definition(seed):
+    # float32 maps (the null distribution's) are sorted on 32-bit keys; with many
+    # tied heights the result must still be the definition's (brute force with
+    # scipy.ndimage) and bit for bit that of the same values in float64
+    grid, vol = _small(seed)
+    vol = np.round(vol * 2) / 2                          # ties: heights on a 0.5 grid
+    adj = grid.adjacency("face")
+    x = grid.from_volume(vol)
+    x32 = x.astype(np.float32).reshape(1, -1)
+    x64 = x32.astype(np.float64)
+    for kw in ({}, {"dh": 0.25}):
+        got32, got64 = tfce_batch(x32, adj, **kw), tfce_batch(x64, adj, **kw)
+        np.testing.assert_array_equal(got32, got64)
+        ext32 = tfce_batch(x32, adj, extremes=True, **kw)
+        np.testing.assert_array_equal(ext32, tfce_batch(x64, adj, extremes=True, **kw))
+        low32 = tfce_batch(x32, adj, two_sided=False, scale=-1.0, **kw)
+        np.testing.assert_array_equal(low32, tfce_batch(x64, adj, two_sided=False,
+                                                        scale=-1.0, **kw))
+    ref = _brute_stepped(vol, 0.25)
+    got = grid.to_volume(tfce_batch(x32, adj, dh=0.25).reshape(x.shape))
+    np.testing.assert_allclose(got, ref, rtol=1e-10, atol=1e-12)

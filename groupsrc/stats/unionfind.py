@@ -178,7 +178,7 @@ def label_codes(code, up_ptr, up_idx, T):
 
 #: bytes per point of :func:`cluster_workspace` (int8 code, int32 parent and list)
 #: plus, at most, the float64 sum of one component per point (allocated per map,
-#: one per component)
+#: one entry per coded point, touched once per component)
 CLUSTER_SCRATCH_BYTES = 1 + 4 + 4 + 8
 
 
@@ -197,8 +197,8 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
     ``x < -threshold`` (when ``want_neg``).  ``pos`` / ``neg`` (B,) receive
     the extremes (0 when there is no cluster of that sign).  ``ws``:
     :func:`cluster_workspace` (int32 indices: maps below 2^31 points).  The
-    scores are summed in one array of one entry per component, allocated per
-    map.
+    scores are summed in one array, allocated per map, whose first entries hold
+    one sum per component (numbered as they are met, in one pass with the sums).
     """
     B, F = maps.shape
     code, parent, idx = ws
@@ -218,12 +218,23 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
                 idx[K] = v
                 K += 1
         _join_forward(code, idx, K, up_ptr, up_idx, T, parent)
-        n = _number_components(parent, idx, K)
-        # scores summed in flat order, as numpy.bincount over the points would
-        acc = np.zeros(n)
         for i in range(K):
             v = idx[i]
-            k = -1 - parent[_find(parent, v)]
+            if parent[v] < 0:
+                parent[v] = _UNNUMBERED
+        # components numbered in order of their first point (as _number_components)
+        # while their scores are summed in flat order, as numpy.bincount would
+        acc = np.empty(K)
+        n = 0
+        for i in range(K):
+            v = idx[i]
+            r = _find(parent, v)
+            k = -1 - parent[r]
+            if parent[r] == _UNNUMBERED:
+                parent[r] = -1 - n
+                k = n
+                acc[k] = 0.0
+                n += 1
             if by_mass:
                 acc[k] += x[v]
             else:
@@ -268,38 +279,37 @@ def _extent_weight(n, E):
 
 
 @njit(**_JIT)
-def _radix_order(vals, order, src):
-    """Positions of ``vals`` (non-negative float64) from the largest down.
+def _sort_down(keys, pts, tmp_keys, tmp_pts):
+    """Sort ``keys`` with their ``pts`` from the largest key down; return both.
 
-    LSD radix sort on the IEEE bit patterns (monotone for non-negative
-    floats), four passes of 16 bits; ties come out in reverse position order.
-    Writes into ``order`` (at least ``vals.size``; ``src`` of the same size is
-    scratch) and returns its first ``K``.
+    ``keys``: the IEEE bit patterns of non-negative floats as unsigned integers
+    of the floats' width (their order is the floats' order).  LSD radix sort
+    on (key, point) pairs, one pass per byte (a pass is skipped when every key
+    has the same byte), so each pass reads sequentially; ties come out in
+    reverse position order.  ``tmp_keys`` / ``tmp_pts`` (same sizes) are
+    scratch; the result is in whichever pair the last pass wrote, ascending,
+    and is read from the end.
     """
-    K = vals.size
-    src = src[:K]
-    dst = order[:K]
-    bits = vals.view(np.uint64)
-    for i in range(K):
-        src[i] = i
-    count = np.empty(65537, np.int64)
-    for shift in range(0, 64, 16):
+    K = keys.size
+    count = np.empty(257, np.int64)
+    sk, sp, dk, dp = keys, pts, tmp_keys, tmp_pts
+    for shift in range(0, 8 * keys.itemsize, 8):
+        sh = np.uint64(shift)
         count[:] = 0
         for i in range(K):
-            count[((bits[src[i]] >> np.uint64(shift)) & np.uint64(0xFFFF)) + 1] += 1
-        if count[1 + ((bits[src[0]] >> np.uint64(shift)) & np.uint64(0xFFFF))] == K:
-            continue                  # one digit value for every key: nothing to move
-        for j in range(65536):
+            count[((np.uint64(sk[i]) >> sh) & np.uint64(0xFF)) + 1] += 1
+        if count[((np.uint64(sk[0]) >> sh) & np.uint64(0xFF)) + 1] == K:
+            continue                  # one byte value for every key: nothing to move
+        for j in range(256):
             count[j + 1] += count[j]
         for i in range(K):
-            k = (bits[src[i]] >> np.uint64(shift)) & np.uint64(0xFFFF)
-            dst[count[k]] = src[i]
-            count[k] += 1
-        src, dst = dst, src
-    out = dst
-    for i in range(K):
-        out[i] = src[K - 1 - i]
-    return out
+            d = (np.uint64(sk[i]) >> sh) & np.uint64(0xFF)
+            c = count[d]
+            dk[c] = sk[i]
+            dp[c] = sp[i]
+            count[d] = c + 1
+        sk, sp, dk, dp = dk, dp, sk, sp
+    return sk, sp
 
 
 #: how many points ahead of the visit the TFCE pass prefetches (cache lines in flight)
@@ -307,7 +317,7 @@ _AHEAD = 16
 
 
 #: bytes per point of :func:`tfce_workspace`
-TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 4 + 6 * 8 + 4 + 8 + 4 + 4
+TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 6 * 8 + 4 + 8 + 4 + 4
 
 
 def tfce_workspace(F):
@@ -315,9 +325,8 @@ def tfce_workspace(F):
     maps: no allocation per map (large allocations and their page faults serialise
     threads)."""
     return (np.empty(F, np.float64), np.empty(F, np.int8), np.empty(F, np.int32),
-            np.empty(F, np.int32), np.empty(6 * F, np.float64),
-            np.empty(F, np.int32), np.empty(F, np.float64), np.empty(F, np.int32),
-            np.empty(F, np.int32))
+            np.empty(6 * F, np.float64), np.empty(F, np.int32), np.empty(F, np.float64),
+            np.empty(F, np.int32), np.empty(F, np.int32))
 
 
 @njit(**_JIT)
@@ -354,7 +363,7 @@ def _close_node(nodes, nd, g, parent, E):
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     """Build the component tree of one map ``x`` (F,); return (K, nn).
 
-    After the call, with ``a, sgn, par, order_buf, nodes, leaf, vals, scratch, P = ws``:
+    After the call, with ``a, sgn, par, nodes, leaf, vals, scratch, P = ws``:
     ``P[:K]`` are the visited points (time-major indices ``t * S + s``) from the
     highest down, ``sgn`` their signs (by time-major index), ``leaf[:K]`` the node
     each opened, and ``nodes[3 nd + 1]`` (nd < nn) each node's TFCE, accumulated
@@ -369,28 +378,40 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     root's one line gives both.  The lines of the point ``_AHEAD`` visits later
     and of its neighbours are prefetched (:mod:`.prefetch`).
     """
-    a, sgn, par, order_buf, nodes, leaf, vals, scratch, P = ws
+    a, sgn, par, nodes, leaf, vals, scratch, P = ws
     F = x.size
     S = F // T
-    top = 0.0
+    # a float32 map (scale +-1) has float32 heights: sorted on 32-bit keys, half
+    # the passes, in the same order (float32 -> float64 keeps it)
+    narrow = x.itemsize == 4 and abs(scale) == 1.0
+    k32 = vals.view(np.float32)
     # time-major indices w = t * S + s: the neighbours of a point in space are near
-    # it in memory (one time slice); x stays source-major
-    for s in range(S):
-        for t in range(T):
+    # it in memory (one time slice); x stays source-major.  One pass in w order
+    # lists the visited points (``leaf``) with their heights (``vals``).
+    top = 0.0
+    K = 0
+    for t in range(T):
+        for s in range(S):
             w = t * S + s
+            par[w] = _NOT_YET
             xv = scale * x[s * T + t]
+            g = 0
             if xv > 0.0:
-                a[w] = xv
-                sgn[w] = 1
+                g = 1
             elif two_sided and xv < 0.0:
-                a[w] = -xv
-                sgn[w] = -1
-            else:
-                a[w] = 0.0
-                sgn[w] = 0
-            if a[w] > top:
-                top = a[w]
-    if top == 0.0:
+                g = -1
+                xv = -xv
+            sgn[w] = g
+            if g != 0:
+                leaf[K] = w
+                if narrow:
+                    k32[K] = xv
+                else:
+                    vals[K] = xv
+                K += 1
+                if xv > top:
+                    top = xv
+    if K == 0:
         return 0, 0
     step = 0.0
     if dh > 0.0:
@@ -404,24 +425,39 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
         for k in range(1, n_lev):
             hk = k * step
             prefix[k] = prefix[k - 1] + hk ** H * step
-        for w in range(F):            # below the first level: no contribution
-            if sgn[w] != 0 and a[w] < step:
-                sgn[w] = 0
-    K = 0
-    pts = leaf                        # the visited points in index order (reused)
-    for w in range(F):
-        par[w] = _NOT_YET
-        if sgn[w] != 0:
-            pts[K] = w
-            vals[K] = a[w]
-            K += 1
-    if K == 0:
-        return 0, 0
-    order = _radix_order(vals[:K], order_buf, scratch)   # descending height
-    A = a                             # heights by rank (a is no longer needed)
-    for i in range(K):
-        P[i] = pts[order[i]]
-        A[i] = vals[order[i]]
+        kept = 0                      # below the first level: no contribution
+        for i in range(K):
+            h = k32[i] if narrow else vals[i]
+            if h < step:
+                sgn[leaf[i]] = 0
+            else:
+                leaf[kept] = leaf[i]
+                if narrow:
+                    k32[kept] = h
+                else:
+                    vals[kept] = h
+                kept += 1
+        K = kept
+        if K == 0:
+            return 0, 0
+    # descending height: P[i] the point of rank i, A[i] its height (float64, in
+    # whichever of ``a`` / ``vals`` the sort did not leave its keys)
+    if narrow:
+        sk, sp = _sort_down(k32[:K].view(np.uint32), leaf[:K],
+                            a.view(np.uint32)[:K], scratch[:K])
+        hk = sk.view(np.float32)
+        A = vals if sk.ctypes.data == a.ctypes.data else a
+        for i in range(K):
+            P[i] = sp[K - 1 - i]
+            A[i] = hk[K - 1 - i]
+    else:
+        sk, sp = _sort_down(vals[:K].view(np.uint64), leaf[:K],
+                            a.view(np.uint64)[:K], scratch[:K])
+        hk64 = sk.view(np.float64)
+        A = vals if sk.ctypes.data == a.ctypes.data else a
+        for i in range(K):
+            P[i] = sp[K - 1 - i]
+            A[i] = hk64[K - 1 - i]
     nn = 0
     for i in range(K):
         if i + _AHEAD < K:
@@ -498,7 +534,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
 def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
     """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see :func:`_tfce_tree`)."""
     K, nn = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
-    _, sgn, _, _, nodes, leaf, _, _, P = ws
+    _, sgn, _, nodes, leaf, _, _, P = ws
     out[:] = 0.0
     S = x.size // T
     for i in range(K):
@@ -522,7 +558,7 @@ def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, 
     Read from the nodes the points opened, without writing the map.
     """
     B = maps.shape[0]
-    _, sgn, _, _, nodes, leaf, _, _, P = ws
+    _, sgn, _, nodes, leaf, _, _, P = ws
     for b in range(B):
         K, nn = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh,
                            ws)
