@@ -312,6 +312,16 @@ def _sort_down(keys, pts, tmp_keys, tmp_pts):
     return sk, sp
 
 
+@njit(**_JIT)
+def _by_rank(heights, pts, P, A):
+    """From :func:`_sort_down`'s ascending result: ``P[i]`` the point of rank ``i``
+    (highest first) and ``A[i]`` its height as float64."""
+    K = heights.size
+    for i in range(K):
+        P[i] = pts[K - 1 - i]
+        A[i] = heights[K - 1 - i]
+
+
 #: how many points ahead of the visit the TFCE pass prefetches (cache lines in flight)
 _AHEAD = 16
 
@@ -445,19 +455,13 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     if narrow:
         sk, sp = _sort_down(k32[:K].view(np.uint32), leaf[:K],
                             a.view(np.uint32)[:K], scratch[:K])
-        hk = sk.view(np.float32)
         A = vals if sk.ctypes.data == a.ctypes.data else a
-        for i in range(K):
-            P[i] = sp[K - 1 - i]
-            A[i] = hk[K - 1 - i]
+        _by_rank(sk.view(np.float32), sp, P, A)
     else:
         sk, sp = _sort_down(vals[:K].view(np.uint64), leaf[:K],
                             a.view(np.uint64)[:K], scratch[:K])
-        hk64 = sk.view(np.float64)
         A = vals if sk.ctypes.data == a.ctypes.data else a
-        for i in range(K):
-            P[i] = sp[K - 1 - i]
-            A[i] = hk64[K - 1 - i]
+        _by_rank(sk.view(np.float64), sp, P, A)
     nn = 0
     for i in range(K):
         if i + _AHEAD < K:
