@@ -134,13 +134,19 @@ _UNNUMBERED = np.int32(-2 ** 31)
 
 
 @njit(**_JIT)
-def _number_components(parent, idx, K):
-    """Number the components of ``idx[:K]`` 0..n-1 in order of their first point
-    (``idx`` ascending): each root's slot becomes ``-1 - number``.  Returns n."""
+def _unnumber_roots(parent, idx, K):
+    """Mark the roots among ``idx[:K]`` as not yet numbered (``_UNNUMBERED``)."""
     for i in range(K):
         v = idx[i]
         if parent[v] < 0:
             parent[v] = _UNNUMBERED
+
+
+@njit(**_JIT)
+def _number_components(parent, idx, K):
+    """Number the components of ``idx[:K]`` 0..n-1 in order of their first point
+    (``idx`` ascending): each root's slot becomes ``-1 - number``.  Returns n."""
+    _unnumber_roots(parent, idx, K)
     n = 0
     for i in range(K):
         r = _find(parent, idx[i])
@@ -218,23 +224,19 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
                 idx[K] = v
                 K += 1
         _join_forward(code, idx, K, up_ptr, up_idx, T, parent)
-        for i in range(K):
-            v = idx[i]
-            if parent[v] < 0:
-                parent[v] = _UNNUMBERED
         # components numbered in order of their first point (as _number_components)
         # while their scores are summed in flat order, as numpy.bincount would
+        _unnumber_roots(parent, idx, K)
         acc = np.empty(K)
         n = 0
         for i in range(K):
             v = idx[i]
             r = _find(parent, v)
-            k = -1 - parent[r]
             if parent[r] == _UNNUMBERED:
                 parent[r] = -1 - n
-                k = n
-                acc[k] = 0.0
+                acc[n] = 0.0
                 n += 1
+            k = -1 - parent[r]
             if by_mass:
                 acc[k] += x[v]
             else:
@@ -310,6 +312,21 @@ def _sort_down(keys, pts, tmp_keys, tmp_pts):
             count[d] = c + 1
         sk, sp, dk, dp = dk, dp, sk, sp
     return sk, sp
+
+
+@njit(**_JIT)
+def _drop_below(heights, pts, sgn, K, step):
+    """Keep the listed points (``pts[:K]``, ``heights[:K]``) at or above ``step``,
+    in order; the others leave the map (``sgn`` 0).  Returns how many are kept."""
+    kept = 0
+    for i in range(K):
+        if heights[i] < step:
+            sgn[pts[i]] = 0
+        else:
+            pts[kept] = pts[i]
+            heights[kept] = heights[i]
+            kept += 1
+    return kept
 
 
 @njit(**_JIT)
@@ -435,19 +452,9 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
         for k in range(1, n_lev):
             hk = k * step
             prefix[k] = prefix[k - 1] + hk ** H * step
-        kept = 0                      # below the first level: no contribution
-        for i in range(K):
-            h = k32[i] if narrow else vals[i]
-            if h < step:
-                sgn[leaf[i]] = 0
-            else:
-                leaf[kept] = leaf[i]
-                if narrow:
-                    k32[kept] = h
-                else:
-                    vals[kept] = h
-                kept += 1
-        K = kept
+        # below the first level: no contribution
+        K = _drop_below(k32, leaf, sgn, K, step) if narrow else \
+            _drop_below(vals, leaf, sgn, K, step)
         if K == 0:
             return 0, 0
     # descending height: P[i] the point of rank i, A[i] its height (float64, in
