@@ -38,26 +38,87 @@ from abc import ABC, abstractmethod
 
 import numpy as np
 
+from .exceedances import bytes_per_resample
+from .kernels import LIST_BLOCK, RES_BLOCK
+from .perthread import PerThread
+
 #: memory budget (bytes) for the resampled maps held at once (all workers together)
 MEMORY_BUDGET = 128e6
 
 
 class NullJob:
-    """One contrast's resampling work: a prepared kernel and a correction."""
+    """One contrast's resampling work: a prepared kernel and a correction.
+
+    A batch is held in one buffer (:meth:`buffer`): its resampled maps, or -- for a
+    correction that scores supra-threshold points only (``correction.lists``) and a
+    kernel that can list them (``kernel.lists``) -- the lists of
+    :mod:`.exceedances`, with the kernel's product blocks set to ``LIST_BLOCK``
+    rows (as they are for a correction that needs no maps at all, max-stat).  A resample whose list overflows is scored from its map, recomputed here
+    (:meth:`scores`), so every resample gets the same score either way.
+    """
 
     def __init__(self, kernel, correction):
         self.kernel, self.correction = kernel, correction
         self.needs_maps = correction.needs_maps
+        self.lists = bool(getattr(correction, "lists", False) and getattr(kernel, "lists", False))
+        if getattr(kernel, "lists", False) and (self.lists or not self.needs_maps):
+            kernel.block = LIST_BLOCK   # no map buffer: larger product blocks cost no memory
+        self.block = int(getattr(kernel, "block", RES_BLOCK))
+        self._own = PerThread()
+
+    def bytes_per_resample(self) -> float:
+        """Bytes one resample takes in a batch buffer (0: none is held)."""
+        if self.lists:
+            return float(bytes_per_resample(self.kernel.n_features))
+        return 4.0 * self.kernel.n_features if self.needs_maps else 0.0
+
+    def buffer(self, B, parts=1):
+        """A new buffer for a batch of up to ``B`` resamples whose products are shared
+        by ``parts`` threads (None when the correction needs no maps)."""
+        if self.lists:
+            return self.correction.exceedances(B, self.kernel.n_features, parts)
+        if self.needs_maps:
+            return np.empty((B, self.kernel.n_features), np.float32)
+        return None
+
+    @staticmethod
+    def view(buf, B):
+        """The part of a batch buffer that a batch of ``B`` resamples writes."""
+        return buf[:B] if isinstance(buf, np.ndarray) else buf
 
     def products(self, lo, hi, out=None, part=None):
-        """Resampled statistic maps (into ``out``) or, without maps, their extremes;
-        ``part = (j, J)``: the j-th of J runs of feature chunks only (``out`` given)."""
+        """Resampled statistic maps or lists (into ``out``) or, without maps, their
+        extremes; ``part = (j, J)``: the j-th of J runs of feature chunks only (``out``
+        given)."""
         if self.needs_maps and out is None:
-            out = self.kernel.buffer(hi - lo)
+            if self.lists:              # the calling thread's own list buffer
+                B = hi - lo
+                out = self._own.get(lambda: self.buffer(max(B, self.block)),
+                                    fits=lambda b: b.rows >= B)
+            else:
+                out = self.kernel.buffer(hi - lo)
         return self.kernel.resampled(lo, hi, out if self.needs_maps else None, part)
 
     def scores(self, maps, u, v):
-        return self.correction.null_extremes(maps, u, v)
+        """(max_pos, max_neg) of the batch's resamples u..v-1 (in ``maps``, a buffer)."""
+        pos, neg = self.correction.null_extremes(maps, u, v)
+        if self.lists:
+            self._from_maps(maps, u, pos, neg)
+        return pos, neg
+
+    def _from_maps(self, lists, u, pos, neg):
+        """Score the resamples whose lists overflowed (NaN) from their maps, in runs of at
+        most ``RES_BLOCK`` consecutive resamples."""
+        todo = np.flatnonzero(np.isnan(pos))
+        while todo.size:
+            run = todo[:RES_BLOCK]
+            run = run[run - run[0] == np.arange(run.size)]          # consecutive only
+            a, b = int(run[0]), int(run[-1]) + 1
+            first = lists.lo + u + a
+            maps = self.kernel.buffer(b - a)
+            self.kernel.resampled(first, first + b - a, maps)
+            pos[a:b], neg[a:b] = self.correction.null_extremes(maps, 0, b - a)
+            todo = todo[run.size:]
 
     def run_batch(self, lo, hi):
         """(lo, max_pos, max_neg) of resamples lo..hi-1."""
@@ -78,18 +139,20 @@ def worker_count(workers: int) -> int:
     return workers if workers > 0 else max(1, os.cpu_count() or 1)
 
 
-def auto_batch(n_resamples, n_features, needs_maps, buffers, block=16, budget=None,
-               tasks=1):
+def auto_batch(n_resamples, resample_bytes, buffers, block=16, budget=None, tasks=1):
     """Default batch size: a whole number of product blocks (at least one) whose
-    maps fit ``budget`` bytes (default ``MEMORY_BUDGET``) across ``buffers``
-    buffers alive at once, and small enough to give at least ``tasks`` batches
-    (so that workers taking whole batches share the work evenly)."""
+    buffers (``resample_bytes`` per resample, :meth:`NullJob.bytes_per_resample`;
+    0: none, 256 resamples) fit ``budget`` bytes (default ``MEMORY_BUDGET``)
+    across ``buffers`` buffers alive at once, and small enough to give at least
+    ``tasks`` batches when there are enough blocks (so that workers taking whole
+    batches share the work evenly, and progress is shown at least every
+    ``1 / tasks`` of the work)."""
     budget = MEMORY_BUDGET if budget is None else budget
-    fit = budget / max(1, buffers) // (4.0 * n_features) if needs_maps else 256
+    fit = budget / max(1, buffers) // resample_bytes if resample_bytes else 256
     B = max(block, int(fit) // block * block)
     if tasks > 1:
         share = -(-n_resamples // tasks)
-        B = min(B, max(block, -(-share // block) * block))
+        B = min(B, max(block, share // block * block))
     return int(max(1, min(n_resamples, B)))
 
 
@@ -146,10 +209,10 @@ class ThreadBackend(Backend):
         from .kernels import one_blas_thread
         J = self.workers
         B = max(b - a for a, b in batches)
-        buf = np.empty((B, job.kernel.n_features), np.float32) if job.needs_maps else None
+        buf = job.buffer(B, parts=J)
         with one_blas_thread(), ThreadPoolExecutor(max_workers=J) as pool:
             for a, b in batches:
-                out = buf[:b - a] if job.needs_maps else None
+                out = job.view(buf, b - a)
                 parts = [f.result() for f in [pool.submit(job.products, a, b, out, (j, J))
                                               for j in range(J)]]
                 if not job.needs_maps:      # extremes of the parts: max of maxima

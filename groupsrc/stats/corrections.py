@@ -33,6 +33,7 @@ import numpy as np
 import pandas as pd
 from . import unionfind
 from .clusters import _up_csr, cluster_scores, components_by_sign, cluster_table
+from .exceedances import Exceedances
 from .fdr import fdr_bh
 from .perthread import PerThread
 from .resampling import null_p_values
@@ -109,6 +110,7 @@ class Correction:
     name = ""
     resamples = True
     needs_maps = False
+    lists = False
     #: bytes per feature of each scoring thread's scratch arrays (for the memory plan)
     scratch_bytes = 0
 
@@ -150,20 +152,35 @@ class Correction:
 class ClusterMass(Correction):
     name = "cluster-mass"
     needs_maps = True
+    #: scores a resample from its supra-threshold points only (:mod:`.exceedances`)
+    lists = True
     score = "mass"
     scratch_bytes = unionfind.CLUSTER_SCRATCH_BYTES
 
     def _values(self, sc):
         return sc.mass if self.score == "mass" else sc.sign * sc.extent.astype(float)
 
+    def exceedances(self, rows, n_features, parts=1):
+        """A batch buffer of supra-threshold lists for this correction's threshold."""
+        want = signs(self.kind, self.tails)
+        return Exceedances(rows, n_features, self.threshold, 1 in want, -1 in want, parts)
+
     def null_extremes(self, maps, lo, hi):
-        """Compiled labelling and scoring of maps[lo:hi] (:mod:`.unionfind`)."""
+        """Compiled labelling and scoring of the resamples lo..hi-1 of a batch, given by
+        their maps (B, S*T) or their supra-threshold lists (:mod:`.unionfind`); a
+        resample whose list overflowed gets NaN."""
         want = signs(self.kind, self.tails)
         pos, neg = np.zeros(hi - lo), np.zeros(hi - lo)
         ptr, ind = _up_csr(self.adj)
         ws = self.scratch(lambda: unionfind.cluster_workspace(self.n_points))
+        mass = self.score == "mass"
+        if isinstance(maps, Exceedances):
+            unionfind.listed_cluster_extremes(maps.idx, maps.val, maps.count, maps.bases, lo,
+                                              hi, maps.threshold, maps.want_pos, mass, ptr, ind,
+                                              self.shape[1], pos, neg, ws)
+            return pos, neg
         unionfind.cluster_extremes(maps[lo:hi], float(self.threshold), 1 in want, -1 in want,
-                                   self.score == "mass", ptr, ind, self.shape[1], pos, neg, ws)
+                                   mass, ptr, ind, self.shape[1], pos, neg, ws)
         return pos, neg
 
     def outcome(self, stat_map, null_max, alpha):

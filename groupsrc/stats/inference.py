@@ -236,8 +236,8 @@ def _null(job, m, kernel, correction, spec, execution, fixed):
     options = {"scheduler": execution.scheduler} if execution.backend == "dask" else {}
     backend = make_backend(execution.backend, execution.n_jobs, **options)
     tasks = max(backend.tasks, PROGRESS_BATCHES) if execution.progress else backend.tasks
-    B = execution.batch_size or auto_batch(m, kernel.n_features, correction.needs_maps,
-                                           backend.buffers, budget=execution.map_budget,
+    B = execution.batch_size or auto_batch(m, job.bytes_per_resample(), backend.buffers,
+                                           block=job.block, budget=execution.map_budget,
                                            tasks=tasks)
     pos, neg = np.zeros(m), np.zeros(m)
     done = np.zeros(m, bool)

@@ -5,8 +5,10 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
 
 * per-feature results: about ``PER_FEATURE`` x F (the observed statistic,
   estimate, standard error, effect, p-values, labels; float64);
-* the resampled maps of the batch in hand: ``B x F x 4`` (one buffer, shared by
-  the threads of the threads backend);
+* the batch in hand (one buffer, shared by the threads of the threads backend):
+  its resampled maps, ``B x F x 4``, or for cluster mass and extent their
+  supra-threshold lists, ``B x F`` (:mod:`.exceedances`, in blocks of 64
+  resamples: one block of lists takes the bytes of 16 maps);
 * the scorers' scratch arrays, per scoring thread: ``Correction.scratch_bytes``
   per feature (at most 17 for cluster mass / extent, 85 for TFCE, 0 otherwise);
 * the reduced data and their residuals, ``2 x n x F x 4``: in memory while
@@ -17,7 +19,8 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
 ``--memory`` bounds these; the interpreter and its libraries (about
 ``FIXED_OVERHEAD`` bytes: numpy, scipy, pandas, numba, matplotlib) come on
 top.  The smallest bound that works holds one product block of
-``RES_BLOCK`` resampled maps per buffer plus the per-feature results; below
+``RES_BLOCK`` resampled maps (or of ``LIST_BLOCK`` resamples' lists, the same
+bytes) per buffer plus the per-feature results; below
 it :class:`MemoryTooSmall` says the minimum.  Without ``--memory`` the
 defaults of :mod:`.backends` and :mod:`.reduction` apply and every array is
 in memory.

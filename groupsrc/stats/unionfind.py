@@ -24,7 +24,9 @@ construction does.  Components are numbered in order of their first point
 (flat C order), the numbering ``scipy.sparse.csgraph.connected_components``
 gives on the same graph.  :func:`cluster_extremes` fuses labelling and
 scoring for the null distribution: per map, the largest positive and most
-negative cluster score, sums taken in flat order (as ``numpy.bincount``).
+negative cluster score, sums taken in flat order (as ``numpy.bincount``);
+:func:`listed_cluster_extremes` does the same from the supra-threshold lists
+of :mod:`.exceedances`, without the maps.
 
 TFCE in one pass (the component tree)
 -------------------------------------
@@ -195,6 +197,45 @@ def cluster_workspace(F):
 
 
 @njit(**_JIT)
+def _component_extremes(code, parent, idx, K, x, by_point, by_mass, up_ptr, up_idx, T):
+    """Join the coded points ``idx[:K]`` (ascending, each a root of size one), sum
+    each component's scores and clear their codes; returns (largest, most negative).
+
+    Components are numbered in order of their first point (as
+    :func:`_number_components`) in the same pass that sums their scores in flat
+    order, as ``numpy.bincount`` would, into one array allocated per call whose
+    first entries hold one sum per component.  Mass adds ``x[v]`` (``by_point``)
+    or ``x[i]`` (values listed beside ``idx``); extent adds the code.
+    """
+    _join_forward(code, idx, K, up_ptr, up_idx, T, parent)
+    _unnumber_roots(parent, idx, K)
+    acc = np.empty(K)
+    n = 0
+    for i in range(K):
+        v = idx[i]
+        r = _find(parent, v)
+        if parent[r] == _UNNUMBERED:
+            parent[r] = -1 - n
+            acc[n] = 0.0
+            n += 1
+        k = -1 - parent[r]
+        if by_mass:
+            acc[k] += x[v] if by_point else x[i]
+        else:
+            acc[k] += code[v]
+    hi = 0.0
+    lo = 0.0
+    for k in range(n):
+        if acc[k] > hi:
+            hi = acc[k]
+        if acc[k] < lo:
+            lo = acc[k]
+    for i in range(K):                   # clear this map's points only
+        code[idx[i]] = 0
+    return hi, lo
+
+
+@njit(**_JIT)
 def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_idx, T,
                      pos, neg, ws):
     """Per map: largest positive and most negative cluster score (mass or signed extent).
@@ -202,9 +243,7 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
     ``maps`` (B, F); clusters are ``x > threshold`` (when ``want_pos``) and
     ``x < -threshold`` (when ``want_neg``).  ``pos`` / ``neg`` (B,) receive
     the extremes (0 when there is no cluster of that sign).  ``ws``:
-    :func:`cluster_workspace` (int32 indices: maps below 2^31 points).  The
-    scores are summed in one array, allocated per map, whose first entries hold
-    one sum per component (numbered as they are met, in one pass with the sums).
+    :func:`cluster_workspace` (int32 indices: maps below 2^31 points).
     """
     B, F = maps.shape
     code, parent, idx = ws
@@ -223,35 +262,48 @@ def cluster_extremes(maps, threshold, want_pos, want_neg, by_mass, up_ptr, up_id
                 parent[v] = -1
                 idx[K] = v
                 K += 1
-        _join_forward(code, idx, K, up_ptr, up_idx, T, parent)
-        # components numbered in order of their first point (as _number_components)
-        # while their scores are summed in flat order, as numpy.bincount would
-        _unnumber_roots(parent, idx, K)
-        acc = np.empty(K)
-        n = 0
-        for i in range(K):
-            v = idx[i]
-            r = _find(parent, v)
-            if parent[r] == _UNNUMBERED:
-                parent[r] = -1 - n
-                acc[n] = 0.0
-                n += 1
-            k = -1 - parent[r]
-            if by_mass:
-                acc[k] += x[v]
-            else:
-                acc[k] += code[v]
-        hi = 0.0
-        lo = 0.0
-        for k in range(n):
-            if acc[k] > hi:
-                hi = acc[k]
-            if acc[k] < lo:
-                lo = acc[k]
-        pos[b] = hi
-        neg[b] = lo
-        for i in range(K):               # clear this map's points only
-            code[idx[i]] = 0
+        pos[b], neg[b] = _component_extremes(code, parent, idx, K, x, True, by_mass,
+                                             up_ptr, up_idx, T)
+
+
+@njit(**_JIT)
+def listed_cluster_extremes(idx, val, count, bases, u, v, threshold, want_pos, by_mass,
+                            up_ptr, up_idx, T, pos, neg, ws):
+    """:func:`cluster_extremes` of the resamples ``u..v-1`` of a batch given by their
+    supra-threshold lists (:class:`.exceedances.Exceedances`: ``idx`` / ``val``
+    rows, ``count`` per part, region ``bases``), into ``pos[:v-u]`` / ``neg``.
+
+    A row's regions are first moved together (in place, in order), so its points
+    are in flat order, as the map-based listing gives them; the same sums follow.
+    A resample whose list overflowed gets NaN (to be scored from its map).
+    ``ws``: :func:`cluster_workspace` (its list array is not used).
+    """
+    code, parent, _ = ws
+    J = count.shape[0]
+    for b in range(u, v):
+        full = False
+        for j in range(J):
+            if count[j, b] < 0:
+                full = True
+        if full:
+            pos[b - u] = np.nan
+            neg[b - u] = np.nan
+            continue
+        row, x = idx[b], val[b]
+        K = 0
+        for j in range(J):
+            s = bases[j]
+            for k in range(count[j, b]):
+                p = row[s + k]
+                row[K] = p
+                x[K] = x[s + k]
+                # the map-based listing's code: +1 for x > threshold when positive
+                # clusters are wanted, else -1
+                code[p] = 1 if (want_pos and x[K] > threshold) else -1
+                parent[p] = -1
+                K += 1
+        pos[b - u], neg[b - u] = _component_extremes(code, parent, row, K, x, False,
+                                                     by_mass, up_ptr, up_idx, T)
 
 
 # ----------------------------------------------------------------------------
