@@ -38,8 +38,8 @@ def _lists_of(maps, threshold, want_pos, want_neg, parts=1, capacity=None):
         a, b = n * j // parts, n * (j + 1) // parts
         for c in range(a, b, 7):                  # chunk by chunk, as the kernel does
             e = min(b, c + 7)
-            list_rows(np.ascontiguousarray(maps[:, c:e]), B, e - c, c, ex.threshold,
-                      ex.want_pos, ex.want_neg, ex.idx, ex.val, ex.count[j], 0, base, slots)
+            list_rows(np.ascontiguousarray(maps[:, c:e]), B, e - c, c, ex.upper, ex.lower,
+                      ex.idx, ex.val, ex.count[j], 0, base, slots)
     return ex
 
 
@@ -176,3 +176,39 @@ def test_batch_size_follows_the_buffer_bytes():
     assert auto_batch(1000, 0, 1, block=RES_BLOCK, tasks=10) == 96
     assert auto_batch(1000, 0, 1, block=LIST_BLOCK, tasks=10) == 64
     assert auto_batch(100, 0, 1, block=LIST_BLOCK, tasks=10) == 64                # one block
+
+
+def test_float32_bounds_keep_the_float64_decisions():
+    # x > t (float64 comparison, as the map-based scorer makes it) equals x > the
+    # largest float32 not above t, for float32 x; IEEE 754 ordering (common practice)
+    rng = np.random.default_rng(9)
+    x = rng.standard_normal(20000).astype(np.float32) * 3
+    ts = [2.0, 2.712, float(np.float32(2.712)), float(np.nextafter(np.float32(2.712), 3)),
+          (float(np.float32(2.5)) + float(np.nextafter(np.float32(2.5), 3))) / 2, 3e38,
+          # just below a float32, whose nearest float32 is above it: that value is listed
+          float(np.float32(1.75)) - (1.75 - float(np.nextafter(np.float32(1.75), 0))) / 4]
+    x[:len(ts)] = [np.float32(t) for t in ts]       # values sitting on each threshold
+    for t in ts:
+        b = exceedances.float32_at_or_below(t)
+        assert b.dtype == np.float32 and float(b) <= t
+        x64 = x.astype(np.float64)                  # compared in float64, as numba does
+        np.testing.assert_array_equal(x64 > t, x > b)
+        np.testing.assert_array_equal(x64 < -t, x < -b)
+
+
+def test_listing_on_a_threshold_between_two_floats():
+    rng = np.random.default_rng(4)
+    t = (float(np.float32(0.5)) + float(np.nextafter(np.float32(0.5), 1))) / 2
+    maps = rng.choice(np.array([0.5, np.nextafter(np.float32(0.5), 1), -0.5, 0.0, 2.0],
+                               np.float32), size=(3, 64))
+    adj = _random_graph(rng, 16, 0.2)
+    ptr, ind = _up_csr(adj)
+    ws = unionfind.cluster_workspace(64)
+    ref, got = (np.zeros(3), np.zeros(3)), (np.zeros(3), np.zeros(3))
+    unionfind.cluster_extremes(maps, t, True, True, True, ptr, ind, 4, *ref, ws)
+    ex = _lists_of(maps, t, True, True)
+    np.testing.assert_array_equal(ex.count[0], ((maps > t) | (maps < -t)).sum(axis=1))
+    unionfind.listed_cluster_extremes(ex.idx, ex.val, ex.count, ex.bases, 0, 3, t, True, True,
+                                      ptr, ind, 4, *got, ws)
+    for g, r in zip(got, ref):
+        np.testing.assert_array_equal(g, r)

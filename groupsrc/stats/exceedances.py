@@ -55,6 +55,10 @@ class Exceedances:
         self.capacity = int(capacity or default_capacity(n_features))
         self.threshold = float(threshold)
         self.want_pos, self.want_neg = bool(want_pos), bool(want_neg)
+        t32 = float32_at_or_below(self.threshold)
+        #: float32 bounds of :func:`list_rows`: listed when ``x > upper`` or ``x < lower``
+        self.upper = t32 if self.want_pos else np.float32(np.inf)
+        self.lower = -t32 if self.want_neg else np.float32(-np.inf)
         self.idx = np.empty((rows, self.capacity), np.int32)
         self.val = np.empty((rows, self.capacity), np.float32)
         self.count = np.zeros((parts, rows), np.int64)
@@ -79,26 +83,51 @@ class Exceedances:
         return np.flatnonzero((self.count[:, u:v] == OVERFLOW).any(axis=0)) + u
 
 
+def float32_at_or_below(t) -> np.float32:
+    """The largest float32 not above ``t``: for a float32 ``x``, ``x > t`` exactly when
+    ``x > float32_at_or_below(t)`` (and ``x < -t`` when ``x < -float32_at_or_below(t)``),
+    so the listing compares in float32 and keeps the float64 threshold's decisions."""
+    f = np.float32(t)
+    if float(f) > t:
+        f = np.nextafter(f, np.float32(-np.inf))
+    return f
+
+
 @njit(nogil=True, cache=True)
-def list_rows(st, n_rows, w, first, threshold, want_pos, want_neg, idx, val, count, row0,
-              base, slots):
-    """Append the points of ``st[i, :w]`` (features ``first..first+w-1``) beyond the
-    threshold to row ``row0 + i`` of ``idx`` / ``val``, slots ``base..base+slots-1``,
-    for ``i < n_rows``; ``count`` (rows,) the part's counts.  The same tests as
-    :func:`.unionfind.cluster_extremes`: ``x > threshold`` (when ``want_pos``), else
-    ``x < -threshold`` (when ``want_neg``)."""
+def list_rows(st, n_rows, w, first, upper, lower, idx, val, count, row0, base, slots):
+    """Append the points of ``st[i, :w]`` (float32; features ``first..first+w-1``) with
+    ``x > upper`` or ``x < lower`` to row ``row0 + i`` of ``idx`` / ``val``, slots
+    ``base..base+slots-1``, for ``i < n_rows``; ``count`` (rows,) the part's counts.
+
+    ``upper`` / ``lower``: :attr:`Exceedances.upper` / ``lower``, the float32 forms of
+    the map-based scorer's tests (``x > threshold`` when positive clusters are
+    wanted, ``x < -threshold`` when negative ones are; +-inf for a sign not wanted).
+    Each row is first marked in one branch-free pass (vectorised by the compiler),
+    then only the 8-point groups with a mark are visited: most points of a map are
+    below the threshold.
+    """
+    words = (w + 7) // 8
+    mark = np.zeros(8 * words, np.uint8)
+    marks = mark.view(np.uint64)
     for i in range(n_rows):
-        k = count[row0 + i]
+        r = row0 + i
+        k = count[r]
         if k == OVERFLOW:
             continue
-        r = row0 + i
+        x = st[i]
         for j in range(w):
-            x = st[i, j]
-            if (want_pos and x > threshold) or (want_neg and x < -threshold):
-                if k == slots:
-                    k = OVERFLOW
-                    break
-                idx[r, base + k] = first + j
-                val[r, base + k] = x
-                k += 1
+            mark[j] = np.uint8(x[j] > upper) | np.uint8(x[j] < lower)
+        for q in range(words):
+            if marks[q] == 0:
+                continue
+            for j in range(8 * q, 8 * q + 8):
+                if mark[j]:
+                    if k == slots:
+                        k = OVERFLOW
+                        break
+                    idx[r, base + k] = first + j
+                    val[r, base + k] = x[j]
+                    k += 1
+            if k == OVERFLOW:
+                break
         count[r] = k

@@ -513,9 +513,8 @@ class OLSKernel(StatisticKernel):
                         tmp = np.empty((blk, fc), np.float32) if tmp is None else tmp
                         self._stat_block(Uk, i0 - k * blk, i1 - i0, a, b, tmp, 0, 0)
                         if listing:
-                            list_rows(tmp, i1 - i0, b - a, a, out.threshold, out.want_pos,
-                                      out.want_neg, out.idx, out.val, out.count[j],
-                                      i0 - lo, base, slots)
+                            list_rows(tmp, i1 - i0, b - a, a, out.upper, out.lower, out.idx,
+                                      out.val, out.count[j], i0 - lo, base, slots)
                             continue
                         st = tmp[:i1 - i0, :b - a]
                         seg = slice(i0 - lo, i1 - lo)
