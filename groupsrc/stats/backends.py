@@ -53,7 +53,8 @@ class NullJob:
     correction that scores supra-threshold points only (``correction.lists``) and a
     kernel that can list them (``kernel.lists``) -- the lists of
     :mod:`.exceedances`, with the kernel's product blocks set to ``LIST_BLOCK``
-    rows (as they are for a correction that needs no maps at all, max-stat).  A resample whose list overflows is scored from its map, recomputed here
+    rows (as they are for a correction that needs no maps at all, max-stat).  A
+    resample whose list overflows is scored from its map, recomputed here
     (:meth:`scores`), so every resample gets the same score either way.
     """
 
