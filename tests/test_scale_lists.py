@@ -212,3 +212,24 @@ def test_listing_on_a_threshold_between_two_floats():
                                       ptr, ind, 4, *got, ws)
     for g, r in zip(got, ref):
         np.testing.assert_array_equal(g, r)
+
+
+def test_liberal_forming_thresholds_keep_map_batches(monkeypatch):
+    # lists only while about forming_p of a null map lies beyond the threshold, well
+    # within their room; beyond inference.LISTS_UP_TO_FORMING_P the batches are maps
+    from groupsrc.stats import inference
+    jobs = []
+
+    class Recording(NullJob):
+        def __init__(self, *a, **k):
+            super().__init__(*a, **k)
+            jobs.append(self)
+    monkeypatch.setattr(inference, "NullJob", Recording)
+    rng = np.random.default_rng(0)
+    Y = rng.standard_normal((10, GRID.n_sources, T)).astype(np.float32)
+    for forming_p, lists in [(0.01, True), (inference.LISTS_UP_TO_FORMING_P, True), (0.3, False)]:
+        inference.run_inference(Y, np.ones((10, 1)), [1.0], GRID.adjacency("face"),
+                                correction="cluster-mass", n_resamples=20, seed=1,
+                                forming_p=forming_p)
+        assert jobs[-1].lists is lists
+        assert jobs[-1].block == (LIST_BLOCK if lists else RES_BLOCK)

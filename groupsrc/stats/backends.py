@@ -55,13 +55,16 @@ class NullJob:
     :mod:`.exceedances`, with the kernel's product blocks set to ``LIST_BLOCK``
     rows (as they are for a correction that needs no maps at all, max-stat).  A
     resample whose list overflows is scored from its map, recomputed here
-    (:meth:`scores`), so every resample gets the same score either way.
+    (:meth:`scores`), so every resample gets the same score either way.  ``lists =
+    False`` keeps map batches (:func:`.inference.infer` asks for it when the forming
+    threshold is so liberal that lists would overflow often).
     """
 
-    def __init__(self, kernel, correction):
+    def __init__(self, kernel, correction, lists=True):
         self.kernel, self.correction = kernel, correction
         self.needs_maps = correction.needs_maps
-        self.lists = bool(getattr(correction, "lists", False) and getattr(kernel, "lists", False))
+        self.lists = bool(lists and getattr(correction, "lists", False)
+                          and getattr(kernel, "lists", False))
         if getattr(kernel, "lists", False) and (self.lists or not self.needs_maps):
             kernel.block = LIST_BLOCK   # no map buffer: larger product blocks cost no memory
         self.block = int(getattr(kernel, "block", RES_BLOCK))

@@ -18,10 +18,12 @@ sharing a batch write disjoint slots.  ``count[j, i]`` is how many points part
 after another give the row's points in flat order, the order of the scorer's
 sums.  A region that fills up sets its count to ``OVERFLOW``; the scorer then
 leaves that resample to the map-based path (:class:`.backends.NullJob`).
-The default capacity, one eighth of the features, holds every resample of a
-forming p up to about 0.1; more liberal thresholds spill over to maps, which
-costs time (a product block per run of up to 16 overflowed resamples) and,
-beyond the ``--memory`` plan, one buffer of up to 16 maps per scoring thread.
+The default capacity, one eighth of the features, is used up to a forming p of
+0.05 (:data:`.inference.LISTS_UP_TO_FORMING_P`; more liberal thresholds keep map
+batches), where about a twentieth of a null map lies beyond the threshold.  A
+resample that still overflows costs time (a product block per run of up to 16
+overflowed resamples) and, beyond the ``--memory`` plan, one buffer of up to 16
+maps per scoring thread.
 """
 
 from __future__ import annotations

@@ -59,6 +59,10 @@ NULL_COLUMNS = ["resample", "max_stat", "max_pos", "max_neg"]
 #: with progress reported, at least this many batches (batch sizes never change results),
 #: so that progress advances in steps of about a tenth
 PROGRESS_BATCHES = 10
+#: cluster corrections hold batches as supra-threshold lists (:mod:`.exceedances`) up to
+#: this forming p: about that share of a null map lies beyond the threshold, well within
+#: the lists' room of one point in eight; more liberal thresholds keep map batches
+LISTS_UP_TO_FORMING_P = 0.05
 
 
 def _probability(v):
@@ -170,7 +174,8 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
     trim()                                   # the stages before leave freed memory held
     fixed = dict(seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
                  exact=bool(rearr.exact), freedman_lane=bool(kernel.freedman_lane))
-    null, batch = _null(NullJob(kernel, correction), rearr.n_resamples, kernel, correction,
+    job = NullJob(kernel, correction, lists=spec.forming_p <= LISTS_UP_TO_FORMING_P)
+    null, batch = _null(job, rearr.n_resamples, kernel, correction,
                         spec, execution, fixed)
     # the observed maps after the null: the resampling's buffers and scratch are gone
     # by then, so the two never take memory at the same time
