@@ -169,7 +169,6 @@ class ClusterMass(Correction):
         """Compiled labelling and scoring of the resamples lo..hi-1 of a batch, given by
         their maps (B, S*T) or their supra-threshold lists (:mod:`.unionfind`); a
         resample whose list overflowed gets NaN."""
-        want = signs(self.kind, self.tails)
         pos, neg = np.zeros(hi - lo), np.zeros(hi - lo)
         ptr, ind = _up_csr(self.adj)
         ws = self.scratch(lambda: unionfind.cluster_workspace(self.n_points))
@@ -179,6 +178,7 @@ class ClusterMass(Correction):
                                               hi, maps.threshold, maps.want_pos, mass, ptr, ind,
                                               self.shape[1], pos, neg, ws)
             return pos, neg
+        want = signs(self.kind, self.tails)
         unionfind.cluster_extremes(maps[lo:hi], float(self.threshold), 1 in want, -1 in want,
                                    mass, ptr, ind, self.shape[1], pos, neg, ws)
         return pos, neg

@@ -66,7 +66,10 @@ class Exceedances:
         self.count = np.zeros((parts, rows), np.int64)
         self.bases = np.array([self.capacity * j // parts for j in range(parts + 1)], np.int64)
         self.lo = 0
-        self.rows = rows
+
+    @property
+    def rows(self) -> int:
+        return self.idx.shape[0]
 
     @property
     def parts(self) -> int:
@@ -79,10 +82,6 @@ class Exceedances:
             raise ValueError(f"the batch buffer has {self.parts} part(s), asked for "
                              f"part {j} of {J}")
         return j, int(self.bases[j]), int(self.bases[j + 1] - self.bases[j])
-
-    def overflowed(self, u, v):
-        """Indices (within the batch) of the resamples u..v-1 some region could not hold."""
-        return np.flatnonzero((self.count[:, u:v] == OVERFLOW).any(axis=0)) + u
 
 
 def float32_at_or_below(t) -> np.float32:

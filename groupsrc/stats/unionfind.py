@@ -71,6 +71,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from .exceedances import OVERFLOW
 from .prefetch import prefetch
 
 _JIT = dict(nogil=True, cache=True)
@@ -283,7 +284,7 @@ def listed_cluster_extremes(idx, val, count, bases, u, v, threshold, want_pos, b
     for b in range(u, v):
         full = False
         for j in range(J):
-            if count[j, b] < 0:
+            if count[j, b] == OVERFLOW:
                 full = True
         if full:
             pos[b - u] = np.nan
