@@ -42,6 +42,8 @@ def _parser():
     d.add_argument("--workers", type=int, default=1)
     d.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     d.add_argument("--build-only", action="store_true", help="build and check the cohort only")
+    d.add_argument("--quiet", action="store_true",
+                   help="no progress bars or progress lines (problems are still printed)")
 
     c = sub.add_parser("check", help="validate cohort, design and settings; list every problem")
     c.add_argument("analysis", type=Path, help="analysis file (TOML)")
@@ -331,7 +333,7 @@ def cmd_demo(args, command) -> int:
     from .pipeline import run
     t = time.perf_counter()
     res = run(analysis, out, resamples=args.resamples, seed=args.seed, workers=args.workers,
-              overwrite=args.overwrite, command=command)
+              overwrite=args.overwrite, command=command, quiet=getattr(args, "quiet", False))
     print(f"results written to {res} ({time.perf_counter() - t:.1f} s); "
           f"open {res / 'report.html'}")
     return EXIT_OK

@@ -29,3 +29,16 @@ def test_progress_steps_of_a_tenth_and_the_same_null():
     np.testing.assert_array_equal(with_progress.null["max_stat"],
                                   quiet.null["max_stat"])
     assert with_progress.resampling.batch_size < quiet.resampling.batch_size
+
+
+def test_demo_quiet_prints_no_progress(tmp_path, capsys):
+    # README: `--quiet` (run and demo) turns off the progress bars and per-stage lines;
+    # the closing line that says where the results are stays on stdout
+    from groupsrc.cli import main
+    out = tmp_path / "res"
+    assert main(["demo", "--small", "--quiet", "--resamples", "64", "--out", str(out)]) == 0
+    cap = capsys.readouterr()
+    for line in ("loaded and checked", "statistics done in", "results written in", "%"):
+        assert line not in cap.err, line
+    assert f"results written to {out}" in cap.out
+    assert (out / "report.html").is_file()

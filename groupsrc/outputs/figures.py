@@ -301,10 +301,12 @@ def timecourse_figure(panels, times_ms, measure, base: Path) -> list:
 # null distribution
 # ----------------------------------------------------------------------------
 
-def null_figure(null_max, observed, critical, alpha, xlabel, title, base: Path) -> list:
+def null_figure(null_max, observed, critical, alpha, xlabel, title, base: Path,
+                what="observed clusters") -> list:
     """Histogram of the per-rearrangement maxima with observed scores marked.
 
-    ``observed``: list of (label, value); ``critical``: the (1 - alpha) quantile.
+    ``observed``: list of (label, value); ``critical``: the (1 - alpha) quantile;
+    ``what``: the legend entry of the observed lines.
     """
     null_max = np.asarray(null_max, float)
     null_max = null_max[np.isfinite(null_max)]
@@ -323,9 +325,11 @@ def null_figure(null_max, observed, critical, alpha, xlabel, title, base: Path) 
                    label=f"{100 * (1 - alpha):g}th percentile")
     ymax = ax.get_ylim()[1]
     for j, (lab, v) in enumerate(observed):
-        ax.axvline(v, color=GROUP_COLOURS[1], lw=1.2, label="observed clusters" if j == 0 else None)
-        ax.text(v, ymax * (0.98 - 0.07 * (j % 3)), f" {lab}", color=GROUP_COLOURS[1],
-                fontsize=6.5, va="top", rotation=0,
+        ax.axvline(v, color=GROUP_COLOURS[1], lw=1.2, label=what if j == 0 else None)
+        right = v > 0.7 * top * 1.05            # near the right edge: the label on the left
+        ax.text(v, ymax * (0.98 - 0.07 * (j % 3)), f"{lab} " if right else f" {lab}",
+                color=GROUP_COLOURS[1], fontsize=6.5, va="top", rotation=0,
+                ha="right" if right else "left",
                 bbox=dict(facecolor="white", edgecolor="none", alpha=0.8, pad=0.5))
     ax.set_xlabel(xlabel)
     ax.set_ylabel("rearrangements (count)")

@@ -200,15 +200,17 @@ def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
                 big = rest.iloc[int(np.argmax(np.abs(rest[col].to_numpy())))]
                 observed.append((f"largest other: cluster {int(big['cluster'])}",
                                  abs(float(big[col]))))
+            what = "observed clusters"
         else:
             observed = [("observed maximum", float(null["max_stat"].iloc[0]))]
+            what = "observed maximum"
         base = figdir / "null_distribution"
         figures.null_figure(null["max_stat"].to_numpy(), observed, cs.get("critical_value"),
                             cs["alpha"], _score_label(corr, label),
-                            f"{name}: null distribution of the maximum", base)
+                            f"{name}: null distribution of the maximum", base, what=what)
         out.append(("Null distribution of the map-wide maximum over rearrangements; orange "
-                    "lines: observed clusters; dashed: the critical value at alpha.",
-                    base.with_suffix(".png")))
+                    f"line{'s' if len(observed) > 1 else ''}: {what}; dashed: the critical "
+                    "value at alpha.", base.with_suffix(".png")))
     # design
     design = read_tsv(folder / "design.tsv")
     if len(design):

@@ -39,7 +39,7 @@ from pathlib import Path
 import numpy as np
 
 from .backends import worker_count
-from .kernels import RES_BLOCK
+from .kernels import LIST_BLOCK, RES_BLOCK
 from .pages import release  # noqa: F401  (re-exported)
 
 #: bytes per feature held outside the batches (observed maps, results and their
@@ -122,8 +122,9 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False,
     if memory < low:
         raise MemoryTooSmall(
             f"{size_text(memory)} is below what one batch needs: {RES_BLOCK} resampled maps "
-            f"of {n_features:,} source x sample points, the scorers' work arrays and the "
-            f"result maps take at least {size_text(low)}",
+            f"of {n_features:,} source x sample points (or, for cluster mass and extent, the "
+            f"supra-threshold points of {LIST_BLOCK} resamples in the same bytes), the "
+            f"scorers' work arrays and the result maps take at least {size_text(low)}",
             f"give --memory {size_text(low)} or more")
     chunk = float(min(CHUNK_MAX, max(CHUNK_MIN, memory / 32)))
     left = memory - (PER_FEATURE + scratch) * n_features - 2 * chunk

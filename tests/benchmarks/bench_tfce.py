@@ -9,8 +9,9 @@ each of 100 heights h_k = k max|t| / 100 scipy.ndimage.label over the 4D
 (x, y, z, t) grid and a cluster-size lookup (the definition, Smith & Nichols
 2009).  groupsrc runs run_inference(correction="tfce") with the exact integral
 (default) and with 100 steps, on 1 and 2 workers (threads), the processes
-backend and a local Dask cluster.  Medians of repeated timings; ratios are
-against the reference median measured in the same process.  Not collected by
+backend and a local Dask cluster, taking turns within each repeat.  Medians of
+repeated timings; ratios are against the reference median measured in the same
+process.  Not collected by
 pytest.
 """
 
@@ -50,21 +51,31 @@ def reference_resample(grid, Y, perm, struct, steps=100):
     return best
 
 
-def time_groupsrc(Y, X, adj, resamples, repeats, **kw):
-    per = []
-    for rep in range(repeats):
+def time_groupsrc(Y, X, adj, resamples, repeats, configs):
+    """Per configuration: (median time per resample incl. setup, per extra resample).
+
+    The configurations take turns within each repeat (a, b, c, a, b, c, ...), so that
+    a change in the machine's load during the run weighs on all of them alike; the
+    ratios between configurations are then fairer than with one block per
+    configuration.
+    """
+    def once(n, rep, kw):
         t0 = time.perf_counter()
         run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation", correction="tfce",
-                      n_resamples=resamples, seed=rep, **kw)
-        per.append((time.perf_counter() - t0) / resamples)
-    setup = []
+                      n_resamples=n, seed=rep, **kw)
+        return time.perf_counter() - t0
+
+    per = {name: [] for name, _ in configs}
+    setup = {name: [] for name, _ in configs}
     for rep in range(repeats):
-        t0 = time.perf_counter()
-        run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation", correction="tfce",
-                      n_resamples=1, seed=rep, **kw)
-        setup.append(time.perf_counter() - t0)
-    med, s = float(np.median(per)), float(np.median(setup))
-    return med, (med * resamples - s) / max(1, resamples - 1)
+        for name, kw in configs:
+            per[name].append(once(resamples, rep, kw) / resamples)
+            setup[name].append(once(1, rep, kw))
+    out = {}
+    for name, _ in configs:
+        med, s = float(np.median(per[name])), float(np.median(setup[name]))
+        out[name] = med, (med * resamples - s) / max(1, resamples - 1)
+    return out
 
 
 def main():
@@ -85,13 +96,11 @@ def main():
                ("exact, 2 processes", dict(n_jobs=2, backend="processes")),
                ("exact, Dask local:2", dict(n_jobs=2, backend="dask", scheduler="local:2"))]
     skip = set(filter(None, a.skip.lower().split(",")))
-    results = {}
-    for name, kw in configs:
-        if any(s in name.lower() for s in skip):
-            continue
-        results[name] = time_groupsrc(Y, X, adj, a.resamples, a.repeats, **kw)
-        print(f"  {name:24s}: {results[name][0] * 1e3:8.1f} ms / resample incl. setup, "
-              f"{results[name][1] * 1e3:8.1f} ms per extra resample", flush=True)
+    configs = [(name, kw) for name, kw in configs if not any(s in name.lower() for s in skip)]
+    results = time_groupsrc(Y, X, adj, a.resamples, a.repeats, configs)
+    for name, (med, marginal) in results.items():
+        print(f"  {name:24s}: {med * 1e3:8.1f} ms / resample incl. setup, "
+              f"{marginal * 1e3:8.1f} ms per extra resample", flush=True)
     struct = ndimage.generate_binary_structure(4, 1)
     rng = np.random.default_rng(1)
     ref = []
