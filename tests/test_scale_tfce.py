@@ -144,6 +144,17 @@ def test_sort_down_orders_like_a_stable_sort(dtype):
         want = np.argsort(vals, kind="stable")[::-1]
         np.testing.assert_array_equal(sp[::-1], pts[want])
         np.testing.assert_array_equal(sk[::-1].view(dtype), vals[want])
+    # signed keys (the TFCE pass stores -h for the positive points): every negative
+    # key comes above every non-negative one, each group by magnitude, largest first
+    mixed = rng.exponential(2.0, 4000).astype(dtype)
+    mixed[rng.random(4000) < 0.5] *= -1
+    mixed[:50] = np.round(mixed[:50])                   # ties in both groups
+    K = mixed.size
+    pts = np.arange(K, dtype=np.int32)
+    sk, sp = _sort_down(mixed.copy().view(utype), pts.copy(), np.empty(K, utype),
+                        np.empty(K, np.int32))
+    want = np.lexsort((np.abs(mixed), np.signbit(mixed)))[::-1]   # numpy, stable
+    np.testing.assert_array_equal(sp[::-1], pts[want])
 
 
 @pytest.mark.parametrize("seed", range(2))

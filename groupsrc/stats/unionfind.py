@@ -337,8 +337,9 @@ def _extent_weight(n, E):
 def _sort_down(keys, pts, tmp_keys, tmp_pts):
     """Sort ``keys`` with their ``pts`` from the largest key down; return both.
 
-    ``keys``: the IEEE bit patterns of non-negative floats as unsigned integers
-    of the floats' width (their order is the floats' order).  LSD radix sort
+    ``keys``: the IEEE bit patterns of floats as unsigned integers of the floats'
+    width: non-negative floats keep their order, and a negative float (sign bit
+    set) comes above every non-negative one, ordered by its magnitude.  LSD radix sort
     on (key, point) pairs, one pass per byte (a pass is skipped when every key
     has the same byte), so each pass reads sequentially; ties come out in
     reverse position order.  ``tmp_keys`` / ``tmp_pts`` (same sizes) are
@@ -369,11 +370,11 @@ def _sort_down(keys, pts, tmp_keys, tmp_pts):
 
 @njit(**_JIT)
 def _drop_below(heights, pts, sgn, K, step):
-    """Keep the listed points (``pts[:K]``, ``heights[:K]``) at or above ``step``,
+    """Keep the listed points (``pts[:K]``, ``|heights[:K]|``) at or above ``step``,
     in order; the others leave the map (``sgn`` 0).  Returns how many are kept."""
     kept = 0
     for i in range(K):
-        if heights[i] < step:
+        if abs(heights[i]) < step:
             sgn[pts[i]] = 0
         else:
             pts[kept] = pts[i]
@@ -385,11 +386,18 @@ def _drop_below(heights, pts, sgn, K, step):
 @njit(**_JIT)
 def _by_rank(heights, pts, P, A):
     """From :func:`_sort_down`'s ascending result: ``P[i]`` the point of rank ``i``
-    (highest first) and ``A[i]`` its height as float64."""
+    (highest first) and ``A[i]`` its height ``|key|`` as float64; returns how many
+    keys are negative (they come first)."""
     K = heights.size
+    n_neg = 0
     for i in range(K):
         P[i] = pts[K - 1 - i]
-        A[i] = heights[K - 1 - i]
+        h = heights[K - 1 - i]
+        if h < 0:
+            n_neg += 1
+            h = -h
+        A[i] = h
+    return n_neg
 
 
 #: how many points ahead of the visit the TFCE pass prefetches (cache lines in flight)
@@ -441,15 +449,24 @@ def _close_node(nodes, nd, g, parent, E):
 
 @njit(**_JIT)
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
-    """Build the component tree of one map ``x`` (F,); return (K, nn).
+    """Build the component tree of one map ``x`` (F,); return (K, nn, n_pos).
 
     After the call, with ``a, sgn, par, nodes, leaf, vals, scratch, P = ws``:
-    ``P[:K]`` are the visited points (time-major indices ``t * S + s``) from the
-    highest down, ``sgn`` their signs (by time-major index), ``leaf[:K]`` the node
+    ``P[:K]`` are the visited points (time-major indices ``t * S + s``), the
+    ``n_pos`` positive ones first, each sign from the highest down, ``sgn`` their
+    signs (by time-major index), ``leaf[:K]`` the node
     each opened, and ``nodes[3 nd + 1]`` (nd < nn) each node's TFCE, accumulated
     from the root down.  ``scale`` multiplies the map first (-1 for lower-tailed
     use); ``steps`` / ``dh``: exact integral when both are <= 0, else the stepped
     sum with the fixed step ``dh`` or ``max|x| / steps``.
+
+    The positive points are visited first (from the highest down), then, with
+    ``par`` reset, the negative ones: components never join points of opposite
+    signs, so a neighbour already visited in the same pass has the point's sign
+    and the visit check reads ``par`` alone (each pass also touches half the
+    map).  Their keys carry the sign for that (:func:`_sort_down`): one sort puts
+    the positive points first, each sign in the order of the single descending
+    pass over ``|x|``, which gives the same tree and the same values.
 
     The union-find is indexed by point, not by rank: ``par`` (parent point, or
     ``_NOT_YET``) of a neighbour lies in the cache line its visit check reads.  A
@@ -484,15 +501,16 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
             sgn[w] = g
             if g != 0:
                 leaf[K] = w
+                kv = -xv if g > 0 else xv         # positive points sort first
                 if narrow:
-                    k32[K] = xv
+                    k32[K] = kv
                 else:
-                    vals[K] = xv
+                    vals[K] = kv
                 K += 1
                 if xv > top:
                     top = xv
     if K == 0:
-        return 0, 0
+        return 0, 0, 0
     step = 0.0
     if dh > 0.0:
         step = dh
@@ -509,27 +527,28 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
         K = _drop_below(k32, leaf, sgn, K, step) if narrow else \
             _drop_below(vals, leaf, sgn, K, step)
         if K == 0:
-            return 0, 0
+            return 0, 0, 0
     # descending height: P[i] the point of rank i, A[i] its height (float64, in
     # whichever of ``a`` / ``vals`` the sort did not leave its keys)
     if narrow:
         sk, sp = _sort_down(k32[:K].view(np.uint32), leaf[:K],
                             a.view(np.uint32)[:K], scratch[:K])
         A = vals if sk.ctypes.data == a.ctypes.data else a
-        _by_rank(sk.view(np.float32), sp, P, A)
+        n_pos = _by_rank(sk.view(np.float32), sp, P, A)
     else:
         sk, sp = _sort_down(vals[:K].view(np.uint64), leaf[:K],
                             a.view(np.uint64)[:K], scratch[:K])
         A = vals if sk.ctypes.data == a.ctypes.data else a
-        _by_rank(sk.view(np.float64), sp, P, A)
+        n_pos = _by_rank(sk.view(np.float64), sp, P, A)
     nn = 0
     for i in range(K):
+        if i == n_pos and i > 0:      # the negative points: a fresh union-find
+            par[:] = _NOT_YET
         if i + _AHEAD < K:
             q = np.int64(P[i + _AHEAD])
             tq = q // S
             sq = q - tq * S
             prefetch(par, q)
-            prefetch(sgn, q)
             if tq > 0:
                 prefetch(par, q - S)
             if tq + 1 < T:
@@ -539,7 +558,6 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
                 prefetch(par, tq * S + np.int64(adj_idx[adj_ptr[sq + 1] - 1]))
         v = np.int64(P[i])
         g = _height_weight(A[i], H, step, prefix)
-        sg = sgn[v]
         par[v] = v                    # a single point: its own root, no node until needed
         ri = v                        # the root of v's component
         t = v // S
@@ -557,7 +575,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
                 u = v + S
             else:
                 u = t * S + np.int64(adj_idx[j0 + d])
-            if par[u] == _NOT_YET or sgn[u] != sg:
+            if par[u] == _NOT_YET:       # not yet visited in this sign's pass
                 continue
             rj = np.int64(_find_root(par, u))
             if rj == ri:
@@ -591,20 +609,21 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
         up = nodes[3 * nd + 2]
         if up >= 0.0:
             nodes[3 * nd + 1] += nodes[3 * np.int64(up) + 1]
-    return K, nn
+    return K, nn, n_pos
 
 
 @njit(**_JIT)
 def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
     """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see :func:`_tfce_tree`)."""
-    K, nn = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
-    _, sgn, _, nodes, leaf, _, _, P = ws
+    K, nn, n_pos = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
+    _, _, _, nodes, leaf, _, _, P = ws
     out[:] = 0.0
     S = x.size // T
     for i in range(K):
         v = np.int64(P[i])
         t = v // S
-        out[(v - t * S) * T + t] = sgn[v] * nodes[3 * np.int64(leaf[i]) + 1] * scale
+        sg = 1.0 if i < n_pos else -1.0
+        out[(v - t * S) * T + t] = sg * nodes[3 * np.int64(leaf[i]) + 1] * scale
 
 
 @njit(**_JIT)
@@ -622,14 +641,15 @@ def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, 
     Read from the nodes the points opened, without writing the map.
     """
     B = maps.shape[0]
-    _, sgn, _, nodes, leaf, _, _, P = ws
+    _, _, _, nodes, leaf, _, _, _ = ws
     for b in range(B):
-        K, nn = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh,
-                           ws)
+        K, nn, n_pos = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps,
+                                  dh, ws)
         hi = 0.0
         lo = 0.0
         for i in range(K):
-            val = sgn[P[i]] * nodes[3 * np.int64(leaf[i]) + 1] * scale
+            sg = 1.0 if i < n_pos else -1.0
+            val = sg * nodes[3 * np.int64(leaf[i]) + 1] * scale
             if val > hi:
                 hi = val
             if val < lo:

@@ -9,10 +9,10 @@ each of 100 heights h_k = k max|t| / 100 scipy.ndimage.label over the 4D
 (x, y, z, t) grid and a cluster-size lookup (the definition, Smith & Nichols
 2009).  groupsrc runs run_inference(correction="tfce") with the exact integral
 (default) and with 100 steps, on 1 and 2 workers (threads), the processes
-backend and a local Dask cluster, taking turns within each repeat.  Medians of
-repeated timings; ratios are against the reference median measured in the same
-process.  Not collected by
-pytest.
+backend and a local Dask cluster, taking turns within each repeat.  The time
+per extra resample is the steady rate inside a run, after the first round of
+batches (fixed costs stay out).  Medians of repeated timings; ratios are against the reference
+median measured in the same process.  Not collected by pytest.
 """
 
 import argparse
@@ -54,33 +54,37 @@ def reference_resample(grid, Y, perm, struct, steps=100):
 def time_groupsrc(Y, X, adj, resamples, repeats, configs):
     """Per configuration: (median time per resample incl. setup, per extra resample).
 
-    The configurations take turns within each repeat (a, b, c, a, b, c, ...), so that
-    a change in the machine's load during the run weighs on all of them alike; the
-    ratios between configurations are then fairer than with one block per
-    configuration.
+    The time per extra resample is the steady rate inside each run: the run reports
+    its progress after each batch (batches of 16, at least 10 of them); the clock
+    starts when the first round of batches is done (one batch per worker process,
+    one batch for threads, which share each batch) and stops at the last one, so
+    that fixed costs (the observed map, sending the data to the workers, starting
+    them) stay out.  The configurations take turns within each repeat (a, b, c, a,
+    b, c, ...), so that a change in the machine's load during the run weighs on all
+    of them alike.
     """
-    def once(n, rep, kw):
-        t0 = time.perf_counter()
-        run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation", correction="tfce",
-                      n_resamples=n, seed=rep, **kw)
-        return time.perf_counter() - t0
-
-    per = {name: [] for name, _ in configs}
-    setup = {name: [] for name, _ in configs}
+    total = {name: [] for name, _ in configs}
+    steady = {name: [] for name, _ in configs}
     for rep in range(repeats):
         for name, kw in configs:
-            per[name].append(once(resamples, rep, kw) / resamples)
-            setup[name].append(once(1, rep, kw))
-    out = {}
-    for name, _ in configs:
-        med, s = float(np.median(per[name])), float(np.median(setup[name]))
-        out[name] = med, (med * resamples - s) / max(1, resamples - 1)
-    return out
+            marks = []
+            t0 = time.perf_counter()
+            run_inference(Y, X, [1.0, -1.0], adj, scheme="permutation", correction="tfce",
+                          n_resamples=resamples, seed=rep,
+                          progress=lambda done, m: marks.append((time.perf_counter(), done)),
+                          **kw)
+            total[name].append((time.perf_counter() - t0) / resamples)
+            slots = kw["n_jobs"] if kw["backend"] in ("processes", "dask") else 1
+            done = [(t, d) for t, d in marks if d > 0]
+            (ta, da), (tb, db) = done[min(slots, len(done) - 1) - 1], done[-1]
+            steady[name].append((tb - ta) / max(1, db - da))
+    return {name: (float(np.median(total[name])), float(np.median(steady[name])))
+            for name, _ in configs}
 
 
 def main():
     ap = argparse.ArgumentParser()
-    ap.add_argument("--resamples", type=int, default=32)
+    ap.add_argument("--resamples", type=int, default=160)
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--reference", type=int, default=2, help="reference resamples per repeat")
     ap.add_argument("--skip", default="", help="comma list of configurations to skip")

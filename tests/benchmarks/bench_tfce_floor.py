@@ -8,9 +8,10 @@ every point visited), this times per map:
 * groupsrc's TFCE of the map's extremes (``unionfind.tfce_extremes``: setup,
   sort, the height-ordered pass with its tree nodes, the maxima);
 * a bare union-find (union by size, path halving, nothing else) over the same
-  space x time graph, visiting the points in the same descending height order
-  (given, not timed: no sort), on the same time-major layout;
-* the same bare union-find visiting the points in index order.
+  space x time graph, visiting the points in the same order (given, not timed:
+  no sort): the positive points from the highest down, then afresh the negative
+  ones, on the same time-major layout;
+* the same bare union-find visiting each sign's points in index order.
 
 The first two ratios say how much of the TFCE map's time any pass in height
 order would spend anyway; the last one what the order of the visits costs.
@@ -51,18 +52,20 @@ def time_major(x, T):
 
 
 @njit(nogil=True)
-def bare_union_find(order, sgn, adj_ptr, adj_idx, T, par, size):
-    """Join each visited point with its visited neighbours of the same sign."""
+def bare_union_find(order, n_pos, adj_ptr, adj_idx, T, par, size):
+    """Join each visited point with its visited neighbours: the ``n_pos`` positive
+    points first, then (afresh) the negative ones, as the TFCE pass does."""
     F = order.size
     S = F // T
     par[:] = _NOT_YET
     for i in range(F):
+        if i == n_pos:
+            par[:] = _NOT_YET
         v = np.int64(order[i])
         par[v] = v
         size[v] = 1
         t = v // S
         s = v - t * S
-        g = sgn[v]
         j0 = adj_ptr[s]
         deg = adj_ptr[s + 1] - j0
         for d in range(-1, deg + 1):
@@ -76,7 +79,7 @@ def bare_union_find(order, sgn, adj_ptr, adj_idx, T, par, size):
                 u = v + S
             else:
                 u = t * S + np.int64(adj_idx[j0 + d])
-            if par[u] == _NOT_YET or sgn[u] != g:
+            if par[u] == _NOT_YET:
                 continue
             r = np.int64(u)
             while par[r] != r:
@@ -130,12 +133,15 @@ def main():
             tfce_ms.append(_median_time(lambda: unionfind.tfce_extremes(
                 x, 1.0, True, ptr, idx, n_t, 0.5, 2.0, 0, 0.0, pos, neg, ws), a.repeats))
             h, g = time_major(x[0], n_t)
-            down = np.argsort(-h, kind="stable").astype(np.int32)
-            ahead = np.arange(F, dtype=np.int32)
+            down = np.argsort(-h, kind="stable")
+            down = np.concatenate([down[g[down] > 0], down[g[down] < 0]]).astype(np.int32)
+            every = np.arange(F)
+            ahead = np.concatenate([every[g > 0], every[g < 0]]).astype(np.int32)
+            n_pos = int((g > 0).sum())
             height_ms.append(_median_time(lambda: bare_union_find(
-                down, g, ptr, idx, n_t, par, size), a.repeats))
+                down, n_pos, ptr, idx, n_t, par, size), a.repeats))
             index_ms.append(_median_time(lambda: bare_union_find(
-                ahead, g, ptr, idx, n_t, par, size), a.repeats))
+                ahead, n_pos, ptr, idx, n_t, par, size), a.repeats))
         t_tf, t_h, t_i = (float(np.median(v)) for v in (tfce_ms, height_ms, index_ms))
         print(f"{n_t:4d} samples ({F:,} points):")
         print(f"  TFCE extremes (groupsrc)          {t_tf * 1e9 / F:6.1f} ns per point")
