@@ -10,7 +10,7 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
   supra-threshold lists, ``B x F`` (:mod:`.exceedances`, in blocks of 64
   resamples: one block of lists takes the bytes of 16 maps);
 * the scorers' scratch arrays, per scoring thread: ``Correction.scratch_bytes``
-  per feature (at most 17 for cluster mass / extent, 85 for TFCE, 0 otherwise);
+  per feature (at most 17 for cluster mass / extent, 84 for TFCE, 0 otherwise);
 * the reduced data and their residuals, ``2 x n x F x 4``: in memory while
   they fit half of what is left, else in files (memory-mapped, read chunk by
   chunk with the pages handed back after each chunk, :func:`release`);

@@ -369,14 +369,12 @@ def _sort_down(keys, pts, tmp_keys, tmp_pts):
 
 
 @njit(**_JIT)
-def _drop_below(heights, pts, sgn, K, step):
+def _drop_below(heights, pts, K, step):
     """Keep the listed points (``pts[:K]``, ``|heights[:K]|``) at or above ``step``,
-    in order; the others leave the map (``sgn`` 0).  Returns how many are kept."""
+    in order; the others are not visited.  Returns how many are kept."""
     kept = 0
     for i in range(K):
-        if abs(heights[i]) < step:
-            sgn[pts[i]] = 0
-        else:
+        if abs(heights[i]) >= step:
             pts[kept] = pts[i]
             heights[kept] = heights[i]
             kept += 1
@@ -405,16 +403,16 @@ _AHEAD = 16
 
 
 #: bytes per point of :func:`tfce_workspace`
-TFCE_SCRATCH_BYTES = 8 + 1 + 4 + 6 * 8 + 4 + 8 + 4 + 4
+TFCE_SCRATCH_BYTES = 8 + 4 + 6 * 8 + 4 + 8 + 4 + 4
 
 
 def tfce_workspace(F):
     """Scratch arrays for :func:`_tfce_tree` on maps of ``F`` points, reused across
     maps: no allocation per map (large allocations and their page faults serialise
     threads)."""
-    return (np.empty(F, np.float64), np.empty(F, np.int8), np.empty(F, np.int32),
-            np.empty(6 * F, np.float64), np.empty(F, np.int32), np.empty(F, np.float64),
-            np.empty(F, np.int32), np.empty(F, np.int32))
+    return (np.empty(F, np.float64), np.empty(F, np.int32), np.empty(6 * F, np.float64),
+            np.empty(F, np.int32), np.empty(F, np.float64), np.empty(F, np.int32),
+            np.empty(F, np.int32))
 
 
 @njit(**_JIT)
@@ -451,10 +449,9 @@ def _close_node(nodes, nd, g, parent, E):
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     """Build the component tree of one map ``x`` (F,); return (K, nn, n_pos).
 
-    After the call, with ``a, sgn, par, nodes, leaf, vals, scratch, P = ws``:
+    After the call, with ``a, par, nodes, leaf, vals, scratch, P = ws``:
     ``P[:K]`` are the visited points (time-major indices ``t * S + s``), the
-    ``n_pos`` positive ones first, each sign from the highest down, ``sgn`` their
-    signs (by time-major index), ``leaf[:K]`` the node
+    ``n_pos`` positive ones first, each sign from the highest down, ``leaf[:K]`` the node
     each opened, and ``nodes[3 nd + 1]`` (nd < nn) each node's TFCE, accumulated
     from the root down.  ``scale`` multiplies the map first (-1 for lower-tailed
     use); ``steps`` / ``dh``: exact integral when both are <= 0, else the stepped
@@ -475,7 +472,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     root's one line gives both.  The lines of the point ``_AHEAD`` visits later
     and of its neighbours are prefetched (:mod:`.prefetch`).
     """
-    a, sgn, par, nodes, leaf, vals, scratch, P = ws
+    a, par, nodes, leaf, vals, scratch, P = ws
     F = x.size
     S = F // T
     # a float32 map (scale +-1) has float32 heights: sorted on 32-bit keys, half
@@ -498,7 +495,6 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
             elif two_sided and xv < 0.0:
                 g = -1
                 xv = -xv
-            sgn[w] = g
             if g != 0:
                 leaf[K] = w
                 kv = -xv if g > 0 else xv         # positive points sort first
@@ -524,8 +520,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
             hk = k * step
             prefix[k] = prefix[k - 1] + hk ** H * step
         # below the first level: no contribution
-        K = _drop_below(k32, leaf, sgn, K, step) if narrow else \
-            _drop_below(vals, leaf, sgn, K, step)
+        K = _drop_below(k32, leaf, K, step) if narrow else _drop_below(vals, leaf, K, step)
         if K == 0:
             return 0, 0, 0
     # descending height: P[i] the point of rank i, A[i] its height (float64, in
@@ -616,7 +611,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
 def _tfce_into(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, out, ws):
     """TFCE of one map ``x`` (F,) into ``out`` (F,) float64 (see :func:`_tfce_tree`)."""
     K, nn, n_pos = _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws)
-    _, _, _, nodes, leaf, _, _, P = ws
+    _, _, nodes, leaf, _, _, P = ws
     out[:] = 0.0
     S = x.size // T
     for i in range(K):
@@ -641,7 +636,7 @@ def tfce_extremes(maps, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, 
     Read from the nodes the points opened, without writing the map.
     """
     B = maps.shape[0]
-    _, _, _, nodes, leaf, _, _, _ = ws
+    _, _, nodes, leaf, _, _, _ = ws
     for b in range(B):
         K, nn, n_pos = _tfce_tree(maps[b], scale, two_sided, adj_ptr, adj_idx, T, E, H, steps,
                                   dh, ws)
