@@ -42,3 +42,23 @@ def test_demo_quiet_prints_no_progress(tmp_path, capsys):
         assert line not in cap.err, line
     assert f"results written to {out}" in cap.out
     assert (out / "report.html").is_file()
+
+
+def _lines(steps, total=1000):
+    import io
+    from groupsrc.progress import Progress
+    out = io.StringIO()
+    p = Progress("resampling c", total, "resample", "lines", stream=out)
+    for done in steps:
+        p.update(done)
+    return [line.split(": ")[2].split(" (")[0].strip() for line in out.getvalue().splitlines()]
+
+
+def test_progress_lines_every_tenth():
+    # README ("Progress"): in a log, a line at about every 10%.  Fine steps print at
+    # the tenths exactly; batches just short of a tenth (96 of 1000, whole product
+    # blocks) print at every batch, the first at 10%, not first at 19%
+    assert _lines(range(1, 1001)) == [f"{k}%" for k in range(10, 101, 10)]
+    batches = _lines(list(range(96, 1000, 96)) + [1000])
+    assert batches[0] == "10%" and len(batches) == 11
+    assert _lines([500, 1000]) == ["50%", "100%"]
