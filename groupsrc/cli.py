@@ -333,7 +333,7 @@ def cmd_demo(args, command) -> int:
     from .pipeline import run
     t = time.perf_counter()
     res = run(analysis, out, resamples=args.resamples, seed=args.seed, workers=args.workers,
-              overwrite=args.overwrite, command=command, quiet=getattr(args, "quiet", False))
+              overwrite=args.overwrite, command=command, quiet=args.quiet)
     print(f"results written to {res} ({time.perf_counter() - t:.1f} s); "
           f"open {res / 'report.html'}")
     return EXIT_OK

@@ -11,8 +11,8 @@ each of 100 heights h_k = k max|t| / 100 scipy.ndimage.label over the 4D
 (default) and with 100 steps, on 1 and 2 workers (threads), the processes
 backend and a local Dask cluster, taking turns within each repeat.  The time
 per extra resample is the steady rate inside a run, after the first round of
-batches (fixed costs stay out).  Medians of repeated timings; ratios are against the reference
-median measured in the same process.  Not collected by pytest.
+batches (fixed costs stay out).  Medians of repeated timings; ratios are against
+the reference median measured in the same process.  Not collected by pytest.
 """
 
 import argparse
@@ -76,8 +76,11 @@ def time_groupsrc(Y, X, adj, resamples, repeats, configs):
             total[name].append((time.perf_counter() - t0) / resamples)
             slots = kw["n_jobs"] if kw["backend"] in ("processes", "dask") else 1
             done = [(t, d) for t, d in marks if d > 0]
-            (ta, da), (tb, db) = done[min(slots, len(done) - 1) - 1], done[-1]
-            steady[name].append((tb - ta) / max(1, db - da))
+            if len(done) <= slots:
+                raise SystemExit(f"{name}: {resamples} resamples make too few batches for a "
+                                 "steady rate; give --resamples 160 or more")
+            (ta, da), (tb, db) = done[slots - 1], done[-1]
+            steady[name].append((tb - ta) / (db - da))
     return {name: (float(np.median(total[name])), float(np.median(steady[name])))
             for name, _ in configs}
 
