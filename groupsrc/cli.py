@@ -16,7 +16,7 @@ from pathlib import Path
 
 from . import __version__
 from .inputs.problems import InputError, ProblemList
-from .stats.backends import BackendUnavailable
+from .stats.engine.backends import BackendUnavailable
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -98,8 +98,8 @@ def _check_options(args, parser):
             parser.error(f"--{name} must be at least 1, got {v}")
     if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
         parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
-    from .stats.backends import parse_scheduler
-    from .stats.memory import parse_size
+    from .stats.engine.backends import parse_scheduler
+    from .stats.engine.memory import parse_size
     if getattr(args, "scheduler", None) is not None:
         try:
             parse_scheduler(args.scheduler)

@@ -149,7 +149,7 @@ def _check_reduced_range(cohort, plans, settings, problems):
         return
     top = 0.0
     step = max(1, int(2e7 // max(1, cohort.Y.shape[2] * cohort.n_maps)))
-    from .stats.pages import release
+    from .stats.engine.pages import release
     for a in range(0, cohort.Y.shape[1], step):
         top = max(top, float(np.abs(cohort.Y[:, a:a + step]).max()))
         release(cohort.Y)
@@ -179,14 +179,14 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     ``progress``: a :func:`groupsrc.progress.reporter` (or True / None for a
     bar on a terminal); ``scheduler``: run the resampling on Dask (an address
     or ``local:N``); ``memory``: bytes the working set may take
-    (:mod:`groupsrc.stats.memory`); ``checkpoint``: a
-    :class:`groupsrc.stats.checkpoint.Checkpoint` saving (and resuming) the
+    (:mod:`groupsrc.stats.engine.memory`); ``checkpoint``: a
+    :class:`groupsrc.stats.engine.checkpoint.Checkpoint` saving (and resuming) the
     resampling.
     """
-    from .stats.corrections import CORRECTIONS, TfceOptions
+    from .stats.corrections.scorers import CORRECTIONS, TfceOptions
     from .stats.inference import Execution, InferenceSpec, infer
-    from .stats.kernels import OLSKernel
-    from .stats.reduction import reduce_maps
+    from .stats.models.ols import OLSKernel
+    from .stats.models.reduction import reduce_maps
 
     s, cohort, design = prep.settings, prep.cohort, prep.design
     inf = inference_settings(s, resamples, seed)
@@ -265,9 +265,9 @@ def _with_blocks(spec, cohort, ids, inf):
 
 def _fit_mixed(prep, samples, timings, progress=None):
     """Fit the mixed model once at every source x sample (``mixed = true``)."""
-    from .stats.mixed import MixedCore
-    from .stats.mixed_fit import fit_features
-    from .stats.mixed_inference import variance_components
+    from .stats.models.mixed.model import MixedCore
+    from .stats.models.mixed.fit import fit_features
+    from .stats.models.mixed.inference import variance_components
     if prep.mixed is None or not any(p.model == "mixed" for p in prep.plans):
         return None
     t0 = time.perf_counter()
@@ -298,8 +298,8 @@ def _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency, inf
     """One contrast of the mixed model: kernel, inference, the per-participant measure."""
     from .inputs.mixed_design import reducible
     from .stats.inference import infer
-    from .stats.mixed_kernel import MixedKernel
-    from .stats.reduction import reduce_maps
+    from .stats.models.mixed.kernel import MixedKernel
+    from .stats.models.reduction import reduce_maps
     cohort, md = prep.cohort, prep.mixed
     within_col = prep.settings.model.get("within")
     kernel = MixedKernel(fitted["fit"], fitted["Y"], plan.weights, scheme=plan.scheme)
@@ -346,7 +346,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     stage_log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
                    + (" (loading cache reused)" if prep.cohort.cache_hit else ""))
     if scheduler:                  # an unanswering scheduler is refused before any work
-        from .stats.backends import dask_client
+        from .stats.engine.backends import dask_client
         dask_client(scheduler)
     checkpoint = open_checkpoint(out, prep, resamples, seed, resume)
     try:
@@ -362,7 +362,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
         raise
     finally:
         if scheduler:
-            from .stats.backends import close_clients
+            from .stats.engine.backends import close_clients
             close_clients()
     t_stats = time.perf_counter()
     stage_log.info(f"statistics done in {t_stats - t_loaded:.1f} s")
@@ -394,7 +394,7 @@ def checkpoint_folder(out) -> Path:
 def open_checkpoint(out, prep, resamples, seed, resume):
     """Start a fresh checkpoint, or (``resume``) open the interrupted run's; a
     checkpoint that cannot serve is an InputError saying why."""
-    from .stats.checkpoint import Checkpoint, CheckpointError
+    from .stats.engine.checkpoint import Checkpoint, CheckpointError
     folder = checkpoint_folder(out)
     fingerprint = {"inputs": dict(prep.cohort.inputs),
                    "settings": _plain(dict(prep.settings.as_dict(),
@@ -447,7 +447,7 @@ def _stage(new_progress, desc, unit):
 
 def _memory_plan(memory, n_units, n_features, workers, scheduler, settings, mixed=False,
                  scratch=0):
-    from .stats.memory import MemoryTooSmall, plan
+    from .stats.engine.memory import MemoryTooSmall, plan
     if memory is not None and mixed:
         problems = ProblemList()
         problems.add("--memory", "the memory bound covers the summary-statistic GLM only; the "

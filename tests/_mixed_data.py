@@ -10,7 +10,7 @@ import warnings
 
 import numpy as np
 
-from groupsrc.stats.mixed import MixedDesign
+from groupsrc.stats.models.mixed.model import MixedDesign
 
 
 def unbalanced_design(n_participants=16, seed=0, missing=(3,), max_sessions=3,

@@ -15,13 +15,14 @@ import numpy as np
 import pytest
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.backends import BACKENDS, NullJob, make_backend
-from groupsrc.stats.corrections import TfceOptions, make_correction
-from groupsrc.stats import kernels, mixed_kernel
-from groupsrc.stats.kernels import OLSKernel
-from groupsrc.stats.mixed import MixedCore
-from groupsrc.stats.mixed_fit import fit_features
-from groupsrc.stats.mixed_kernel import MixedKernel
+from groupsrc.stats.engine.backends import BACKENDS, NullJob, make_backend
+from groupsrc.stats.corrections.scorers import TfceOptions, make_correction
+from groupsrc.stats.models import ols as kernels
+from groupsrc.stats.models.mixed import kernel as mixed_kernel
+from groupsrc.stats.models.ols import OLSKernel
+from groupsrc.stats.models.mixed.model import MixedCore
+from groupsrc.stats.models.mixed.fit import fit_features
+from groupsrc.stats.models.mixed.kernel import MixedKernel
 
 from _mixed_data import simulate, unbalanced_design
 

@@ -41,7 +41,7 @@ from groupsrc.formats.surface_maps import SurfaceMaps
 from groupsrc.outputs import build_report
 from groupsrc.sources import Hemisphere, SurfaceMesh, TimeAxis, VoxelParts
 from groupsrc.sources.surface import icosphere
-from groupsrc.stats.clusters import label_clusters
+from groupsrc.stats.corrections.clusters import label_clusters
 from test_check import assert_refused
 
 TIME = TimeAxis(-0.05, 0.004, 5)

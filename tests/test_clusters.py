@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import ndimage
 
-from groupsrc.stats.clusters import cluster_scores, label_clusters
+from groupsrc.stats.corrections.clusters import cluster_scores, label_clusters
 from groupsrc.sources.volume import CONNECTIVITY, VolumeGrid
 
 

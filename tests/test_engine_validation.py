@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from scipy import sparse
 
-from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats.corrections.scorers import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 

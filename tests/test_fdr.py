@@ -3,7 +3,7 @@
 import numpy as np
 from statsmodels.stats.multitest import multipletests
 
-from groupsrc.stats.fdr import fdr_bh
+from groupsrc.stats.corrections.fdr import fdr_bh
 
 
 def test_matches_statsmodels():

@@ -5,7 +5,7 @@ import pytest
 import statsmodels.api as sm
 from scipy import stats
 
-from groupsrc.stats import glm
+from groupsrc.stats.models import glm
 
 
 def test_one_sample_matches_scipy():

@@ -20,7 +20,7 @@ from conftest import copy_cohort
 from groupsrc.stats import inference as permutation
 from groupsrc.cli import main
 from groupsrc.inputs.settings import SCHEMA, read_settings
-from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats.corrections.scorers import TfceOptions
 from test_check import assert_refused, run_check
 
 

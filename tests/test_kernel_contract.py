@@ -31,11 +31,12 @@ import numpy as np
 import pytest
 import statsmodels.api as sm
 
-from groupsrc.stats import kernels, mixed_kernel
-from groupsrc.stats.kernels import OLSKernel, StatisticKernel
-from groupsrc.stats.mixed import MixedCore, lambda_of
-from groupsrc.stats.mixed_fit import fit_features
-from groupsrc.stats.mixed_kernel import MixedKernel
+from groupsrc.stats.models import ols as kernels
+from groupsrc.stats.models.mixed import kernel as mixed_kernel
+from groupsrc.stats.models.ols import OLSKernel, StatisticKernel
+from groupsrc.stats.models.mixed.model import MixedCore, lambda_of
+from groupsrc.stats.models.mixed.fit import fit_features
+from groupsrc.stats.models.mixed.kernel import MixedKernel
 
 from _mixed_data import simulate, statsmodels_reml, unbalanced_design
 

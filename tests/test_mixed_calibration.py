@@ -38,12 +38,12 @@ import pytest
 from scipy import ndimage, stats
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.clusters import check_adjacency
-from groupsrc.stats.corrections import make_correction, max_from
+from groupsrc.stats.corrections.clusters import check_adjacency
+from groupsrc.stats.corrections.scorers import make_correction, max_from
 from groupsrc.stats.inference import InferenceSpec, infer
-from groupsrc.stats.mixed import MixedCore
-from groupsrc.stats.mixed_fit import fit_features
-from groupsrc.stats.mixed_kernel import MixedKernel
+from groupsrc.stats.models.mixed.model import MixedCore
+from groupsrc.stats.models.mixed.fit import fit_features
+from groupsrc.stats.models.mixed.kernel import MixedKernel
 from groupsrc.stats.resampling import RTOL
 
 from _mixed_data import unbalanced_design
@@ -91,7 +91,7 @@ def null_outcomes(contrast, k, n_resamples, grid=None, n=16):
     """One null data set, one set of resampled maps, three readings:
     (max-stat rejects, cluster-mass rejects at forming p 0.01, the share of
     points whose own permutation p is <= ALPHA).  The corrections are the
-    package's (:mod:`groupsrc.stats.corrections`); ``test_outcomes_match_infer``
+    package's (:mod:`groupsrc.stats.corrections.scorers`); ``test_outcomes_match_infer``
     checks that this shortcut gives what :func:`infer` gives."""
     grid = grid or VolumeGrid.from_mask(np.ones(SHAPE, bool), np.eye(4))
     adj = check_adjacency(grid.adjacency("face"), grid.n_sources)

@@ -19,9 +19,9 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from groupsrc.stats import mixed_fit
-from groupsrc.stats import mixed_inference as mf
-from groupsrc.stats.mixed import MixedCore, MixedDesign, lower_index
+from groupsrc.stats.models.mixed import fit as mixed_fit
+from groupsrc.stats.models.mixed import inference as mf
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign, lower_index
 
 from _mixed_data import simulate, statsmodels_reml, unbalanced_design
 

@@ -113,9 +113,9 @@ def _score_z(y, X, g, L):
     Satterthwaite df of groupsrc (those df are checked in test_mixed_satterthwaite)."""
     from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
 
-    from groupsrc.stats.mixed import MixedCore, MixedDesign
-    from groupsrc.stats.mixed_fit import fit_features
-    from groupsrc.stats.mixed_kernel import MixedKernel
+    from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign
+    from groupsrc.stats.models.mixed.fit import fit_features
+    from groupsrc.stats.models.mixed.kernel import MixedKernel
     Z = np.ones((len(y), 1))
     Nc = np.linalg.svd(L[None, :])[2][1:].T
     null, _ = statsmodels_reml(y, SimpleNamespace(X=X @ Nc, Z=Z, groups=g))

@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 from scipy import stats
 
-from groupsrc.stats import mixed_fit
-from groupsrc.stats import mixed_inference as mf
-from groupsrc.stats.mixed import MixedCore, MixedDesign
+from groupsrc.stats.models.mixed import fit as mixed_fit
+from groupsrc.stats.models.mixed import inference as mf
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign
 
 
 def _fit(X, g, Y):

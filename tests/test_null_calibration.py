@@ -25,7 +25,7 @@ import pytest
 from scipy import ndimage, stats
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats.corrections.scorers import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 ALPHA = 0.05

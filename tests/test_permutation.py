@@ -21,7 +21,7 @@ from scipy import ndimage, sparse, stats
 from statsmodels.stats.multitest import multipletests
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.corrections import TfceOptions
+from groupsrc.stats.corrections.scorers import TfceOptions
 from groupsrc.stats.inference import run_inference
 
 STRUCT4 = ndimage.generate_binary_structure(4, 1)
@@ -409,7 +409,7 @@ def _tfce_reference(tvol, steps, E=0.5, H=2.0):
 
 def test_exact_sign_flip_tfce_equals_brute_force():
     # All 2**6 = 64 sign vectors; the TFCE maps of the reference come from the
-    # per-height ndimage definition above, not from groupsrc.stats.tfce.
+    # per-height ndimage definition above, not from groupsrc.stats.corrections.tfce.
     grid, Y = _small_problem(n=6, seed=2)
     adj = grid.adjacency("face")
     y64 = Y.astype(np.float64)
@@ -439,7 +439,7 @@ def test_map_by_map_and_stacked_labelling_agree(correction):
     single = run_inference(Y, np.ones((10, 1)), [1.0], grid.adjacency("face"), batch_size=1,
                            **kw)
     # labelling several maps at once must not change a single bit (the
-    # reproducibility rule in groupsrc.stats.kernels)
+    # reproducibility rule in groupsrc.stats.models.ols)
     for col in ("max_stat", "max_pos", "max_neg"):
         np.testing.assert_array_equal(stacked.null[col], single.null[col])
     np.testing.assert_array_equal(stacked.p_corrected, single.p_corrected)

@@ -1,10 +1,10 @@
-"""groupsrc.stats.perthread.PerThread: one value per thread, kept until cleared,
+"""groupsrc.stats.engine.perthread.PerThread: one value per thread, kept until cleared,
 never pickled (the project's own contract for work buffers, DEVELOPERS.md)."""
 
 import pickle
 import threading
 
-from groupsrc.stats.perthread import PerThread
+from groupsrc.stats.engine.perthread import PerThread
 
 
 def test_one_value_per_thread_made_once():

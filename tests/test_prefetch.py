@@ -1,4 +1,4 @@
-"""The prefetch hint of groupsrc.stats.prefetch: compiles, changes nothing.
+"""The prefetch hint of groupsrc.stats.engine.prefetch: compiles, changes nothing.
 
 A prefetch is a hint to the processor (LLVM's ``llvm.prefetch`` intrinsic,
 LLVM Language Reference Manual): it must not fault, even at the last element,
@@ -10,7 +10,7 @@ the pass that uses it.
 import numpy as np
 from numba import njit
 
-from groupsrc.stats import prefetch as pf
+from groupsrc.stats.engine import prefetch as pf
 
 
 @njit

@@ -1,4 +1,4 @@
-"""Compiled union-find labelling (groupsrc.stats.unionfind) against
+"""Compiled union-find labelling (groupsrc.stats.corrections.unionfind) against
 scipy.sparse.csgraph.connected_components (reference library) on random maps and
 random graphs; and the fused null scores against bincount sums over those components."""
 
@@ -7,8 +7,8 @@ import pytest
 from scipy import sparse
 from scipy.sparse.csgraph import connected_components
 
-from groupsrc.stats import unionfind
-from groupsrc.stats.clusters import _up_csr, check_adjacency, label_codes
+from groupsrc.stats.corrections import unionfind
+from groupsrc.stats.corrections.clusters import _up_csr, check_adjacency, label_codes
 
 
 def _random_graph(rng, n, density):
@@ -95,7 +95,7 @@ def test_maps_beyond_int32_indices_are_refused():
     # the compiled loops index points with int32 (numpy's int32 range, common practice)
     from scipy import sparse
 
-    from groupsrc.stats.corrections import make_correction
+    from groupsrc.stats.corrections.scorers import make_correction
     adj = sparse.csr_matrix((70_000, 70_000))
     with pytest.raises(ValueError, match="points a map may have"):
         make_correction("cluster-mass", "t", "two", (70_000, 40_000), adj, threshold=2.0)

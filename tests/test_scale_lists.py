@@ -14,12 +14,12 @@ import numpy as np
 import pytest
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats import exceedances, unionfind
-from groupsrc.stats.backends import NullJob, auto_batch, make_backend
-from groupsrc.stats.clusters import _up_csr
-from groupsrc.stats.corrections import make_correction
-from groupsrc.stats.exceedances import Exceedances, list_rows
-from groupsrc.stats.kernels import LIST_BLOCK, RES_BLOCK, OLSKernel
+from groupsrc.stats.corrections import exceedances, unionfind
+from groupsrc.stats.engine.backends import NullJob, auto_batch, make_backend
+from groupsrc.stats.corrections.clusters import _up_csr
+from groupsrc.stats.corrections.scorers import make_correction
+from groupsrc.stats.corrections.exceedances import Exceedances, list_rows
+from groupsrc.stats.models.ols import LIST_BLOCK, RES_BLOCK, OLSKernel
 
 from test_scale_labelling import _random_graph, _reference
 
@@ -134,7 +134,7 @@ def _null(job, backend="serial", workers=1, batch=40, m=150):
 @pytest.mark.parametrize("correction", ["cluster-mass", "cluster-extent"])
 @pytest.mark.parametrize("tails", ["two", "greater", "less"])
 def test_a_job_on_lists_equals_the_job_on_maps(correction, tails, monkeypatch):
-    monkeypatch.setattr("groupsrc.stats.kernels.FEATURE_CHUNK", 64)    # several chunks
+    monkeypatch.setattr("groupsrc.stats.models.ols.FEATURE_CHUNK", 64)    # several chunks
     listed = _job(correction, tails)
     assert listed.lists and listed.kernel.block == LIST_BLOCK
     maps = _job(correction, tails, lists=False, block=LIST_BLOCK)
@@ -150,7 +150,7 @@ def test_a_job_on_lists_equals_the_job_on_maps(correction, tails, monkeypatch):
 def test_overflowing_lists_fall_back_to_the_maps(monkeypatch):
     # room for about one point in 300: nearly every resample overflows, and is scored
     # from its recomputed map
-    monkeypatch.setattr("groupsrc.stats.kernels.FEATURE_CHUNK", 64)
+    monkeypatch.setattr("groupsrc.stats.models.ols.FEATURE_CHUNK", 64)
     ref = _null(_job("cluster-mass", "two", lists=False, block=LIST_BLOCK))
     monkeypatch.setattr(exceedances, "CAPACITY_DIVISOR", 300)
     job = _job("cluster-mass", "two")

@@ -1,4 +1,4 @@
-"""Bounded memory (groupsrc.stats.memory): a run whose per-participant data are twice
+"""Bounded memory (groupsrc.stats.engine.memory): a run whose per-participant data are twice
 the --memory setting gives the in-memory run's result bit for bit (the project's own
 promise, DESIGN.md: the result never depends on how the work is split); sizes and the
 refusal below the minimum."""
@@ -7,12 +7,12 @@ import numpy as np
 import pytest
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats import unionfind
-from groupsrc.stats.corrections import CORRECTIONS, TfceOptions
+from groupsrc.stats.corrections import unionfind
+from groupsrc.stats.corrections.scorers import CORRECTIONS, TfceOptions
 from groupsrc.stats.inference import Execution, InferenceSpec, infer
-from groupsrc.stats.kernels import OLSKernel
-from groupsrc.stats.memory import MemoryTooSmall, minimum, parse_size, plan
-from groupsrc.stats.reduction import _SourceReader, reduce_maps
+from groupsrc.stats.models.ols import OLSKernel
+from groupsrc.stats.engine.memory import MemoryTooSmall, minimum, parse_size, plan
+from groupsrc.stats.models.reduction import _SourceReader, reduce_maps
 
 
 def _problem(n=216, seed=0):
@@ -115,7 +115,7 @@ def test_scratch_raises_the_minimum_and_counts_every_thread():
 
 @pytest.mark.parametrize("offset", [0, 128])
 def test_reduction_reads_a_map_file_as_the_array_says(tmp_path, offset):
-    # the positioned reads of a whole-file map (groupsrc.stats.reduction) give W @ Y
+    # the positioned reads of a whole-file map (groupsrc.stats.models.reduction) give W @ Y
     # as numpy's own product over the same array (reference: numpy.tensordot in memory),
     # for a file with a header before the maps, a window of samples and uneven chunks
     rng = np.random.default_rng(3)

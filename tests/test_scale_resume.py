@@ -1,4 +1,4 @@
-"""Checkpoint and resume (groupsrc.stats.checkpoint, pipeline.checkpoint_folder).
+"""Checkpoint and resume (groupsrc.stats.engine.checkpoint, pipeline.checkpoint_folder).
 
 The promise checked is the project's own (DESIGN.md: a long run can be interrupted and
 resumed to the same result); no outside value is involved.  A run is killed with SIGKILL
@@ -27,7 +27,7 @@ from groupsrc.pipeline import checkpoint_folder
 WRAPPER = """
 import os, signal, sys
 import groupsrc.stats.inference as inference
-import groupsrc.stats.checkpoint as checkpoint
+import groupsrc.stats.engine.checkpoint as checkpoint
 inference.auto_batch = lambda *a, **k: 16
 checkpoint.FLUSH_SECONDS = 0.0
 kill_at, kill_in = int(os.environ.get("KILL_AT", "0")), os.environ.get("KILL_IN", "")
@@ -189,7 +189,7 @@ def test_resume_of_another_version_or_of_nothing_is_refused(cohort, reference, t
 
 
 def test_ctrl_c_then_resume_in_process(cohort, reference, tmp_path, capsys, monkeypatch):
-    import groupsrc.stats.checkpoint as checkpoint
+    import groupsrc.stats.engine.checkpoint as checkpoint
     import groupsrc.stats.inference as inference
     ref, cache = reference
     monkeypatch.setenv("GROUPSRC_CACHE_DIR", str(cache))

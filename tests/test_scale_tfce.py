@@ -1,4 +1,4 @@
-"""One-pass TFCE (groupsrc.stats.tfce / unionfind) against its definition.
+"""One-pass TFCE (groupsrc.stats.corrections.tfce / unionfind) against its definition.
 
 Smith & Nichols (2009, NeuroImage 44:83-98): TFCE(v) = integral_0^{x_v} e(h)^E h^H dh.
 Checks: the closed form of a flat cluster, e^E h^(H+1) / (H+1) (analytic, from the
@@ -14,7 +14,7 @@ import pytest
 from scipy import ndimage, sparse
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.tfce import tfce, tfce_batch
+from groupsrc.stats.corrections.tfce import tfce, tfce_batch
 
 
 def _chain(n):
@@ -130,7 +130,7 @@ def test_sort_down_orders_like_a_stable_sort(dtype):
     # the TFCE pass's radix sort against numpy's stable argsort (reference library):
     # largest first, ties in reverse position order; keys sharing their high bytes
     # (skipped passes), exact ties, and a single key
-    from groupsrc.stats.unionfind import _sort_down
+    from groupsrc.stats.corrections.unionfind import _sort_down
     rng = np.random.default_rng(3)
     utype = np.uint32 if dtype == np.float32 else np.uint64
     for vals in (rng.exponential(2.0, 5000).astype(dtype),

@@ -22,7 +22,7 @@ from scipy.sparse.csgraph import connected_components
 from groupsrc.sources import Hemisphere, SurfaceMesh
 from groupsrc.sources.surface import (euler_characteristic, icosphere, mesh_defects, mesh_edges,
                                       vertex_normals)
-from groupsrc.stats.clusters import label_clusters
+from groupsrc.stats.corrections.clusters import label_clusters
 
 
 @pytest.mark.parametrize("k", [0, 1, 2, 3])

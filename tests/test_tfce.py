@@ -1,7 +1,7 @@
 """TFCE against its defining sum (Smith & Nichols 2009, NeuroImage 44:83-98).
 
 TFCE(v) = integral over h of e(h)^E h^H dh, taken as the right-endpoint sum
-over heights h_k = k dh (the discretisation documented in groupsrc.stats.tfce); a
+over heights h_k = k dh (the discretisation documented in groupsrc.stats.corrections.tfce); a
 flat cluster of height h and extent e has the closed form e^E h^(H+1) / (H+1)
 for the integral (analytic, from the definition).
 """
@@ -11,7 +11,7 @@ import pytest
 from scipy import ndimage, sparse
 
 from groupsrc.sources import VolumeGrid
-from groupsrc.stats.tfce import tfce
+from groupsrc.stats.corrections.tfce import tfce
 
 
 def _chain(n):

@@ -386,7 +386,7 @@ def _decode(headers, ref, mask, progress, allocate=None):
     the cache's memory-mapped file, whose pages are handed back map by map).
     """
     from ..progress import per_item
-    from ..stats.pages import release
+    from ..stats.engine.pages import release
     each = per_item(progress)
     n_t = ref.shape[3]
     broken = {}

@@ -39,7 +39,7 @@ import numpy as np
 import pandas as pd
 from formulaic import Formula, model_matrix
 
-from ..stats.glm import check_design
+from ..stats.models.glm import check_design
 from .problems import ProblemList, closest
 
 ID = "participant_id"

@@ -47,7 +47,7 @@ class MixedModelDesign:
     layout: np.ndarray               # a label per participant: equal map layouts share it
 
     def stats_design(self):
-        from ..stats.mixed import MixedDesign
+        from ..stats.models.mixed.model import MixedDesign
         return MixedDesign(self.X.to_numpy(), self.Z, self.groups,
                            x_names=tuple(self.X.columns), z_names=tuple(self.z_names),
                            between=self.between, within=self.within, map_cols=self.map_cols,
@@ -126,7 +126,7 @@ def build_mixed_design(settings, design: Design, maps: pd.DataFrame, problems: P
 def _check_mixed(settings, X, names, Z, znames, slopes, within_col, covs, W, M, groups, N,
                  problems, where):
     """Every reason the mixed model cannot be fitted, each naming its culprit."""
-    from ..stats.mixed import MAX_RANDOM
+    from ..stats.models.mixed.model import MAX_RANDOM
     n, p = X.shape
     q = Z.shape[1]
     sizes = np.bincount(groups, minlength=N)

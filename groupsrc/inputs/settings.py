@@ -19,7 +19,7 @@ else:  # pragma: no cover
     import tomli as tomllib
 
 from ..sources import SurfaceMesh, VolumeGrid
-from ..stats.corrections import CORRECTIONS as _CORRECTIONS
+from ..stats.corrections.scorers import CORRECTIONS as _CORRECTIONS
 from ..stats.inference import SEED_LIMIT, TAILS
 from .problems import InputError, Problem, ProblemList, closest
 from .textfile import TextFileError, read_text

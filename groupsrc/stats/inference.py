@@ -1,6 +1,6 @@
 """Inference for one contrast: validate -> observed -> null -> result.
 
-:func:`infer` takes a statistic kernel (:mod:`.kernels`: the model fitted at
+:func:`infer` takes a statistic kernel (:mod:`.models.ols`: the model fitted at
 every source x sample and the contrast), the sources' adjacency, what to
 infer (:class:`InferenceSpec`) and how to run it (:class:`Execution`), and
 returns an :class:`~groupsrc.stats.results.InferenceResult`.
@@ -13,8 +13,8 @@ Method
   parametric p: the kernel.
 * Null: the rearrangements are generated from the seed alone, before any
   work; each resample's statistic map is scored by the correction
-  (:mod:`.corrections`) and its map-wide maximum kept (identity first).
-  Batches of resamples run on a backend (:mod:`.backends`); the result does
+  (:mod:`.corrections.scorers`) and its map-wide maximum kept (identity first).
+  Batches of resamples run on a backend (:mod:`.engine.backends`); the result does
   not depend on the batch size, the worker count or the backend.
 * Corrected p: the share of resamples whose maximum reaches the observed
   value, identity counted (Phipson & Smyth 2010); with exact enumeration
@@ -44,11 +44,12 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .backends import BACKENDS, NullJob, auto_batch, make_backend
-from .clusters import check_adjacency
-from .corrections import CORRECTIONS, TfceOptions, make_correction, max_from
-from .kernels import OLSKernel, StatisticKernel
-from .pages import trim
+from .engine.backends import BACKENDS, NullJob, auto_batch, make_backend
+from .corrections.clusters import check_adjacency
+from .corrections.scorers import CORRECTIONS, TfceOptions, make_correction, max_from
+from .models.base import StatisticKernel
+from .models.ols import OLSKernel
+from .engine.pages import trim
 from .results import InferenceResult, ResamplingRecord
 
 TAILS = ("two", "greater", "less")
@@ -59,7 +60,7 @@ NULL_COLUMNS = ["resample", "max_stat", "max_pos", "max_neg"]
 #: with progress reported, at least this many batches (batch sizes never change results),
 #: so that progress advances in steps of about a tenth
 PROGRESS_BATCHES = 10
-#: cluster corrections hold batches as supra-threshold lists (:mod:`.exceedances`) up to
+#: cluster corrections hold batches as supra-threshold lists (:mod:`.corrections.exceedances`) up to
 #: this forming p: about that share of a null map lies beyond the threshold, well within
 #: the lists' room of one point in eight; more liberal thresholds keep map batches
 LISTS_UP_TO_FORMING_P = 0.05

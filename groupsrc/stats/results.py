@@ -12,8 +12,8 @@ import numpy as np
 import pandas as pd
 
 from ..sources import TimeAxis, VolumeGrid
-from .corrections import TfceOptions
-from .kernels import FitInfo
+from .corrections.scorers import TfceOptions
+from .models.base import FitInfo
 
 
 @dataclass(frozen=True)
@@ -90,7 +90,7 @@ class InferenceResult:
     enhanced : (n_sources, n_times) float32 or None
         The observed TFCE map.
     scale : "statistic" or "z"
-        What ``statistic`` holds (see :class:`~groupsrc.stats.kernels.Observed`).
+        What ``statistic`` holds (see :class:`~groupsrc.stats.models.ols.Observed`).
     test_statistic, df_map : (n_sources, n_times) or None
         With ``scale = "z"``: the t or F, and its per-feature denominator df.
     """

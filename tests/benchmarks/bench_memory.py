@@ -7,7 +7,7 @@ written once as a memory-mapped float32 array on disk (the loading cache's
 layout); a two-group contrast of the within-participant difference with
 cluster-mass correction.  Each configuration runs in a fresh process (so the
 peak resident set, VmHWM, is its own): the reduction, the model and the
-resampling exactly as the pipeline runs them (groupsrc.stats.memory.plan,
+resampling exactly as the pipeline runs them (groupsrc.stats.engine.memory.plan,
 reduce_maps, OLSKernel, infer).  "data" is the per-participant array
 (40 x sources x samples x 4 bytes), the size the targets are stated in.
 Printed: peak, data, the interpreter's own footprint after imports, and the
@@ -37,10 +37,10 @@ def hwm():
 path, shape, memory, resamples = sys.argv[1], tuple(json.loads(sys.argv[2])), json.loads(sys.argv[3]), int(sys.argv[4])
 from groupsrc.sources import VolumeGrid
 from groupsrc.stats.inference import Execution, InferenceSpec, infer
-from groupsrc.stats.kernels import OLSKernel
-from groupsrc.stats.memory import plan
-from groupsrc.stats.reduction import reduce_maps
-import groupsrc.stats.unionfind  # compiled code loaded, as in a run
+from groupsrc.stats.models.ols import OLSKernel
+from groupsrc.stats.engine.memory import plan
+from groupsrc.stats.models.reduction import reduce_maps
+import groupsrc.stats.corrections.unionfind  # compiled code loaded, as in a run
 base = dict(hwm())["VmRSS"]
 Y = np.memmap(path, dtype=np.float32, mode="r", shape=shape)
 n = shape[0] // 2
@@ -52,7 +52,7 @@ assert grid.n_sources == shape[1], grid.n_sources
 W = np.zeros((n, 2 * n)); W[np.arange(n), 2 * np.arange(n)] = 1; W[np.arange(n), 2 * np.arange(n) + 1] = -1
 X = np.zeros((n, 2)); X[: n // 2, 0] = 1; X[n // 2:, 1] = 1
 F = shape[1] * shape[2]
-from groupsrc.stats.corrections import CORRECTIONS
+from groupsrc.stats.corrections.scorers import CORRECTIONS
 p = plan(memory, n, F, workers=2, scratch_per_thread=CORRECTIONS["cluster-mass"].scratch_bytes)
 t0 = time.perf_counter()
 data = reduce_maps(Y, W, slice(0, shape[2]), chunk_bytes=p.chunk_bytes, out=p.array((n,) + shape[1:]))
@@ -89,8 +89,8 @@ def main():
           f"{data / MiB:.0f} MiB, maps on disk {2 * data / MiB:.0f} MiB; "
           f"load average {os.getloadavg()[0]:.2f}")
     out = {}
-    from groupsrc.stats.memory import minimum
-    from groupsrc.stats.corrections import CORRECTIONS
+    from groupsrc.stats.engine.memory import minimum
+    from groupsrc.stats.corrections.scorers import CORRECTIONS
     low = minimum(S * T, scratch=2 * CORRECTIONS["cluster-mass"].scratch_bytes)
     for label, memory in (("in memory", None), ("--memory data/2", max(data // 2, low)),
                           ("--memory minimum", low)):

@@ -36,13 +36,13 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
 
 from groupsrc.inputs.mixed_design import map_layout                       # noqa: E402
 from groupsrc.sources import VolumeGrid                                    # noqa: E402
-from groupsrc.stats.backends import NullJob                                # noqa: E402
-from groupsrc.stats.corrections import make_correction                     # noqa: E402
-from groupsrc.stats.kernels import OLSKernel                               # noqa: E402
-from groupsrc.stats.mixed import MixedCore, MixedDesign                    # noqa: E402
-from groupsrc.stats.mixed_fit import fit_features                          # noqa: E402
-from groupsrc.stats.mixed_inference import contrast_statistics             # noqa: E402
-from groupsrc.stats.mixed_kernel import MixedKernel                        # noqa: E402
+from groupsrc.stats.engine.backends import NullJob  # noqa: E402
+from groupsrc.stats.corrections.scorers import make_correction  # noqa: E402
+from groupsrc.stats.models.ols import OLSKernel  # noqa: E402
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign  # noqa: E402
+from groupsrc.stats.models.mixed.fit import fit_features  # noqa: E402
+from groupsrc.stats.models.mixed.inference import contrast_statistics  # noqa: E402
+from groupsrc.stats.models.mixed.kernel import MixedKernel  # noqa: E402
 
 
 def cohort(seed=0):

@@ -27,7 +27,7 @@ from scipy import ndimage, stats
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_cluster_mass import workload  # noqa: E402
 
-from groupsrc.stats.corrections import TfceOptions  # noqa: E402
+from groupsrc.stats.corrections.scorers import TfceOptions  # noqa: E402
 from groupsrc.stats.inference import run_inference  # noqa: E402
 
 

@@ -31,8 +31,8 @@ from numba import njit
 sys.path.insert(0, str(Path(__file__).parent))
 from bench_cluster_mass import workload  # noqa: E402
 
-from groupsrc.stats import unionfind  # noqa: E402
-from groupsrc.stats.tfce import _csr  # noqa: E402
+from groupsrc.stats.corrections import unionfind  # noqa: E402
+from groupsrc.stats.corrections.tfce import _csr  # noqa: E402
 
 _NOT_YET = np.int32(2 ** 31 - 1)
 

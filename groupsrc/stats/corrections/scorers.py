@@ -35,8 +35,8 @@ from . import unionfind
 from .clusters import _up_csr, cluster_scores, components_by_sign, cluster_table
 from .exceedances import Exceedances
 from .fdr import fdr_bh
-from .perthread import PerThread
-from .resampling import null_p_values
+from ..engine.perthread import PerThread
+from ..resampling import null_p_values
 from .tfce import E_DEFAULT, H_DEFAULT, check_parameters
 from .tfce import tfce as tfce_map
 from .tfce import tfce_batch
@@ -62,7 +62,7 @@ class TfceOptions:
         check_parameters(self.extent_power, self.height_power, self.steps, self.step)
 
     def keywords(self) -> dict:
-        """The arguments of :func:`groupsrc.stats.tfce.tfce`."""
+        """The arguments of :func:`groupsrc.stats.corrections.tfce.tfce`."""
         return {"E": self.extent_power, "H": self.height_power, "steps": self.steps,
                 "dh": self.step}
 

@@ -45,7 +45,7 @@ participant) and ``y'y``.  With the Woodbury identity
 so a criterion evaluation costs O(N q^3 + N q^2 p^2 + p^3) per feature,
 whatever the number of maps.  The sums over participants of design tensors
 times per-feature coefficients are matrix products (``DH @ K``), and every
-other step is element-wise over all features at once (:mod:`.mixed_linalg`).
+other step is element-wise over all features at once (:mod:`.linalg`).
 
 Derivatives (analytic).  With ``Gt_i = Z_i'Vbar_i^{-1}Z_i``, ``Ht_i =
 Z_i'Vbar_i^{-1}X_i``, ``P_i = Ht_i C Ht_i'``, ``g_i = Z_i'Vbar_i^{-1}(y_i - X_i
@@ -76,7 +76,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import sparse
 
-from . import mixed_linalg as la
+from . import linalg as la
 
 #: largest number of random-effect columns (intercept + slopes)
 MAX_RANDOM = 3

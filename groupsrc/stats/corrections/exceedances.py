@@ -8,7 +8,7 @@ float32 map; the scorer (:func:`.unionfind.listed_cluster_extremes`) joins the
 listed points.  Two gains: no map is written and read back (the scorer's pass
 over every point of every map), and a batch costs ``capacity x 8`` bytes per
 resample instead of ``4 x n_features``, so batches -- and the product blocks
-of :mod:`.kernels` -- can be four times larger in the same memory.
+of :mod:`..models.ols` -- can be four times larger in the same memory.
 
 Layout.  ``idx`` / ``val`` have one row per resample of the batch; a row's
 ``capacity`` slots are split into ``parts`` consecutive regions, one per run
@@ -17,9 +17,9 @@ sharing a batch write disjoint slots.  ``count[j, i]`` is how many points part
 ``j`` listed for resample ``i``, in ascending flat order: the regions read one
 after another give the row's points in flat order, the order of the scorer's
 sums.  A region that fills up sets its count to ``OVERFLOW``; the scorer then
-leaves that resample to the map-based path (:class:`.backends.NullJob`).
+leaves that resample to the map-based path (:class:`..engine.backends.NullJob`).
 The default capacity, one eighth of the features, is used up to a forming p of
-0.05 (:data:`.inference.LISTS_UP_TO_FORMING_P`; more liberal thresholds keep map
+0.05 (:data:`..inference.LISTS_UP_TO_FORMING_P`; more liberal thresholds keep map
 batches), where about a twentieth of a null map lies beyond the threshold.  A
 resample that still overflows costs time (a product block per run of up to 16
 overflowed resamples) and, beyond the ``--memory`` plan, one buffer of up to 16

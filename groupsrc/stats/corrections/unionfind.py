@@ -57,7 +57,7 @@ land at random places of the map): the pass works on time-major indices
 (``t * n_sources + s``), so a point's spatial neighbours sit in the same time
 slice; the union-find is indexed by point, so the parent of a neighbour is in
 the cache line its visit check reads anyway; and the lines of the point
-visited ``_AHEAD`` steps later are prefetched (:mod:`.prefetch`), so those
+visited ``_AHEAD`` steps later are prefetched (:mod:`..engine.prefetch`), so those
 reads overlap; a root keeps its open tree node in its parent slot.  Each step
 gave identical values; together about 3x faster per map than a rank-indexed
 pass on the source-major layout
@@ -72,7 +72,7 @@ import numpy as np
 from numba import njit
 
 from .exceedances import OVERFLOW
-from .prefetch import prefetch
+from ..engine.prefetch import prefetch
 
 _JIT = dict(nogil=True, cache=True)
 #: the TFCE pass's parent value of a point not (yet) visited
@@ -446,6 +446,41 @@ def _close_node(nodes, nd, g, parent, E):
 
 
 @njit(**_JIT)
+def _list_points(x, scale, two_sided, T, par, leaf, vals, k32, narrow):
+    """The listing pass of :func:`_tfce_tree`: in time-major order ``w = t * S + s``,
+    reset ``par[w]`` and list the points of either sign (one sign unless
+    ``two_sided``) in ``leaf`` with their sort keys (``-|x|`` for positive points,
+    which sort first) in ``k32`` (``narrow``: float32 keys) or ``vals``; return the
+    number listed and the largest height."""
+    F = x.size
+    S = F // T
+    top = 0.0
+    K = 0
+    for t in range(T):
+        for s in range(S):
+            w = t * S + s
+            par[w] = _NOT_YET
+            xv = scale * x[s * T + t]
+            g = 0
+            if xv > 0.0:
+                g = 1
+            elif two_sided and xv < 0.0:
+                g = -1
+                xv = -xv
+            if g != 0:
+                leaf[K] = w
+                kv = -xv if g > 0 else xv         # positive points sort first
+                if narrow:
+                    k32[K] = kv
+                else:
+                    vals[K] = kv
+                K += 1
+                if xv > top:
+                    top = xv
+    return K, top
+
+
+@njit(**_JIT)
 def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     """Build the component tree of one map ``x`` (F,); return (K, nn, n_pos).
 
@@ -470,7 +505,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     root holds ``-1 - node`` of its open node, which keeps the component's size
     until it closes (a point alone, with no node yet, is its own parent), so the
     root's one line gives both.  The lines of the point ``_AHEAD`` visits later
-    and of its neighbours are prefetched (:mod:`.prefetch`).
+    and of its neighbours are prefetched (:mod:`..engine.prefetch`).
     """
     a, par, nodes, leaf, vals, scratch, P = ws
     F = x.size
@@ -482,29 +517,7 @@ def _tfce_tree(x, scale, two_sided, adj_ptr, adj_idx, T, E, H, steps, dh, ws):
     # time-major indices w = t * S + s: the neighbours of a point in space are near
     # it in memory (one time slice); x stays source-major.  One pass in w order
     # lists the visited points (``leaf``) with their heights (``vals``).
-    top = 0.0
-    K = 0
-    for t in range(T):
-        for s in range(S):
-            w = t * S + s
-            par[w] = _NOT_YET
-            xv = scale * x[s * T + t]
-            g = 0
-            if xv > 0.0:
-                g = 1
-            elif two_sided and xv < 0.0:
-                g = -1
-                xv = -xv
-            if g != 0:
-                leaf[K] = w
-                kv = -xv if g > 0 else xv         # positive points sort first
-                if narrow:
-                    k32[K] = kv
-                else:
-                    vals[K] = kv
-                K += 1
-                if xv > top:
-                    top = xv
+    K, top = _list_points(x, scale, two_sided, T, par, leaf, vals, k32, narrow)
     if K == 0:
         return 0, 0, 0
     step = 0.0

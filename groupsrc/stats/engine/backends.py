@@ -9,7 +9,7 @@ neg)`` -- in any order; the caller stores results by ``lo``.
 Contract (``tests/test_backend_contract.py``): for one job every backend,
 worker count and batch size gives the serial backend's null distribution
 bit for bit.  That holds because a resample's arithmetic never depends on
-its batch (see :mod:`.kernels`) and each batch's result is stored at its
+its batch (see :mod:`..models.ols`) and each batch's result is stored at its
 own place.  A backend that runs batches elsewhere (another process, another
 machine, a checkpointed run) must keep both properties.
 
@@ -26,7 +26,7 @@ dask      whole batches as tasks on a Dask distributed cluster: a running
           data, correction) is scattered to every worker once per contrast
 ======== ====================================================================
 
-BLAS threads: every product runs under :func:`.kernels.one_blas_thread`, and
+BLAS threads: every product runs under :func:`.blas.one_blas_thread`, and
 the process and Dask workers run one task per process, so ``workers``
 processes never start ``workers x cores`` BLAS threads between them.
 """
@@ -38,8 +38,8 @@ from abc import ABC, abstractmethod
 
 import numpy as np
 
-from .exceedances import bytes_per_resample
-from .kernels import LIST_BLOCK, RES_BLOCK
+from ..corrections.exceedances import bytes_per_resample
+from ..models.base import LIST_BLOCK, RES_BLOCK
 from .perthread import PerThread
 
 #: memory budget (bytes) for the resampled maps held at once (all workers together)
@@ -52,11 +52,11 @@ class NullJob:
     A batch is held in one buffer (:meth:`buffer`): its resampled maps, or -- for a
     correction that scores supra-threshold points only (``correction.lists``) and a
     kernel that can list them (``kernel.lists``) -- the lists of
-    :mod:`.exceedances`, with the kernel's product blocks set to ``LIST_BLOCK``
+    :mod:`..corrections.exceedances`, with the kernel's product blocks set to ``LIST_BLOCK``
     rows (as they are for a correction that needs no maps at all, max-stat).  A
     resample whose list overflows is scored from its map, recomputed here
     (:meth:`scores`), so every resample gets the same score either way.  ``lists =
-    False`` keeps map batches (:func:`.inference.infer` asks for it when the forming
+    False`` keeps map batches (:func:`..inference.infer` asks for it when the forming
     threshold is so liberal that lists would overflow often).
     """
 
@@ -199,7 +199,7 @@ class ThreadBackend(Backend):
 
     One buffer instead of one per worker (or two alternating) keeps the resampled
     maps held at once to one batch, and both stages use every thread.  BLAS stays on
-    one thread for the whole run (:func:`.kernels.one_blas_thread`), so every
+    one thread for the whole run (:func:`.blas.one_blas_thread`), so every
     product has the serial backend's shape and thread count.
     """
 
@@ -210,7 +210,7 @@ class ThreadBackend(Backend):
             return SerialBackend().run(job, batches, collect)
         from concurrent.futures import ThreadPoolExecutor
 
-        from .kernels import one_blas_thread
+        from .blas import one_blas_thread
         J = self.workers
         B = max(b - a for a, b in batches)
         buf = job.buffer(B, parts=J)

@@ -6,7 +6,7 @@ A run's checkpoint is one folder (the pipeline decides where; see
 * ``manifest.json`` -- checkpoint format, groupsrc version, and the run's
   *fingerprint*: the sha256 of every input, every setting after the
   command-line overrides (resamples, seed), and the contrasts;
-* per contrast ``<name>.json`` -- the :class:`~.results.ResamplingRecord`
+* per contrast ``<name>.json`` -- the :class:`~..results.ResamplingRecord`
   fields fixed before resampling starts (seed, kind, resamples, exact,
   batch size, Freedman-Lane), and ``<name>.npz`` -- the finished resamples'
   ``max_pos`` / ``max_neg`` and which resamples are done.
@@ -16,7 +16,7 @@ and at most every ``FLUSH_SECONDS`` (and always when a contrast finishes),
 so a kill at any instant leaves a consistent checkpoint that is at most a
 few batches behind.  Resuming reruns only the missing batches with the
 recorded batch size; because a resample's arithmetic never depends on its
-batch, worker or backend (:mod:`.kernels`), the resumed null distribution --
+batch, worker or backend (:mod:`..models.ols`), the resumed null distribution --
 and so every output -- is the uninterrupted run's, bit for bit.
 
 A resume is refused (:class:`CheckpointError`, naming what differs) when the
@@ -34,7 +34,7 @@ from pathlib import Path
 
 import numpy as np
 
-from ..atomic import atomic_path, write_text
+from ...atomic import atomic_path, write_text
 
 #: layout version of the checkpoint files
 FORMAT = 1

@@ -1,8 +1,8 @@
 """The mixed-model statistic kernel: observed maps and their resampled copies.
 
-One contrast ``L`` (one row: t; k rows: F) of a :class:`~.mixed_fit.MixedFit`
-behind the contract of :mod:`.kernels`.  The observed statistic is the z of
-equal p (see :mod:`.mixed_inference`) of the contrast scored at the null
+One contrast ``L`` (one row: t; k rows: F) of a :class:`~.fit.MixedFit`
+behind the contract of :mod:`..ols`.  The observed statistic is the z of
+equal p (see :mod:`.inference`) of the contrast scored at the null
 model's variance components (below); the full fit's t or F and its
 per-feature Satterthwaite df come along in ``Observed.test_statistic`` and
 ``df_map``.
@@ -102,14 +102,14 @@ from __future__ import annotations
 import numpy as np
 from scipy import sparse, special
 
-from . import mixed_linalg as la
-from .kernels import FEATURE_CHUNK, RES_BLOCK, FitInfo, Observed, StatisticKernel, one_blas_thread
-from .perthread import PerThread
-from .mixed import MixedCore, MixedDesign
-from .mixed_fit import MixedFit, fit_features
-from .mixed_inference import (contrast_statistics, score_statistics, scored_z, t_switch,
-                              z_of_f)
-from .resampling import Rearrangements, count_distinct_permutations, permutations, sign_flips
+from . import linalg as la
+from ..base import FEATURE_CHUNK, RES_BLOCK, FitInfo, Observed, StatisticKernel
+from ...engine.blas import one_blas_thread
+from ...engine.perthread import PerThread
+from .model import MixedCore, MixedDesign
+from .fit import MixedFit, fit_features
+from .inference import contrast_statistics, score_statistics, scored_z, t_switch, z_of_f
+from ...resampling import Rearrangements, count_distinct_permutations, permutations, sign_flips
 
 #: fewest distinct whole-participant permutations before sign flips are used instead
 MIN_PERMUTATIONS = 1000
@@ -385,7 +385,7 @@ class MixedKernel(StatisticKernel):
         return z_of_f(Fv.astype(np.float64), k, nu).astype(np.float32)
 
     def resampled(self, lo, hi, out=None, part=None):
-        """z maps of resamples lo..hi-1 (see the contract in :mod:`.kernels`)."""
+        """z maps of resamples lo..hi-1 (see the contract in :mod:`..ols`)."""
         B = hi - lo
         F, fc = self.n_features, self.fc
         ks = range(lo // RES_BLOCK, (hi - 1) // RES_BLOCK + 1)

@@ -30,8 +30,8 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import special, stats
 
-from . import mixed_linalg as la
-from .mixed_fit import FIT_CHUNK, MixedFit
+from . import linalg as la
+from .fit import FIT_CHUNK, MixedFit
 
 
 def variance_components(fit: MixedFit, Y, chunk=FIT_CHUNK) -> dict:

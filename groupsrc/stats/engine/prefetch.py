@@ -3,7 +3,7 @@
 ``prefetch(array, i)`` asks the processor to bring the cache line holding
 ``array[i]`` (1-D, C-contiguous) into cache and returns at once; it never
 faults and changes no value.  Loops whose order of visits is known ahead
-(TFCE's pass in height order, :mod:`.unionfind`) issue it a few iterations
+(TFCE's pass in height order, :mod:`..corrections.unionfind`) issue it a few iterations
 early, so the random reads that dominate them overlap instead of waiting one
 after another.
 

@@ -7,7 +7,7 @@ Model of the working set of one run (bytes; ``F`` features, ``n`` participants):
   estimate, standard error, effect, p-values, labels; float64);
 * the batch in hand (one buffer, shared by the threads of the threads backend):
   its resampled maps, ``B x F x 4``, or for cluster mass and extent their
-  supra-threshold lists, ``B x F`` (:mod:`.exceedances`, in blocks of 64
+  supra-threshold lists, ``B x F`` (:mod:`..corrections.exceedances`, in blocks of 64
   resamples: one block of lists takes the bytes of 16 maps);
 * the scorers' scratch arrays, per scoring thread: ``Correction.scratch_bytes``
   per feature (at most 17 for cluster mass / extent, 84 for TFCE, 0 otherwise);
@@ -22,7 +22,7 @@ top.  The smallest bound that works holds one product block of
 ``RES_BLOCK`` resampled maps (or of ``LIST_BLOCK`` resamples' lists, the same
 bytes) per buffer plus the per-feature results; below
 it :class:`MemoryTooSmall` says the minimum.  Without ``--memory`` the
-defaults of :mod:`.backends` and :mod:`.reduction` apply and every array is
+defaults of :mod:`.backends` and :mod:`..models.reduction` apply and every array is
 in memory.
 """
 
@@ -39,7 +39,7 @@ from pathlib import Path
 import numpy as np
 
 from .backends import worker_count
-from .kernels import LIST_BLOCK, RES_BLOCK
+from ..models.base import LIST_BLOCK, RES_BLOCK
 from .pages import release  # noqa: F401  (re-exported)
 
 #: bytes per feature held outside the batches (observed maps, results and their

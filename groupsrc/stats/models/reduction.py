@@ -35,11 +35,11 @@ def reduce_maps(Y, W, samples: slice, *, chunk_bytes=None, out=None,
 
     ``chunk_bytes`` bounds the float64 working copy of each source chunk
     (default ``8 x CHUNK_ELEMENTS``); ``out`` receives the result (e.g. an
-    array on disk, :mod:`.memory`); ``progress(done, total)`` is told the
+    array on disk, :mod:`..engine.memory`); ``progress(done, total)`` is told the
     sources done.  Pages of memory-mapped inputs and outputs are handed back
     after each chunk, so the resident set stays at about one chunk.
     """
-    from .pages import release
+    from ..engine.pages import release
     W = np.asarray(W, np.float64)
     n_maps, S, _ = Y.shape
     T = len(range(*samples.indices(Y.shape[2])))

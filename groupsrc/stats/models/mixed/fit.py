@@ -1,8 +1,8 @@
-"""Fitting the mixed model at every feature at once (inference: :mod:`.mixed_inference`).
+"""Fitting the mixed model at every feature at once (inference: :mod:`.inference`).
 
 Optimizer
 ---------
-Newton's method on the profiled criterion of :mod:`.mixed` in ``theta`` (the
+Newton's method on the profiled criterion of :mod:`.model` in ``theta`` (the
 entries of ``Lambda``), for all features at once, with the exact gradient
 and Hessian:
 
@@ -36,9 +36,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import mixed_linalg as la
-from .kernels import one_blas_thread
-from .mixed import MixedCore, Stats, canonical_theta, lower_index
+from . import linalg as la
+from ...engine.blas import one_blas_thread
+from .model import MixedCore, Stats, canonical_theta, lower_index
 
 #: features per block of the fit (arrays of N x block float64 stay in cache)
 FIT_CHUNK = 4096
