@@ -67,6 +67,10 @@ ESTIMATIONS = ("reml", "ml")
 MODELS = ("glm", "mixed")
 
 
+def _unit_text(v) -> bool:
+    return 0 < len(v.strip()) <= 24 and v.isprintable()
+
+
 def _gifti_name(v) -> bool:
     return v.strip().lower().endswith(".gii")
 
@@ -140,6 +144,10 @@ SCHEMA = {
         "atlas_right": Key(str, None, "GIfTI label file of the right hemisphere as atlas",
                            _gifti_name, "must name a GIfTI label file (.gii)",
                            'e.g. atlas_right = "template/right.label.gii"'),
+        "unit": Key(str, None, "unit of the map values, e.g. \"nA m\"; shown in axis labels, "
+                    "table headers and the methods text", _unit_text,
+                    "must be a short unit name (1 to 24 printable characters, no tab or "
+                    "line break)", 'e.g. unit = "nA m"'),
     },
     "model": {
         "between": Key(str, "1", "Wilkinson right-hand side over participants columns"),

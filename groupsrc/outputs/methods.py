@@ -1,90 +1,149 @@
-"""The methods paragraph, filled from one run's numbers, with its references.
+"""The methods text, filled from one run's records, with its references.
 
+Four paragraphs -- data, model, inference, effect sizes -- then a short
+version and the references, numbered in the order the text first cites them.
+Every sentence is built from what the run recorded: the analysis summary
+(cohort, window, settings, the mixed model's fit counts) and each contrast's
+record (its ``summary.json``: statistic, df, scheme, resamples, thresholds,
+reported clusters, and the fields the stats stage adds, such as
+``variance_groups``).  The sentences themselves are tables in
+:mod:`.methods_phrases`, keyed by those fields; this module only assembles.
 Only the references of methods this run used are listed.
 """
 
 from __future__ import annotations
 
-REFERENCES = {
-    "cluster": "Maris E, Oostenveld R (2007). Nonparametric statistical testing of EEG- and "
-               "MEG-data. J Neurosci Methods 164:177-190.",
-    "tfce": "Smith SM, Nichols TE (2009). Threshold-free cluster enhancement: addressing problems "
-            "of smoothing, threshold dependence and localisation in cluster inference. "
-            "NeuroImage 44:83-98.",
-    "permutation": "Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation "
-                   "inference for the general linear model. NeuroImage 92:381-397.",
-    "pvalues": "Phipson B, Smyth GK (2010). Permutation p-values should never be zero: "
-               "calculating exact p-values when permutations are randomly drawn. "
-               "Stat Appl Genet Mol Biol 9:39.",
-    "fdr": "Benjamini Y, Hochberg Y (1995). Controlling the false discovery rate: a practical and "
-           "powerful approach to multiple testing. J R Stat Soc B 57:289-300.",
-    "hedges": "Hedges LV (1981). Distribution theory for Glass's estimator of effect size and "
-              "related estimators. J Educ Stat 6:107-128.",
-    "lme4": "Bates D, Maechler M, Bolker B, Walker S (2015). Fitting linear mixed-effects models "
-            "using lme4. J Stat Softw 67(1):1-48.",
-    "satterthwaite": "Satterthwaite FE (1946). An approximate distribution of estimates of "
-                     "variance components. Biometrics Bulletin 2:110-114.",
-    "lmertest": "Kuznetsova A, Brockhoff PB, Christensen RHB (2017). lmerTest package: tests in "
-                "linear mixed effects models. J Stat Softw 82(13):1-26.",
-    "fai": "Fai AHT, Cornelius PL (1996). Approximate F-tests of multiple degree of freedom "
-           "hypotheses in generalized least squares analyses of unbalanced split-plot "
-           "experiments. J Stat Comput Simul 54:363-378.",
-    "multilevel": "Winkler AM, Webster MA, Vidaurre D, Nichols TE, Smith SM (2015). Multi-level "
-                  "block permutation. NeuroImage 123:253-268.",
-    "freedman": "Freedman D, Lane D (1983). A nonstochastic interpretation of reported "
-                "significance levels. J Bus Econ Stat 1:292-298.",
-    "leverage": "Davidson R, Flachaire E (2008). The wild bootstrap, tamed at last. "
-                "J Econometrics 146:162-169.",
-    "westfall": "Westfall J, Kenny DA, Judd CM (2014). Statistical power and optimal design in "
-                "experiments in which samples of participants respond to samples of stimuli. "
-                "J Exp Psychol Gen 143:2020-2045.",
-}
+import re
 
-#: the mixed model's resampling, what is held fixed and why the test stays valid
-MIXED_RESAMPLING = (
-    "For the mixed-model contrasts the observed data and every rearrangement were scored "
-    "alike: at each source and sample the variance components were held at the REML "
-    "estimates of the model without the tested effect (fitted once), and each data set "
-    "re-estimated the fixed effects (generalized least squares) and the residual variance at "
-    "those variance components, giving the t or F and its z (through Satterthwaite df "
-    "computed once from that fit). The rearrangements move whole participants only "
-    "{multilevel}: participants' residual vectors under the model without the tested effect "
-    "(Freedman-Lane {freedman}) are exchangeable or symmetric, and variance components "
-    "estimated without the tested effect describe every rearrangement alike, so holding them "
-    "fixed keeps the test valid (it only decides how efficiently each participant's maps are "
-    "combined); estimates that had seen the tested effect would not, and would inflate the "
-    "maximum statistic. {moved}No model is refitted per rearrangement. Estimates, standard "
-    "errors, t, df and uncorrected p of the maps are those of the full model's own fit.")
-
-#: what the mixed model's rearrangements move, with nuisance terms (leverage-adjusted)
-MIXED_ADJUSTED = (
-    "Where the model has terms besides the tested effect, sign flips move "
-    "leverage-adjusted residuals: each participant's residual vector, in the metric of the "
-    "model's covariance, multiplied by (I - H_ii)^(-1/2), where H_ii is that participant's "
-    "block of the hat matrix of the model without the tested effect {leverage}; this undoes "
-    "the shrinkage of the residuals by the nuisance fit, which otherwise makes tests with few "
-    "participants liberal. The observed statistic is computed from the data as they are and "
-    "counts as the identity rearrangement. ")
+from .methods_phrases import (CORRECTION_SHORT, CORRECTION_TEXT, COUNT_TEXT, DF_RULE_TEXT,
+                              EFFECT_SIZE_SHORT, EFFECT_SIZE_TEXT, MEANING, MIXED_ADJUSTED,
+                              MIXED_RESAMPLING, NEIGHBOUR_TEXT, REFERENCES, STATISTIC_TEXT,
+                              SURFACE_NEIGHBOUR_TEXT, TAILS_TEXT, contrast_kind,
+                              effect_size_key, fmt_df, join, variance_groups_text)
 
 
-CORRECTION_TEXT = {
-    "cluster-mass": "cluster-mass inference over space and time (the sum of the statistic over "
-                    "each connected supra-threshold component)",
-    "cluster-extent": "cluster-extent inference over space and time (the number of source x time "
-                      "points in each connected supra-threshold component)",
-    "tfce": "threshold-free cluster enhancement (TFCE) over space and time",
-    "max-stat": "the maximum statistic over all sources and samples",
-    "fdr": "the false discovery rate procedure over all sources and samples",
-    "none": "no correction for multiple comparisons",
-}
+class _Citations:
+    """Numbers references in the order of first citation."""
 
-TAILS_TEXT = {"two": "two-sided", "greater": "one-sided (positive effects)",
-              "less": "one-sided (negative effects)"}
-NEIGHBOUR_TEXT = {"face": "face (6-connected)", "edge": "face and edge (18-connected)",
-                  "vertex": "face, edge and corner (26-connected)"}
-#: neighbour kinds on a surface (mesh edges; hemispheres never joined)
-SURFACE_NEIGHBOUR_TEXT = {"edge": "mesh-edge (vertices joined by a triangle edge, the two "
-                                  "hemispheres never joined)"}
+    def __init__(self):
+        self.used = []
+
+    def __call__(self, key):
+        if key not in self.used:
+            self.used.append(key)
+        return f"[{self.used.index(key) + 1}]"
+
+    def fill(self, text: str) -> str:
+        """Replace every ``{key}`` of a phrase by its citation number, in reading order."""
+        return re.sub(r"\{(\w+)\}",
+                      lambda m: self(m.group(1)) if m.group(1) in REFERENCES else m.group(0),
+                      text)
+
+
+def _spec(summary, c) -> dict:
+    """The contrast's specification from the settings (what it means)."""
+    for spec in summary.get("settings", {}).get("contrasts") or []:
+        if spec.get("name") == c["name"]:
+            return spec
+    return {"within": c.get("within"), "weights": c.get("weights")}
+
+
+def _unit(summary) -> str | None:
+    return (summary.get("settings", {}).get("cohort") or {}).get("unit") or None
+
+
+def _statistic(c) -> str:
+    return c.get("statistic") or c["kind"]
+
+
+# ----------------------------------------------------------------------------
+# paragraphs
+# ----------------------------------------------------------------------------
+
+def _space_text(summary, coh):
+    space = summary.get("space", {})
+    if space.get("kind") == "surface":
+        hemis = [h["name"] for h in space.get("hemispheres", [])]
+        vox = space.get("volume_parts")
+        parts = ("" if not vox else
+                 f", and the voxels of {len(vox['structures'])} volume part"
+                 f"{'s' if len(vox['structures']) > 1 else ''} of the CIFTI-2 files: "
+                 + join(f"{s['name']} ({s['n_voxels']} voxels)" for s in vox["structures"]))
+        return (f"a common template surface of {coh.get('sources', '?')} sources (the "
+                f"vertices of the {join(hemis)} hemisphere{'s' if len(hemis) > 1 else ''} "
+                f"within the source mask{parts})")
+    vs = coh.get("voxel_size_mm")
+    size = f" ({' x '.join(f'{v:g}' for v in vs)} mm voxels)" if vs else ""
+    return f"a common template grid of {coh.get('sources', '?')} sources{size}"
+
+
+def data_paragraph(summary, contrasts, cite) -> str:
+    coh = summary.get("cohort", {})
+    n = coh.get("participants")
+    who = f"{n} participants" if n is not None else "the participants"
+    groups = coh.get("per_group") or {}
+    if groups:
+        who += " (" + join(f"{v} {k}" for k, v in groups.items()) + ")"
+    conds = coh.get("conditions") or []
+    win = summary.get("window", {})
+    maps = f", {coh['maps']} maps in all," if coh.get("maps") is not None else ""
+    out = [f"Source maps of {who}"
+           + (f" in {len(conds)} conditions ({join(conds)})" if conds else "")
+           + f"{maps} were analysed on {_space_text(summary, coh)}, from "
+           f"{win.get('start_ms', '?'):g} to {win.get('end_ms', '?'):g} ms "
+           f"({win.get('n', '?')} samples every {win.get('dt_ms', '?'):g} ms), with groupsrc "
+           f"{summary.get('groupsrc_version', '?')}."]
+    unit = _unit(summary)
+    out.append(f"Map values, and every estimate below, are in {unit}." if unit else
+               "The unit of the map values was not given; estimates are in the maps' own "
+               "units.")
+    glm = [c for c in contrasts if c.get("model", "glm") == "glm"]
+    sessions = coh.get("sessions") or []
+    if glm and len(sessions) > 1:
+        out.append(f"The maps came from {len(sessions)} sessions ({join(sessions)}); for the "
+                   "general linear model, the maps of one participant and condition from "
+                   "different sessions were averaged first.")
+    left = coh.get("glm_excluded") or []
+    if left and glm and len(glm) < len(contrasts):
+        out.append(f"The general-linear-model contrasts used the participants with a map of "
+                   f"every condition; they left out {join(left)}, whose maps the mixed model "
+                   "used.")
+    return " ".join(out)
+
+
+def _glm_contrast_sentence(summary, c, cite) -> str:
+    spec = _spec(summary, c)
+    kind = contrast_kind(spec, c["kind"])
+    reduce_, tested = MEANING[kind](spec, c)
+    conds = summary.get("cohort", {}).get("conditions") or []
+    if reduce_ is None:
+        reduce_ = ("the maps averaged over conditions" if conds else "the participant's map")
+    stat = STATISTIC_TEXT.get(_statistic(c), STATISTIC_TEXT.get(c["kind"]))(c)
+    extra = [DF_RULE_TEXT.get(c.get("df_rule")), variance_groups_text(c.get("variance_groups"))]
+    extra += [t.format(n=c[k]) for k, t in COUNT_TEXT.items() if c.get(k)]
+    more = "".join(f"; {e}" for e in extra if e)
+    return cite.fill(f"For {c['name']}, each participant contributed {reduce_}, and the test "
+                     f"was of {tested}, by {stat}{more}.")
+
+
+def model_paragraph(summary, contrasts, cite) -> str:
+    glm = [c for c in contrasts if c.get("model", "glm") == "glm"]
+    mixed = [c for c in contrasts if c.get("model") == "mixed"]
+    out = []
+    if glm:
+        model = summary.get("settings", {}).get("model", {})
+        cols = glm[0].get("coefficients") or []
+        n = glm[0].get("n_participants")
+        out.append("A general linear model over "
+                   + (f"{n} participants" if n else "participants")
+                   + f" with the terms {model.get('between', '1')}"
+                   + (f" (design columns {join(cols)})" if cols else "")
+                   + " was fitted by ordinary least squares at every source and sample to one "
+                   "map per participant and contrast (the summary-statistic approach).")
+        out += [_glm_contrast_sentence(summary, c, cite) for c in glm]
+    if mixed:
+        out.append(_mixed_text(summary, mixed, cite))
+    return " ".join(out)
 
 
 def _neighbour_text(summary, inf):
@@ -98,167 +157,158 @@ def _neighbour_text(summary, inf):
     return NEIGHBOUR_TEXT.get(inf.get("neighbors") or "face", inf.get("neighbors"))
 
 
-def _space_text(summary, coh):
-    """'a common template grid of N sources' (volume) or the surface's equivalent."""
-    space = summary.get("space", {})
-    if space.get("kind") == "surface":
-        hemis = [h["name"] for h in space.get("hemispheres", [])]
-        vox = space.get("volume_parts")
-        parts = ("" if not vox else
-                 f", and the voxels of {len(vox['structures'])} volume part"
-                 f"{'s' if len(vox['structures']) > 1 else ''} of the CIFTI-2 files: "
-                 + _join(f"{s['name']} ({s['n_voxels']} voxels)" for s in vox["structures"]))
-        return (f"a common template surface of {coh.get('sources', '?')} sources (the "
-                f"vertices of the {_join(hemis)} hemisphere{'s' if len(hemis) > 1 else ''} "
-                f"within the source mask{parts})")
-    return f"a common template grid of {coh.get('sources', '?')} sources"
-
-
-def _join(items):
-    items = list(items)
-    if len(items) <= 1:
-        return "".join(items)
-    return ", ".join(items[:-1]) + " and " + items[-1]
-
-
-def methods_text(summary: dict, contrasts: list) -> str:
-    """Markdown: one methods paragraph and the references it cites.
-
-    ``summary`` is the folder's analysis summary, ``contrasts`` the
-    per-contrast summaries (see :mod:`groupsrc.outputs.report`).
-    """
-    coh = summary.get("cohort", {})
+def inference_paragraph(summary, contrasts, cite) -> str:
     inf = summary.get("settings", {}).get("inference", {})
-    version = summary.get("groupsrc_version", "0.1.0")
-    used = []
-
-    def cite(key):
-        if key not in used:
-            used.append(key)
-        return f"[{used.index(key) + 1}]"
-
-    n = coh.get("participants")
-    groups = coh.get("per_group") or {}
-    who = f"{n} participants" if n is not None else "the participants"
-    if groups:
-        who += " (" + _join(f"{v} {k}" for k, v in groups.items()) + ")"
-    conds = coh.get("conditions") or []
-    win = summary.get("window", {})
-    parts = [f"Source maps of {who}"
-             + (f" in {len(conds)} conditions ({_join(conds)})" if conds else "")
-             + f" were analysed on {_space_text(summary, coh)}, "
-             f"from {win.get('start_ms', '?'):g} to {win.get('end_ms', '?'):g} ms "
-             f"({win.get('n', '?')} samples every {win.get('dt_ms', '?'):g} ms), with groupsrc "
-             f"{version}."]
-    glm = [c for c in contrasts if c.get("model", "glm") == "glm"]
-    mixed = [c for c in contrasts if c.get("model") == "mixed"]
-    if glm:
-        within = any(c.get("within") for c in glm)
-        parts.append(("Within each participant the conditions were combined by each contrast's "
-                      "within-participant weights into one map per contrast"
-                      if within else "Each participant's maps were averaged into one map")
-                     + " (summary-statistic approach), and a general linear model over "
-                     "participants gave, at every source and sample, a t or F statistic for "
-                     + ("each contrast." if not mixed else
-                        f"the contrast(s) {_join(c['name'] for c in glm)}.")
-                     + _excluded_text(coh, glm, mixed))
-    if mixed:
-        parts.append(_mixed_text(summary, mixed, cite))
     correction = inf.get("correction", contrasts[0]["correction"] if contrasts else "none")
     tails = TAILS_TEXT.get(inf.get("tails", "two"), inf.get("tails", ""))
-    ctext = CORRECTION_TEXT.get(correction, correction)
+    alpha = inf.get("alpha", 0.05)
+    ctext = cite.fill(CORRECTION_TEXT.get(correction, correction))
     resampled = [c for c in contrasts if c.get("n_resamples", 0) > 0]
-    if correction in ("cluster-mass", "cluster-extent"):
-        ctext += " " + cite("cluster")
-    elif correction == "tfce":
-        ctext += " " + cite("tfce")
+    out = []
+    if correction == "none":
+        out.append("No correction for multiple comparisons was applied; p-values are "
+                   "parametric and hold for one source and sample at a time.")
     elif correction == "fdr":
-        ctext += " " + cite("fdr")
-    if resampled:
+        out.append(f"The false discovery rate was controlled at {alpha} separately within "
+                   f"each contrast, over all its sources and samples, by {ctext}; p-values "
+                   "are parametric.")
+    else:
+        out.append("Each contrast was tested on its own: the family-wise error rate was "
+                   "controlled within each contrast over all its sources and samples, not "
+                   f"across the {len(contrasts)} contrasts, by {ctext}.")
+    if resampled and correction not in ("fdr", "none"):
         desc = []
         for c in resampled:
-            how = "all distinct rearrangements (exact test)" if c.get("exact") else \
-                f"{c['n_resamples']} random rearrangements including the observed one"
+            how = ("all distinct rearrangements (an exact test)" if c.get("exact") else
+                   f"{c['n_resamples']} random rearrangements including the observed one")
             desc.append(f"{c['name']}: {c['scheme']}, {how}")
-        fl = any("Freedman-Lane" in c.get("scheme", "") for c in resampled)
         seed = inf.get("seed", summary.get("seed"))
-        sent = (f"The family-wise error rate was controlled by {ctext}, with the null "
-                f"distribution of its maximum built by resampling {cite('permutation')} "
-                f"({'; '.join(desc)}"
-                + ("; nuisance covariates handled by the Freedman-Lane procedure" if fl else "")
-                + (f"; random seed {seed}" if seed is not None else "") + "). "
-                "Corrected p-values were computed as (b + 1) / (m + 1), where b of the m "
-                "rearrangements other than the observed one reached the observed value "
-                f"(exact tests: the share of all rearrangements) {cite('pvalues')}.")
-        if any(c.get("model") == "mixed" for c in resampled):
-            adjusted = any("leverage-adjusted" in c.get("scheme", "") for c in resampled)
+        fl = any("Freedman-Lane" in c.get("scheme", "") for c in resampled)
+        out.append(f"The null distribution of the map-wide maximum was built by resampling "
+                   f"{cite('permutation')} ({'; '.join(desc)})"
+                   + (f", nuisance terms handled by the Freedman-Lane procedure "
+                      f"{cite('freedman')}" if fl else "")
+                   + (f", random seed {seed}" if seed is not None else "") + ".")
+        out.append("Corrected p-values are (b + 1) / (m + 1), where b of the m rearrangements "
+                   "other than the observed one reached the observed value (exact tests: the "
+                   f"share of all rearrangements) {cite('pvalues')}.")
+        mixed = [c for c in resampled if c.get("model") == "mixed"]
+        if mixed:
+            adjusted = any("leverage-adjusted" in c.get("scheme", "") for c in mixed)
+            first = dict(multilevel=cite("multilevel"), freedman=cite("freedman"))  # reading order
             moved = (MIXED_ADJUSTED.format(leverage=cite("leverage")) if adjusted
                      else "The observed data are one of the rearrangements. ")
-            sent += " " + MIXED_RESAMPLING.format(multilevel=cite("multilevel"),
-                                                  freedman=cite("freedman"), moved=moved)
-    else:
-        sent = ("No correction for multiple comparisons was applied; p-values are parametric."
-                if correction == "none" else
-                f"Multiple comparisons were handled by {ctext}; p-values are parametric.")
-    parts.append(sent)
+            out.append(MIXED_RESAMPLING.format(moved=moved, **first))
     if correction in ("cluster-mass", "cluster-extent"):
         thr = [f"{c['name']} {'z' if c.get('scale') == 'z' else c['kind']} = "
                f"{c['threshold']:.3g}" for c in contrasts if c.get("threshold") is not None]
-        parts.append(f"Clusters were formed from points exceeding a threshold equivalent to "
-                     f"p = {inf.get('forming_p', '?')} ({(tails + ' for t') if tails else ''}"
-                     + ("; upper tail for F" if any(c["kind"] == "F" for c in contrasts) else "")
-                     + "; "
-                     + "; ".join(thr) + "), connecting "
-                     f"{_neighbour_text(summary, inf)} "
-                     "neighbouring sources at the same sample and the same source at adjacent "
-                     "samples.")
+        has_f = any(c["kind"] == "F" for c in contrasts)
+        out.append(f"Clusters were formed from points beyond a threshold equivalent to p = "
+                   f"{inf.get('forming_p', '?')} ({tails} for t"
+                   + ("; upper tail for F" if has_f else "") + "; " + "; ".join(thr)
+                   + f"), joining {_neighbour_text(summary, inf)} neighbouring sources at the "
+                   "same sample and the same source at adjacent samples.")
     elif correction == "tfce":
         tf = next((c["tfce"] for c in contrasts if c.get("tfce")), None) \
             or inf.get("tfce") or {}
-        parts.append(f"TFCE used the extent exponent E = {tf.get('extent_power', 0.5)} and "
-                     f"the height exponent H = {tf.get('height_power', 2.0)} of Smith & Nichols, "
-                     + (f"{tf['steps']} height steps per map, and " if tf.get("steps")
-                        else "the exact height integral at the data values, and ")
-                     + f"{_neighbour_text(summary, inf)} neighbours.")
-    has_f = any(c["kind"] == "F" for c in contrasts)
-    has_t = any(c["kind"] == "t" for c in contrasts)
-    if has_t:
-        parts.append(f"t tests were {tails} at alpha = {inf.get('alpha', 0.05)}"
-                     + ("; F tests use the upper tail." if has_f else "."))
-    else:
-        parts.append(f"F tests use the upper tail, at alpha = {inf.get('alpha', 0.05)}.")
-    if any(c["kind"] == "t" for c in glm):
-        parts.append("Effect sizes are reported as contrast estimates in the input units with "
-                     "95% t-intervals and as standardized effects (Hedges' g, Cohen's d with "
-                     f"Hedges' small-sample correction {cite('hedges')}; 95% intervals by "
-                     "inverting the noncentral t distribution)"
-                     + ("; for F contrasts, partial eta squared" if any(
-                         c["kind"] == "F" for c in contrasts) else "") + ".")
-    if any(c["kind"] == "t" for c in mixed):
-        parts.append("For the mixed-model t contrasts, effect sizes are the contrast estimates "
-                     "with 95% intervals from the t distribution at the Satterthwaite df, and "
-                     "standardized effects: the estimate over the SD of a single map at the "
-                     "average map, the square root of the residual variance plus the "
-                     f"participant variance there {cite('westfall')}"
-                     + ("; for F contrasts, F k / (F k + df)" if any(
-                         c["kind"] == "F" for c in mixed) else "") + ".")
-    elif glm:
-        parts.append("Effect sizes are reported as partial eta squared with 95% intervals by "
-                     "inverting the noncentral F distribution.")
-    parts.append("Values at cluster peaks were selected for being large and overstate the "
-                 "effect; a cluster's extent and timing describe where the data exceeded the "
-                 "threshold, not the effect's exact location, onset or offset.")
-    text = "# Methods\n\n" + " ".join(parts) + "\n\n## References\n\n"
-    text += "\n".join(f"{i + 1}. {REFERENCES[k]}" for i, k in enumerate(used)) + "\n"
+        out.append(f"TFCE used the extent exponent E = {tf.get('extent_power', 0.5)}, the "
+                   f"height exponent H = {tf.get('height_power', 2.0)}, "
+                   + (f"{tf['steps']} height steps per map" if tf.get("steps")
+                      else "the exact height integral at the data values")
+                   + f" and {_neighbour_text(summary, inf)} neighbours.")
+    kinds = {c["kind"] for c in contrasts}
+    if "t" in kinds:
+        out.append(f"t tests were {tails} at alpha = {alpha}"
+                   + ("; F tests use the upper tail." if "F" in kinds else "."))
+    elif kinds:
+        out.append(f"F tests use the upper tail, at alpha = {alpha}.")
+    return " ".join(out)
+
+
+def effect_paragraph(summary, contrasts, cite) -> str:
+    unit = _unit(summary) or "the maps' units"
+    tc = [c["name"] for c in contrasts if c["kind"] == "t"]
+    out = []
+    if tc:
+        glm_t = [c for c in contrasts if c["kind"] == "t" and c.get("model", "glm") == "glm"]
+        mixed_t = [c for c in contrasts if c["kind"] == "t" and c.get("model") == "mixed"]
+        both = bool(glm_t and mixed_t)
+        how = join(([f"the t distribution at the residual df"
+                     + (f" ({join(c['name'] for c in glm_t)})" if both else "")]
+                    if glm_t else [])
+                   + ([f"the t distribution at each point's Satterthwaite df"
+                       + (f" ({join(c['name'] for c in mixed_t)})" if both else "")]
+                      if mixed_t else []))
+        out.append(f"Contrast estimates of the t contrasts ({join(tc)}) are reported in {unit} "
+                   f"with 95% intervals from {how}.")
+    by_key = {}
+    for c in contrasts:
+        key = effect_size_key(c, contrast_kind(_spec(summary, c), c["kind"]))
+        by_key.setdefault(key, []).append(c["name"])
+    for key, names in by_key.items():
+        text = EFFECT_SIZE_TEXT.get(key, key)
+        out.append(cite.fill(f"The standardized effect of {join(names)} is {text}."))
+    out.append(f"Values at cluster peaks were selected for being large and overstate the "
+               f"effect {cite('circularity')}; a cluster's extent and timing describe where "
+               "the data exceeded the threshold, not the effect's exact location, onset or "
+               "offset.")
+    return " ".join(out)
+
+
+def short_version(summary, contrasts) -> str:
+    coh = summary.get("cohort", {})
+    inf = summary.get("settings", {}).get("inference", {})
+    win = summary.get("window", {})
+    models = []
+    if any(c.get("model", "glm") == "glm" for c in contrasts):
+        models.append("a general linear model on participants' summary maps")
+    if any(c.get("model") == "mixed" for c in contrasts):
+        models.append("a linear mixed model on all maps")
+    correction = inf.get("correction", "none")
+    n_res = sorted({c["n_resamples"] for c in contrasts if c.get("n_resamples")})
+    control = ("without correction for multiple comparisons" if correction == "none" else
+               f"with the false discovery rate at {inf.get('alpha', 0.05)} within each contrast"
+               if correction == "fdr" else
+               f"with the family-wise error rate controlled within each contrast by "
+               f"{CORRECTION_SHORT.get(correction, correction)} over "
+               + join(f"{m}" for m in n_res) + " rearrangements"
+               + (f" (cluster-forming p = {inf.get('forming_p')})"
+                  if correction in ("cluster-mass", "cluster-extent") else "")
+               + f", alpha = {inf.get('alpha', 0.05)}")
+    found = []
+    for c in contrasts:
+        k = len(c.get("reported_clusters") or [])
+        if not c.get("has_p_corrected", True):
+            found.append(f"{c['name']}: {c.get('n_clusters', 0)} clusters (uncorrected)")
+        else:
+            found.append(f"{c['name']}: {k if k else 'no'} significant cluster"
+                         f"{'' if k == 1 else 's'}")
+    effects = sorted({EFFECT_SIZE_SHORT.get(k, k) for k in
+                      (effect_size_key(c, contrast_kind(_spec(summary, c), c["kind"]))
+                       for c in contrasts)})
+    return (f"Source maps of {coh.get('participants', '?')} participants were tested at "
+            f"every source and sample from {win.get('start_ms', '?'):g} to "
+            f"{win.get('end_ms', '?'):g} ms by {join(models)}, {control}. "
+            f"Results: {'; '.join(found)}. Standardized effects: {join(effects)}; values at "
+            "cluster peaks overstate the effect.")
+
+
+def methods_text(summary: dict, contrasts: list) -> str:
+    """Markdown: the four paragraphs, the short version and the references.
+
+    ``summary`` is the folder's analysis summary, ``contrasts`` the
+    per-contrast records (see :mod:`groupsrc.outputs.report`).
+    """
+    cite = _Citations()
+    sections = [("Data", data_paragraph(summary, contrasts, cite)),
+                ("Model", model_paragraph(summary, contrasts, cite)),
+                ("Inference", inference_paragraph(summary, contrasts, cite)),
+                ("Effect sizes", effect_paragraph(summary, contrasts, cite)),
+                ("Short version", short_version(summary, contrasts))]
+    text = "# Methods\n\n" + "".join(f"## {h}\n\n{p}\n\n" for h, p in sections if p)
+    text += "## References\n\n"
+    text += "\n".join(f"{i + 1}. {REFERENCES[k]}" for i, k in enumerate(cite.used)) + "\n"
     return text
-
-
-def _excluded_text(coh, glm, mixed) -> str:
-    left = coh.get("glm_excluded") or []
-    if not left or not mixed:
-        return ""
-    return (f" The summary-statistic contrasts used the participants with a map of every "
-            f"condition; they left out {_join(left)}, whose maps the mixed model used.")
 
 
 def _mixed_text(summary, mixed, cite) -> str:
@@ -274,15 +324,15 @@ def _mixed_text(summary, mixed, cite) -> str:
     def share(key):
         return f"{100.0 * counts.get(key, 0) / max(1, n):.2g}%"
 
-    method = mm.get("method", "REML")
-    text = (f"A linear mixed model was fitted by {method} at every source and sample to all "
-            f"{mm.get('n_maps', coh.get('maps', '?'))} maps of "
+    text = (f"A linear mixed model was fitted by {mm.get('method', 'REML')} at every source "
+            f"and sample to all {mm.get('n_maps', coh.get('maps', '?'))} maps of "
             f"{mm.get('n_participants', coh.get('participants', '?'))} participants "
-            f"{cite('lme4')}, for the contrast(s) {_join(c['name'] for c in mixed)}: fixed "
-            f"effects the between-participant terms crossed with the conditions"
-            + (f" and the map covariate(s) {_join(covs)}" if covs else "")
+            f"{cite('lme4')}, for the contrast(s) {join(c['name'] for c in mixed)}: fixed "
+            f"effects the between-participant terms ({model.get('between', '1')}) crossed "
+            "with the conditions"
+            + (f" and the map covariate(s) {join(covs)}" if covs else "")
             + "; random effects a participant intercept"
-            + (f" and participant slope(s) of {_join(slopes)} with an unstructured "
+            + (f" and participant slope(s) of {join(slopes)} with an unstructured "
                "covariance" if slopes else "")
             + ". Every map was used, whatever the number of maps or conditions a participant "
             "had. The standard errors are those of the fixed effects given the variance "
@@ -291,8 +341,17 @@ def _mixed_text(summary, mixed, cite) -> str:
     if any(c["kind"] == "F" for c in mixed):
         text += f", F tests the method of Fai and Cornelius {cite('fai')}"
     text += (". Because the df differ by source and sample, maps, clusters and maxima use "
-             "the z of equal p (each t or F converted through its own df). Of the "
-             f"{n} fits, {share('converged')} converged inside the parameter space, "
+             "the z of equal p (each t or F converted through its own df).")
+    for c in mixed:
+        spec = _spec(summary, c)
+        _, tested = MEANING[contrast_kind(spec, c["kind"])](spec, c)
+        dfs = c.get("df_per_feature") or {}
+        rng = (f", Satterthwaite df from {fmt_df(dfs['min'])} to {fmt_df(dfs['max'])} "
+               f"(median {fmt_df(dfs['median'])})" if dfs else "")
+        extra = [t.format(n=c[k]) for k, t in COUNT_TEXT.items() if c.get(k)]
+        text += (f" {c['name']} tested {tested} ({c['kind']}{rng}"
+                 + "".join(f"; {e}" for e in extra) + ").")
+    text += (f" Of the {n} fits, {share('converged')} converged inside the parameter space, "
              f"{share('boundary (singular covariance)')} on its boundary (a variance "
              "estimated as zero or a correlation of +-1; kept, as lme4 keeps them, with the "
              f"estimates of that fit), {share('iteration limit')} stopped at the iteration "

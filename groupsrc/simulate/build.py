@@ -234,6 +234,7 @@ title = "Velmora Listening Lab: rare versus frequent tones in patients and contr
 participants = "participants.tsv"
 maps = "maps.tsv"
 mask = "mask.nii.gz"
+unit = "nA m"                     # minimum-norm moment amplitude
 
 [model]
 between = "group + age"

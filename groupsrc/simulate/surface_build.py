@@ -155,6 +155,7 @@ mesh_left = "template/left.surf.gii"
 mesh_right = "template/right.surf.gii"
 mask_left = "template/left.mask.shape.gii"       # the medial face is not a source
 mask_right = "template/right.mask.shape.gii"
+unit = "nA m"                                     # moment along the outward normal
 atlas_left = "template/left.atlas.label.gii"
 atlas_right = "template/right.atlas.label.gii"
 time_start = {float(head["t_start"])}                        # GIfTI maps carry no time axis
