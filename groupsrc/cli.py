@@ -205,7 +205,10 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "report":
         from .outputs import build_report
-        path = build_report(args.results)
+        from .outputs.folder import results_lock
+        with results_lock(args.results, command=command, option="RESULTS_DIR",
+                          log=logging.getLogger("groupsrc").info):
+            path = build_report(args.results)
         print(f"report rebuilt: {path}")
         return EXIT_OK
     if args.command == "demo":
@@ -302,11 +305,18 @@ def _print_mixed(prep):
 
 
 def cmd_demo(args, command) -> int:
-    from .outputs.folder import check_target, sweep_stale
-    from .simulate import build_demo_cohort, check_cohort_target
+    from .outputs.folder import results_lock
     surface = getattr(args, "surface", False)
     out = (args.out or Path("groupsrc_surface_demo_results" if surface
                             else "groupsrc_demo_results")).resolve()
+    # one demo per results folder at a time: the lock covers the cohort built beside it
+    with results_lock(out, command=command, log=logging.getLogger("groupsrc").info):
+        return _demo(args, command, out, surface)
+
+
+def _demo(args, command, out, surface) -> int:
+    from .outputs.folder import check_target, sweep_stale
+    from .simulate import build_demo_cohort, check_cohort_target
     cohort_dir = (args.cohort_dir or out.parent / (out.name + "_cohort")).resolve()
     size = "small" if args.small else "default"
     # refuse before spending a minute on the simulation

@@ -321,12 +321,27 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
         memory=None, quiet=False) -> Path:
     """Whole pipeline; writes a results folder and returns its path.
 
-    The results folder rules (what may be replaced, inputs never touched,
-    staging and swap, cleanup after killed runs) are those of
+    The results folder rules (one run at a time, what may be replaced, inputs
+    never touched, staging and swap, cleanup after killed runs) are those of
     :mod:`groupsrc.outputs.folder`.  The resampling is checkpointed beside
     the results folder (:func:`checkpoint_folder`); ``resume`` continues an
     interrupted run from there.
     """
+    from .outputs.folder import results_lock
+
+    settings = parse_settings(analysis_path)
+    out = Path(out_dir) if out_dir else settings.base / "results"
+    # the lock comes first: nothing of another run's (results, checkpoint) is read,
+    # replaced or deleted while it works
+    with results_lock(out, command=command, log=log.info):
+        return _run_locked(settings, out, resamples=resamples, seed=seed, workers=workers,
+                           overwrite=overwrite, progress=progress, command=command,
+                           resume=resume, scheduler=scheduler, memory=memory, quiet=quiet)
+
+
+def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress, command,
+                resume, scheduler, memory, quiet) -> Path:
+    """:func:`run` once the results folder's lock is held."""
     from .outputs import write_results
     from .outputs.folder import check_target, staged, sweep_stale
     from .progress import reporter
@@ -334,8 +349,6 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     t_start = time.perf_counter()
     stage_log.setLevel(logging.WARNING if quiet else logging.NOTSET)
     new_progress = reporter(quiet=quiet) if progress is None else _reporter(progress)
-    settings = parse_settings(analysis_path)
-    out = Path(out_dir) if out_dir else settings.base / "results"
     for action in sweep_stale(out):
         log.info(action)
     # cheap check first (declared inputs), full check once every map is known

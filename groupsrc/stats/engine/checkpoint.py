@@ -135,7 +135,33 @@ class Checkpoint:
                                   + "; ".join(changed),
                                   "put the inputs and settings back as they were, or run "
                                   "without --resume to start afresh")
+        damaged = cp.damaged()
+        if damaged:
+            raise CheckpointError(
+                f"--resume: the checkpoint {cp.folder} is damaged ("
+                + "; ".join(damaged) + "), so the run cannot continue from it",
+                "run the same command without --resume to start afresh (the damaged "
+                "checkpoint is then replaced)")
         return cp
+
+    def damaged(self) -> list:
+        """What cannot be read among the saved contrasts' files (empty when all can):
+        a file cut short by a full disk or copied in part, or edited by hand."""
+        found = []
+        for path in sorted(self.folder.glob("*.json")):
+            if path.name == MANIFEST:
+                continue
+            try:
+                record = json.loads(path.read_text(encoding="utf-8"))
+                if not isinstance(record, dict) or not all(k in record for k in FIXED_FIELDS):
+                    raise ValueError("fields missing")
+            except (OSError, ValueError, UnicodeDecodeError) as exc:
+                found.append(f"{path.name}: {type(exc).__name__}")
+        for path in sorted(self.folder.glob("*.npz")):
+            why = _npz_problem(path)
+            if why:
+                found.append(f"{path.name}: {why}")
+        return found
 
     def contrast(self, name) -> "ContrastProgress":
         return ContrastProgress(self.folder, name)
@@ -174,13 +200,11 @@ class ContrastProgress:
         if isinstance(saved, dict) and all(saved.get(k) == record[k] for k in FIXED_FIELDS
                                            if k != "batch_size"):
             record["batch_size"] = int(saved["batch_size"])
-            try:
+            if self.npz.exists() and _npz_problem(self.npz) is None:
                 with np.load(self.npz) as z:
                     pos, neg, done = z["pos"], z["neg"], z["done"]
                 if pos.shape == neg.shape == done.shape == (m,):
                     self.pos, self.neg, self.done = pos.copy(), neg.copy(), done.copy()
-            except (OSError, ValueError, KeyError):
-                pass
         if self.done is None:
             self.pos, self.neg = np.zeros(m), np.zeros(m)
             self.done = np.zeros(m, bool)
@@ -204,6 +228,21 @@ class ContrastProgress:
                 np.savez(fh, pos=self.pos, neg=self.neg, done=self.done)
         self._last = now
         self._dirty = False
+
+
+def _npz_problem(path) -> str | None:
+    """Why a saved progress file cannot be read, or None when it can."""
+    import zipfile
+    try:
+        with np.load(path) as z:
+            arrays = [np.asarray(z[k]) for k in ("pos", "neg", "done")]
+        if len({a.shape for a in arrays}) != 1 or arrays[0].ndim != 1:
+            return "its arrays differ in length"
+    except KeyError as exc:
+        return f"array {exc} missing"
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as exc:
+        return f"cut short or damaged ({type(exc).__name__})"
+    return None
 
 
 def record_fields(record) -> dict:
