@@ -293,6 +293,12 @@ def short_version(summary, contrasts) -> str:
             "cluster peaks overstate the effect.")
 
 
+def effect_name(summary: dict, c: dict) -> str:
+    """The short name of a contrast's standardized effect (report tables)."""
+    key = effect_size_key(c, contrast_kind(_spec(summary, c), c["kind"]))
+    return EFFECT_SIZE_SHORT.get(key, key)
+
+
 def methods_text(summary: dict, contrasts: list) -> str:
     """Markdown: the four paragraphs, the short version and the references.
 

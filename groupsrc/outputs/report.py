@@ -23,8 +23,9 @@ from .design_figure import design_figure
 from .files import write_text
 from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
                      open_maps, read_json, read_tsv, read_values, times_ms)
-from .methods import methods_text
+from .methods import effect_name, methods_text
 from .mixed_outputs import df_text, model_figures, model_section
+from .report_tables import compact_clusters, glance, significant_rows, table_view
 from .surface_figures import surface_figures
 from .tables import COLUMNS
 
@@ -43,12 +44,6 @@ CAUTIONS = [
     "follow-up refit of it) are inflated (circularity; Kriegeskorte et al. 2009, Nat Neurosci "
     "12:535-540); test a region chosen independently of these data to estimate the effect.",
 ]
-
-CLUSTER_VIEW = ["cluster", "sign", "p_corrected", "mass", "n_sources", "n_samples", "t_start_ms",
-                "t_end_ms", "t_peak_ms", "peak_hemisphere", "peak_vertex", "peak_structure",
-                "peak_i", "peak_j", "peak_k", "peak_x_mm", "peak_y_mm", "peak_z_mm", "peak_stat",
-                "estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "std_effect_at_peak",
-                "std_effect_ci_low", "std_effect_ci_high", "atlas_label_at_peak"]
 
 SURFACE_CHECKS_TEXT = ("Every input check passed before the statistics ran: the template "
                        "meshes are manifold (and closed, unless declared open), every map "
@@ -245,27 +240,6 @@ def _image_uri(path: Path) -> str:
     return "data:image/png;base64," + base64.b64encode(Path(path).read_bytes()).decode("ascii")
 
 
-def _cell(v) -> str:
-    if isinstance(v, (float, np.floating)):
-        return "n/a" if not np.isfinite(v) else f"{v:.4g}"
-    return str(v)
-
-
-def table_view(frame: pd.DataFrame | None, columns=None, docs=None, highlight=None,
-               max_rows=50) -> dict:
-    """A table for the template: column names, docs, alignment, rows (first ``max_rows``)."""
-    if frame is None or len(frame) == 0:
-        return {"columns": [], "rows": [], "more": 0}
-    cols = [c for c in (columns or frame.columns) if c in frame.columns]
-    text = {c: not pd.api.types.is_numeric_dtype(frame[c]) for c in cols}
-    rows = [{"sig": bool(highlight(r)) if highlight is not None else False,
-             "cells": [{"text": _cell(r[c]), "left": text[c]} for c in cols]}
-            for _, r in frame.head(max_rows).iterrows()]
-    return {"columns": [{"name": c, "doc": (docs or {}).get(c, ""), "left": text[c]}
-                        for c in cols],
-            "rows": rows, "more": max(0, len(frame) - max_rows)}
-
-
 def methods_blocks(md: str) -> list:
     """The methods Markdown as blocks: headings, paragraphs and numbered lists."""
     out = []
@@ -307,24 +281,52 @@ def _cohort_rows(coh: dict, win: dict) -> list:
     return rows
 
 
-def _contrast_view(results: Path, c: dict, figs: list) -> dict:
+#: how the report names the statistic a contrast's record says it used
+STATISTIC_LABEL = {"t": "t", "F": "F", "welch_v": "Welch's v", "G": "G", "z": "z"}
+
+
+def statistic_label(c: dict) -> str:
+    """The statistic a contrast used, with its df (from its record)."""
+    stat = STATISTIC_LABEL.get(c.get("statistic") or c["kind"], c.get("statistic") or c["kind"])
+    if c.get("model") == "mixed":
+        return f"{c['kind']} (Satterthwaite df, median {c['df'][-1]:.3g}), maps as z"
+    if c.get("df_rule") not in (None, "residual"):
+        return f"{stat} (df per source and sample), maps as z"
+    return f"{stat}({', '.join(f'{d:g}' for d in c['df'])})"
+
+
+def unit_of(summary: dict) -> str:
+    return (summary.get("settings", {}).get("cohort") or {}).get("unit") or "input units"
+
+
+def _contrast_view(results: Path, c: dict, figs: list, unit: str) -> dict:
     folder = results / c["name"]
     alpha = c["alpha"]
     clusters = read_tsv(folder / "clusters.tsv")
     peaks = read_tsv(folder / "peaks.tsv")
     reported = set(c.get("reported_clusters", []))
+
+    def sig(r):
+        return bool(np.isfinite(r["p_corrected"]) and r["p_corrected"] <= alpha)
+
+    corrected = c.get("has_p_corrected", True)
+    shown = significant_rows(clusters, alpha) if corrected else clusters
+    compact, docs = compact_clusters(clusters, c["kind"], alpha, unit, corrected)
+    sig_compact = compact[compact["significant"] == "yes"] if corrected else compact
     return {
         "name": c["name"], "description": c.get("description", ""), "kind": c["kind"],
-        "df": df_text(c), "correction": c["correction"],
+        "statistic": statistic_label(c), "df": df_text(c), "correction": c["correction"],
         "model": "mixed model" if c.get("model") == "mixed" else "summary-statistic GLM",
         "z_scale": c.get("scale") == "z",
         "tails": c["tails"], "alpha": alpha, "n_clusters": c.get("n_clusters", 0),
         "n_reported": len(reported),
-        "clusters": table_view(clusters, CLUSTER_VIEW, COLUMNS["clusters.tsv"],
-                               highlight=lambda r: np.isfinite(r["p_corrected"])
-                               and r["p_corrected"] <= alpha, max_rows=15),
+        "significant": table_view(sig_compact, None, docs, max_rows=30, text_only=True),
+        "clusters": table_view(compact, None, docs, max_rows=100, text_only=True,
+                               highlight=lambda r: r["significant"] == "yes",
+                               hidden=corrected and len(shown) < len(clusters)),
         "peaks": (table_view(peaks[peaks["cluster"].isin(reported)], None,
-                             COLUMNS["peaks.tsv"], max_rows=30) if len(peaks) else None),
+                             COLUMNS["peaks.tsv"], max_rows=30, unit=unit)
+                  if len(peaks) else None),
         "figures": [{"caption": cap, "uri": _image_uri(png),
                      "path": png.relative_to(results).as_posix()} for cap, png in figs],
     }
@@ -334,12 +336,14 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
                  model_figs=()) -> dict:
     """Everything the template shows, as plain values (escaped by the template)."""
     st = summary.get("settings", {})
+    unit = unit_of(summary)
+    effects = {c["name"]: effect_name(summary, c) for c in contrast_summaries}
+    for c in contrast_summaries:
+        c.setdefault("statistic_label", statistic_label(c))
     contrast_rows = pd.DataFrame([
         {"contrast": c["name"], "model": c.get("model", "glm"),
          "description": c.get("description", ""),
-         "statistic": (f"{c['kind']}({', '.join(str(d) for d in c['df'])})"
-                       if c.get("model") != "mixed" else
-                       f"{c['kind']} (Satterthwaite df, median {c['df'][-1]:.3g})"),
+         "statistic": statistic_label(c), "standardized effect": effects[c["name"]],
          "scheme": c["scheme"], "resamples": c["n_resamples"],
          "exact": "yes" if c["exact"] else "no", "weights": json.dumps(c["weights"]),
          "within": json.dumps(c.get("within")) if c.get("within") else ""}
@@ -356,8 +360,11 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
         "model_rows": [(k, v) for k, v in st.get("model", {}).items()
                        if v not in (None, "", [])],
         "contrast_table": table_view(contrast_rows),
-        "contrasts": [_contrast_view(results, c, figs)
+        "contrasts": [_contrast_view(results, c, figs, unit)
                       for c, figs in zip(contrast_summaries, figure_lists)],
+        "glance": glance(contrast_summaries,
+                         {c["name"]: read_tsv(results / c["name"] / "clusters.tsv")
+                          for c in contrast_summaries}, effects, unit),
         "settings_json": json.dumps({k: v for k, v in st.items() if k != "check_summary"},
                                     indent=1),
         "methods": methods_blocks(methods_md),

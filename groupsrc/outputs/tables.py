@@ -38,7 +38,8 @@ COLUMNS = {
         "n_points": "number of source x time points in the cluster",
         "n_sources": "number of distinct sources in the cluster",
         "n_samples": "number of distinct time samples in the cluster",
-        "p_corrected": "family-wise corrected p of the cluster (n/a without correction)",
+        "p_corrected": "cluster-level corrected p: family-wise within this contrast (n/a without correction)",
+        "significant": "yes when p_corrected <= alpha (the run's [inference] alpha), else no; n/a without correction (then every cluster is uncorrected)",
         "t_start_ms": "first sample time of the cluster (ms)",
         "t_end_ms": "last sample time of the cluster (ms)",
         "t_peak_ms": "time of the largest |statistic| in the cluster (ms)",
@@ -53,11 +54,11 @@ COLUMNS = {
         "peak_z_mm": "z world coordinate of the peak (mm)",
         "peak_stat": "statistic at the peak (t or F; mixed model: z)",
         "peak_df": "(denominator) degrees of freedom at the peak: the GLM's residual df, or for the mixed model the Satterthwaite df of that source and sample",
-        "estimate_at_peak": "contrast estimate at the peak (input units; n/a for F)",
+        "estimate_at_peak": "contrast estimate at the peak (the [cohort] unit, else input units; n/a for F)",
         "estimate_ci_low": "lower end of the 95% interval of the estimate, estimate - t(0.975, df) se (input units; mixed model: the df at the peak)",
         "estimate_ci_high": "upper end of that interval (input units)",
-        "std_effect_at_peak": "standardized effect at the peak: Hedges' g (t) or partial eta squared (F) (unitless)",
-        "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless; n/a for the mixed model)",
+        "std_effect_at_peak": "standardized effect at the peak (unitless): for t the estimate over the residual SD times Hedges' factor (d_z for a within contrast, g for a group difference, per unit of the covariate for a slope); partial eta squared for F; mixed model: the estimate over the SD of one map",
+        "std_effect_ci_low": "lower end of its 95% interval by noncentral t (or F) inversion (unitless; mixed model: the estimate's interval over the same SD, the SD taken as known)",
         "std_effect_ci_high": "upper end of that interval (unitless)",
         "atlas_label_at_peak": "atlas region at the peak (only when an atlas is given, or CIFTI-2 maps have volume parts, whose voxels are named by their structure)",
     },
@@ -231,7 +232,16 @@ def _peak_of(stat, labels, k):
     return divmod(int(best), stat.shape[1])
 
 
-def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -> pd.DataFrame:
+def significance(p, alpha) -> str:
+    """The ``significant`` cell: yes / no by the corrected p, n/a without one."""
+    p = float(p) if p is not None else np.nan
+    if not np.isfinite(p):
+        return "n/a"
+    return "yes" if p <= alpha else "no"
+
+
+def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None,
+                  alpha=0.05) -> pd.DataFrame:
     """clusters.tsv rows for one contrast (columns of ``COLUMNS['clusters.tsv']``)."""
     inf = contrast.inference
     cols = table_columns("clusters.tsv", grid, atlas)
@@ -244,7 +254,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
     coords = grid.coords_mm
     df = inf.df
     if inf.df_map is not None:
-        return _mixed_cluster_table(contrast, grid, time_axis, atlas, cols)
+        return _mixed_cluster_table(contrast, grid, time_axis, atlas, cols, alpha)
     v = contrast_variance_factor(contrast.design, contrast.weights) if inf.kind == "t" else np.nan
     rows = []
     for rec in table.to_dict("records"):
@@ -257,6 +267,7 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
                "stat_type": inf.kind, "mass": float(rec["mass"]),
                "n_points": int(member.sum()), "n_sources": int(src.size),
                "n_samples": int(smp.size), "p_corrected": rec.get("p_corrected", np.nan),
+               "significant": significance(rec.get("p_corrected"), alpha),
                "t_start_ms": tms[smp[0]], "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t],
                "peak_x_mm": coords[s, 0], "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2],
                "peak_stat": stat[s, t], "peak_df": float(df[-1])}
@@ -282,11 +293,12 @@ def cluster_table(contrast, grid: VolumeGrid, time_axis: TimeAxis, atlas=None) -
     return _typed(pd.DataFrame(rows, columns=cols))
 
 
-def _mixed_cluster_table(contrast, grid, time_axis, atlas, cols) -> pd.DataFrame:
+def _mixed_cluster_table(contrast, grid, time_axis, atlas, cols, alpha=0.05) -> pd.DataFrame:
     """clusters.tsv rows of a mixed-model contrast: the statistic is the z of equal p,
     the df differ by feature (the peak's df set the estimate's interval); the
-    standardized effect has no interval here (its SD is estimated with the
-    variance components)."""
+    standardized effect's interval is the estimate's over the same SD (the SD,
+    estimated with the variance components, is taken as known: the interval is
+    somewhat too narrow)."""
     inf = contrast.inference
     stat, labels = np.asarray(inf.statistic, float), np.asarray(inf.cluster_labels)
     tms, coords = times_ms(time_axis), grid.coords_mm
@@ -300,7 +312,9 @@ def _mixed_cluster_table(contrast, grid, time_axis, atlas, cols) -> pd.DataFrame
         row = {"contrast": contrast.name, "cluster": k, "sign": int(rec["sign"]),
                "stat_type": "z", "mass": float(rec["mass"]), "n_points": int(member.sum()),
                "n_sources": int(src.size), "n_samples": int(smp.size),
-               "p_corrected": rec.get("p_corrected", np.nan), "t_start_ms": tms[smp[0]],
+               "p_corrected": rec.get("p_corrected", np.nan),
+               "significant": significance(rec.get("p_corrected"), alpha),
+               "t_start_ms": tms[smp[0]],
                "t_end_ms": tms[smp[-1]], "t_peak_ms": tms[t], "peak_x_mm": coords[s, 0],
                "peak_y_mm": coords[s, 1], "peak_z_mm": coords[s, 2], "peak_stat": stat[s, t],
                "peak_df": nu, "std_effect_at_peak": float(inf.std_effect[s, t]),
@@ -310,6 +324,13 @@ def _mixed_cluster_table(contrast, grid, time_axis, atlas, cols) -> pd.DataFrame
             q = stats.t.ppf(0.975, nu)
             row.update(estimate_at_peak=est, estimate_ci_low=est - q * se,
                        estimate_ci_high=est + q * se)
+            d = row["std_effect_at_peak"]
+            if np.isfinite(d) and d != 0 and est != 0:      # SD = est / d, taken as known
+                row.update(std_effect_ci_low=d * (est - q * se) / est,
+                           std_effect_ci_high=d * (est + q * se) / est)
+                if row["std_effect_ci_low"] > row["std_effect_ci_high"]:
+                    row["std_effect_ci_low"], row["std_effect_ci_high"] = \
+                        row["std_effect_ci_high"], row["std_effect_ci_low"]
         else:
             row.update(estimate_at_peak=np.nan, estimate_ci_low=np.nan, estimate_ci_high=np.nan)
         if atlas:

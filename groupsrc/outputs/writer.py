@@ -131,7 +131,7 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ma
     folder.mkdir(parents=True, exist_ok=True)
     summ = _contrast_summary(c, alpha, forming_p)
     write_maps(c, maps, folder, summ["reported_clusters"])
-    ctab = tables.cluster_table(c, grid, taxis, atlas)
+    ctab = tables.cluster_table(c, grid, taxis, atlas, alpha)
     write_tsv(folder / "clusters.tsv", ctab)
     write_tsv(folder / "peaks.tsv", tables.peak_table(c, grid, taxis, adjacency))
     write_tsv(folder / "null_distribution.tsv", tables.null_table(c))
