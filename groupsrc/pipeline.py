@@ -252,7 +252,8 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
                           time_axis=cohort.time_axis.subset(prep.time_index), contrasts=results,
                           participants=cohort.participants, maps=cohort.maps,
                           settings=settings_dict, timings=timings,
-                          model=fitted["summary"] if fitted else None)
+                          model=fitted["summary"] if fitted else None,
+                          maps_data=cohort.Y, maps_time_index=prep.time_index)
 
 
 def _with_blocks(spec, cohort, ids, inf):

@@ -205,15 +205,16 @@ def test_design_figure_explains_a_covariate_mean_weight():
 
 @pytest.mark.parametrize("what", ["observed clusters", "observed maximum"])
 def test_null_figure_names_what_the_orange_lines_are(what, tmp_path, monkeypatch):
-    # a TFCE or max-stat null figure marks the observed maximum, not clusters; the
-    # legend says which, and a label near the right edge stays inside the axes
-    from groupsrc.outputs import figures
+    # a TFCE or max-stat null figure marks the observed maximum, not clusters; each line
+    # is named with its value in the legend below the axes, never as a label on the bars
+    from groupsrc.outputs import cluster_figures
     seen = {}
-    monkeypatch.setattr(figures, "save", lambda fig, base: seen.setdefault("fig", fig) and [])
+    monkeypatch.setattr(cluster_figures, "save",
+                        lambda fig, base: seen.setdefault("fig", fig) and [])
     null = np.random.default_rng(0).gamma(4.0, 25.0, 200)
-    figures.null_figure(null, [("observed maximum", 830.0)], None, 0.05, "largest |TFCE|",
-                        "t", tmp_path / "n", what=what)
-    ax = seen["fig"].axes[0]
-    assert what in [t.get_text() for t in ax.get_legend().get_texts()]
-    label = [t for t in ax.texts if "observed maximum" in t.get_text()][0]
-    assert label.get_ha() == "right"
+    cluster_figures.null_figure(null, [("observed maximum", 830.0)], None, 0.05,
+                                "largest |TFCE|", "t", tmp_path / "n", what=what)
+    fig = seen["fig"]
+    texts = [t.get_text() for t in fig.legends[0].get_texts()]
+    assert "observed maximum: 830" in texts
+    assert not fig.axes[0].texts and fig.axes[0].get_legend() is None

@@ -67,10 +67,12 @@ def test_clusters_peaking_together_share_one_figure(tmp_path):
     labels[50:60, 3], stat[50:60, 3] = 3, 3.0
     times = np.array([0.0, 10.0, 20.0, 30.0])
     clusters = pd.DataFrame({"cluster": [1, 2, 3], "t_peak_ms": [10.0, 10.0, 30.0],
-                             "p_corrected": [0.01, 0.02, 0.04]})
+                             "p_corrected": [0.01, 0.02, 0.04], "sign": [1, -1, 1]})
     out = surface_figures(space, stat, labels, clusters, [1, 2, 3], times, "c", "t", tmp_path)
-    assert [p.name for _, p in out] == ["surface_cluster01.png", "surface_cluster03.png"]
+    # each view time once, folded and inflated
+    assert [p.name for _, p in out] == ["surface_cluster01.png", "surface_inflated_cluster01.png",
+                                        "surface_cluster03.png", "surface_inflated_cluster03.png"]
     assert all(p.exists() and p.with_suffix(".svg").exists() for _, p in out)
     none = surface_figures(space, stat, np.zeros_like(labels), clusters.iloc[:0], [], times,
                            "c", "t", tmp_path)
-    assert [p.name for _, p in none] == ["surface_peak.png"]
+    assert [p.name for _, p in none] == ["surface_peak.png", "surface_inflated_peak.png"]

@@ -29,6 +29,8 @@ FIGURES = "figures"
 #: the mixed model's folder: variance components, ICC, fit codes (mixed = true)
 MODEL_DIR = "model"
 MODEL_SUMMARY = "summary.json"
+#: the anatomical underlay on its display grid (volume analyses with [cohort] underlay)
+UNDERLAY_FILE = "underlay.nii.gz"
 #: tables of each contrast folder that the report reads (the writer always writes them)
 CONTRAST_TABLES = ("summary.json", "clusters.tsv", "peaks.tsv", "null_distribution.tsv",
                    "cluster_timecourses.tsv", "design.tsv")
@@ -87,6 +89,20 @@ def read_values(maps, folder: Path, stem: str) -> np.ndarray:
         raise _damaged(path, "missing from the results folder") from None
     except Exception as exc:   # nibabel and gzip raise many types for damaged files
         raise _damaged(path, f"cannot be read ({type(exc).__name__}: {exc})") from None
+
+
+def read_underlay(results: Path):
+    """The saved underlay (an :class:`~groupsrc.sources.underlay.Underlay`), or None
+    when the folder has none; a damaged file is a problem naming it."""
+    from ..sources.underlay import Underlay
+    path = Path(results) / UNDERLAY_FILE
+    if not path.is_file():
+        return None
+    try:
+        values, affine = formats.nifti.read_image(path)
+    except Exception as exc:   # nibabel and gzip raise many types for damaged files
+        raise _damaged(path, f"cannot be read ({type(exc).__name__}: {exc})") from None
+    return Underlay(np.asarray(values, np.float32), np.asarray(affine, float))
 
 
 def check_results_folder(results: Path) -> None:

@@ -24,8 +24,10 @@ import re
 from pathlib import Path
 
 import numpy as np
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch
 
-from .figures import new_figure, save
+from .figures import amplitude_label, legend_below, new_figure, save
 from .files import write_json, write_tsv
 from .layout import FIGURES, MODEL_DIR, MODEL_SUMMARY, read_json
 
@@ -106,34 +108,38 @@ def model_section(results: Path, summary: dict, times) -> dict | None:
                         for k, v in ms["median"].items()]}
 
 
-def model_figure(results: Path, maps, times, base: Path) -> list:
+def model_figure(results: Path, maps, times, base: Path, unit=None) -> list:
     """Median and 10-90% range over sources, at every sample, of the ICC and of the
-    residual SD, and the share of boundary fits (model/ maps, read back)."""
+    residual SD, and the share of boundary fits (model/ maps, read back); one legend
+    below the panels."""
     from .layout import read_values
     folder = Path(results) / MODEL_DIR
     icc = read_values(maps, folder, "icc")
     sd = read_values(maps, folder, "sd_residual")
     code = read_values(maps, folder, "fit_code")
-    fig = new_figure(55)
-    panels = [(icc, "intraclass correlation"), (sd, "residual SD (input units)")]
+    fig = new_figure(66)
+    panels = [(icc, "intraclass correlation"),
+              (sd, f"residual SD ({amplitude_label(unit)})")]
     for j, (v, label) in enumerate(panels):
         ax = fig.add_subplot(1, 3, j + 1)
         lo, med, hi = np.nanpercentile(np.where(code == 3, np.nan, v), [10, 50, 90], axis=0)
-        ax.fill_between(times, lo, hi, color="#0072B2", alpha=0.25, lw=0, label="10-90%")
-        ax.plot(times, med, color="#0072B2", lw=1.3, label="median over sources")
+        ax.fill_between(times, lo, hi, color="#0072B2", alpha=0.25, lw=0)
+        ax.plot(times, med, color="#0072B2", lw=1.3)
         ax.set_xlabel("time (ms)")
         ax.set_ylabel(label)
         if j == 0:
             ax.set_ylim(0, 1)
-            ax.legend(frameon=False, loc="best")
     ax = fig.add_subplot(1, 3, 3)
-    ax.plot(times, 100 * (code == 1).mean(axis=0), color="#D55E00", lw=1.3,
-            label="boundary (singular)")
-    ax.plot(times, 100 * (code >= 2).mean(axis=0), color="#000000", ls="--", lw=1.0,
-            label="not converged / no variance")
+    ax.plot(times, 100 * (code == 1).mean(axis=0), color="#D55E00", lw=1.3)
+    ax.plot(times, 100 * (code >= 2).mean(axis=0), color="#000000", ls="--", lw=1.0)
     ax.set_xlabel("time (ms)")
     ax.set_ylabel("sources (%)")
-    ax.legend(frameon=False, loc="best")
+    handles = [Patch(color="#0072B2", alpha=0.25), Line2D([], [], color="#0072B2", lw=1.3),
+               Line2D([], [], color="#D55E00", lw=1.3),
+               Line2D([], [], color="#000000", ls="--", lw=1.0)]
+    legend_below(fig, handles, ["10-90% of sources", "median over sources",
+                                "boundary (singular) fits", "not converged / no variance"],
+                 ncol=2)
     fig.suptitle("Mixed model fit at every source and sample", fontsize=8.5)
     return save(fig, base)
 
@@ -145,7 +151,8 @@ def model_figures(results: Path, maps, summary, times) -> list:
     figdir = Path(results) / MODEL_DIR / FIGURES
     figdir.mkdir(exist_ok=True)
     base = figdir / "fit_over_time"
-    model_figure(results, maps, times, base)
+    model_figure(results, maps, times, base,
+                 unit=(summary.get("settings", {}).get("cohort") or {}).get("unit"))
     return [("Mixed model at every source: median (line) and 10-90% range (band) over sources "
              "of the intraclass correlation and of the residual SD at each sample, and the "
              "share of fits on the boundary (a zero variance or a correlation of +-1, kept as "

@@ -18,19 +18,14 @@ import numpy as np
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
 
-from . import figures
-from .design_figure import design_figure
+from .contrast_figures import contrast_figures
 from .files import write_text
-from .layout import (FIGURES, METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder,
-                     open_maps, read_json, read_tsv, read_values, times_ms)
+from .layout import (METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder, open_maps,
+                     read_json, read_tsv, times_ms)
 from .methods import effect_name, methods_text
 from .mixed_outputs import df_text, model_figures, model_section
 from .report_tables import compact_clusters, glance, significant_rows, table_view
-from .surface_figures import surface_figures
 from .tables import COLUMNS
-
-MAX_CLUSTER_FIGURES = 6
-MAX_PROJECTIONS = 4
 
 CAUTIONS = [
     "A significant cluster shows that the conditions or groups differ; it does not establish "
@@ -58,171 +53,6 @@ CHECKS_TEXT = ("Every input check passed before the statistics ran: each map rea
                "or infinite value inside the mask, no duplicate or orphan table row, every "
                "model column present with at least two participants per factor level, and a "
                "full-rank design matrix.")
-
-
-def _sample_index(times, values_ms):
-    """Nearest sample of each time (tables store times rounded to the microsecond)."""
-    return np.abs(np.asarray(values_ms, float)[:, None] - times[None, :]).argmin(axis=1)
-
-
-# ----------------------------------------------------------------------------
-# figures of one contrast
-# ----------------------------------------------------------------------------
-
-def _score_label(correction, kind):
-    total = "sum of F" if kind == "F" else f"|sum of {kind}|"
-    return {"cluster-mass": f"largest cluster mass per rearrangement ({total})",
-            "cluster-extent": "largest cluster extent per rearrangement (points)",
-            "tfce": "largest |TFCE| per rearrangement",
-            "max-stat": f"largest |{kind}| per rearrangement"}.get(correction, "score")
-
-
-def _sign_text(row, kind):
-    if kind == "F":
-        return "F"
-    return "positive" if row["sign"] > 0 else "negative"
-
-
-def projection_figures(grid, stat, labels, clusters, reported, times, name, kind, figdir):
-    """Maximum-intensity projections of a volume at the peak time of each reported cluster."""
-    vlim = figures._stat_range(stat, kind)
-    out = []
-    targets = reported[:MAX_PROJECTIONS] or [None]
-    for k in targets:
-        if k is None:
-            s_, t = np.unravel_index(np.nanargmax(np.abs(stat)), stat.shape)
-            t_idx = int(t)
-            title = (f"{name}: {kind} at its largest |{kind}|, {times[t_idx]:g} ms "
-                     "(no cluster reported)")
-            keep = np.zeros(stat.shape[0], bool)
-            base = figdir / "projections_peak"
-        else:
-            r = clusters.loc[clusters["cluster"] == k].iloc[0]
-            t_idx = int(_sample_index(times, [r["t_peak_ms"]])[0])
-            title = (f"{name}: {kind} at {times[t_idx]:g} ms, peak of cluster {k} "
-                     f"(p = {r['p_corrected']:.3g})" if np.isfinite(r["p_corrected"])
-                     else f"{name}: {kind} at {times[t_idx]:g} ms, peak of cluster {k}")
-            keep = np.isin(labels[:, t_idx], reported)
-            base = figdir / f"projections_cluster{k:02d}"
-        figures.projection_figure(grid.to_volume(stat[:, t_idx]), grid.mask,
-                                  grid.to_volume(keep), grid.affine, kind, title, base,
-                                  vlim=vlim)
-        out.append((f"Maximum-intensity projections of the {kind} map at {times[t_idx]:g} ms "
-                    "(grey: source mask; white: reported clusters at that time).",
-                    base.with_suffix(".png")))
-    return out
-
-
-#: the figure of the statistic in space, by source-space kind
-SPATIAL_FIGURES = {"volume": projection_figures, "surface": surface_figures}
-
-
-def contrast_figures(results: Path, maps, summary: dict, cs: dict) -> list:
-    """Draw one contrast's figures; return [(caption, png path)]."""
-    name = cs["name"]
-    kind = "z" if cs.get("scale") == "z" else cs["kind"]      # what statistic.nii.gz holds
-    folder = results / name
-    figdir = folder / FIGURES
-    figdir.mkdir(exist_ok=True)
-    for old in list(figdir.glob("*.png")) + list(figdir.glob("*.svg")):
-        old.unlink()
-    times = times_ms(summary["window"])
-    space = maps.space
-    stat = read_values(maps, folder, "statistic")
-    labels = read_values(maps, folder, "clusters").astype(np.int64)
-    clusters = read_tsv(folder / "clusters.tsv")
-    reported = list(cs.get("reported_clusters", []))
-
-    def row_of(k):
-        return clusters.loc[clusters["cluster"] == k].iloc[0]
-
-    out = SPATIAL_FIGURES[space.kind](space, stat, labels, clusters, reported, times, name,
-                                      kind, figdir)
-    label = kind
-    # sources x time per reported cluster
-    coords = space.coords_mm
-    for k in reported[:MAX_CLUSTER_FIGURES]:
-        member = labels == k
-        src = np.flatnonzero(member.any(axis=1))
-        r = row_of(k)
-        base = figdir / f"sources_by_time_cluster{k:02d}"
-        ptxt = f", p = {r['p_corrected']:.3g}" if np.isfinite(r["p_corrected"]) else ""
-        figures.source_time_figure(stat[src], member[src], times, kind,
-                                   f"{name}, cluster {k} ({_sign_text(r, kind)}{ptxt})",
-                                   base, coords_y=coords[src, 1])
-        out.append((f"Cluster {k}: {label} of each of its {src.size} sources over time; "
-                    "outlined: points in the cluster.", base.with_suffix(".png")))
-    # time courses
-    tc = read_tsv(folder / "cluster_timecourses.tsv")
-    shown = reported[:MAX_CLUSTER_FIGURES] or ([int(clusters["cluster"].iloc[0])]
-                                               if len(clusters) else [])
-    shown = [k for k in shown if len(tc) and (tc["cluster"] == k).any()]
-    if shown:
-        half = summary["window"]["dt_ms"] / 2      # a sample covers +/- half an interval
-        panels = []
-        for k in shown:
-            r = row_of(k)
-            sub = tc[tc["cluster"] == k]
-            gcol = "group" if "group" in sub.columns else None
-            groups = {}
-            for g, gsub in (sub.groupby(gcol, sort=True) if gcol else [("all", sub)]):
-                wide = gsub.pivot(index="participant_id", columns="time_ms", values="value")
-                vals = np.full((len(wide), times.size), np.nan)
-                vals[:, _sample_index(times, wide.columns)] = wide.to_numpy()
-                groups[str(g)] = vals
-            sig = bool(np.isfinite(r["p_corrected"]) and r["p_corrected"] <= cs["alpha"]) \
-                or (not np.isfinite(r["p_corrected"]) and k in reported)
-            ptxt = f", p = {r['p_corrected']:.3g}" if np.isfinite(r["p_corrected"]) else ""
-            panels.append({"title": f"cluster {k} ({_sign_text(r, kind)}{ptxt})",
-                           "groups": groups, "span": (r["t_start_ms"] - half, r["t_end_ms"] + half),
-                           "significant": sig})
-        base = figdir / "timecourses"
-        figures.timecourse_figure(panels, times, name, base)
-        out.append(("Mean over each cluster's sources per group with 95% t-intervals; shaded: "
-                    "the cluster's time span (hatched when not significant).",
-                    base.with_suffix(".png")))
-    # null distribution
-    null = read_tsv(folder / "null_distribution.tsv")
-    if len(null):
-        corr = cs["correction"]
-        if corr in ("cluster-mass", "cluster-extent") and len(clusters):
-            col = "mass" if corr == "cluster-mass" else "n_points"
-            rep = set(reported[:5])
-            observed = [(f"cluster {int(k)}", abs(float(v))) for k, v in
-                        zip(clusters["cluster"], clusters[col]) if int(k) in rep]
-            rest = clusters[~clusters["cluster"].isin(rep)]
-            if len(rest):
-                big = rest.iloc[int(np.argmax(np.abs(rest[col].to_numpy())))]
-                observed.append((f"largest other: cluster {int(big['cluster'])}",
-                                 abs(float(big[col]))))
-            what = "observed clusters"
-        else:
-            observed = [("observed maximum", float(null["max_stat"].iloc[0]))]
-            what = "observed maximum"
-        base = figdir / "null_distribution"
-        figures.null_figure(null["max_stat"].to_numpy(), observed, cs.get("critical_value"),
-                            cs["alpha"], _score_label(corr, label),
-                            f"{name}: null distribution of the maximum", base, what=what)
-        out.append(("Null distribution of the map-wide maximum over rearrangements; orange "
-                    f"line{'s' if len(observed) > 1 else ''}: {what}; dashed: the critical "
-                    "value at alpha.", base.with_suffix(".png")))
-    # design
-    design = read_tsv(folder / "design.tsv")
-    if len(design):
-        design = design.set_index("participant_id")
-        mixed = cs.get("model") == "mixed"
-        if mixed:                       # one row per map: draw each distinct row once
-            design = design[~design.duplicated()]
-        base = figdir / "design"
-        design_figure(design, cs["weights"], f"{name}: design and contrast", base,
-                      row_label="distinct map row" if mixed else "participant")
-        out.append((("The mixed model's fixed-effects design, each distinct map row once "
-                     "(labelled with the first participant who has it)" if mixed else
-                     "The between-participant design") + ", one panel per coefficient "
-                    "(coloured blocks: indicator columns; dots: covariates on their own "
-                    "scale, dashed at the mean), and the contrast's weights below.",
-                    base.with_suffix(".png")))
-    return out
 
 
 # ----------------------------------------------------------------------------

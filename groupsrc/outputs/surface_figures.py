@@ -22,11 +22,15 @@ How a view is drawn (orthographic projection, no 3D toolkit):
   all in a reported cluster and triangles that are not, drawn as thin quads
   inside the same far-to-near painting, so a fold in front hides them.
 
-Colours: signed statistics (t, z) use ColorBrewer's RdBu reversed (red
-positive, blue negative, near white at zero; a diverging scheme ColorBrewer
-marks as colour-blind safe), so the shading of the folds stays readable
-where the statistic is small; F uses its upper half (white to red).  This
-differs on purpose from the volume projections' map, which is dark at zero.
+Colours: the figures' one light-centred diverging map
+(:func:`groupsrc.outputs.figures.stat_cmap`: ColorBrewer's RdBu reversed, near
+white at zero), so the shading of the folds stays readable where the
+statistic is small; F uses its white-to-red half; the colour bar marks the
+cluster-forming threshold.  Each reported cluster seen in a view is numbered
+with its sign ("3+") at its point nearest the viewer; a number that would
+overlap another is left out.  Each figure has an inflated twin
+(``surface_inflated_*``): the mesh smoothed along its edges so sulcal walls
+and floors show, gyri light and sulci darker grey.
 Points in no cluster at the time shown are faded toward light grey, so the
 clusters stand out while the rest of the map stays visible; vertices that are
 not sources (outside the mask, e.g. the medial wall) are mid grey.  The triangle layer is rasterised in the SVG (text stays vector),
@@ -49,11 +53,15 @@ from pathlib import Path
 import matplotlib
 import numpy as np
 from matplotlib.collections import PolyCollection
-from matplotlib.colors import LinearSegmentedColormap, Normalize
+from matplotlib.colors import Normalize
 
-from . import figures
+from . import figures, volume_figures
 
 MAX_VIEWS = 4
+#: smoothing steps of the inflated view
+INFLATE_STEPS = 60
+#: greys of the inflated view's faded points: gyri (lighter) and sulci (darker)
+GYRUS, SULCUS = np.array([0.88, 0.88, 0.88]), np.array([0.66, 0.66, 0.66])
 NOT_SOURCE = np.array([0.55, 0.55, 0.55])
 #: points in no cluster at the time shown are faded this far toward FADED
 FADE, FADED = 0.7, np.array([0.86, 0.86, 0.86])
@@ -66,12 +74,44 @@ UP = np.array([0.0, 0.0, 1.0])
 
 
 def surface_cmap(kind):
-    """RdBu reversed for signed maps (t, or the z of a mixed model); its white-to-red half
-    for F (see the module docstring)."""
-    base = matplotlib.colormaps["RdBu_r"]
-    if kind in figures.SIGNED:
-        return base
-    return LinearSegmentedColormap.from_list("groupsrc_f_surface", base(np.linspace(0.5, 1, 128)))
+    """The figures' one statistic map (:func:`groupsrc.outputs.figures.stat_cmap`)."""
+    return figures.stat_cmap(kind)
+
+
+def inflate(vertices, triangles, iterations=INFLATE_STEPS, step=0.5):
+    """(smoothed vertices, sulcal depth per vertex): Laplacian smoothing along mesh
+    edges (each vertex moved ``step`` of the way to its neighbours' mean, repeated),
+    rescaled to the mesh's original size, so folds open up and buried cortex shows.
+    The depth is the original position's offset along the smoothed surface's outward
+    normal (negative in sulci)."""
+    from scipy import sparse
+    v = np.asarray(vertices, float)
+    t = outward_triangles(v, triangles)
+    i = np.concatenate([t[:, 0], t[:, 1], t[:, 2]])
+    j = np.concatenate([t[:, 1], t[:, 2], t[:, 0]])
+    a = sparse.coo_matrix((np.ones(i.size), (i, j)), shape=(len(v), len(v))).tocsr()
+    a = ((a + a.T) > 0).astype(float)
+    deg = np.asarray(a.sum(axis=1)).ravel()
+    walk = sparse.diags(1.0 / np.maximum(deg, 1)) @ a
+    w = v.copy()
+    for _ in range(iterations):
+        w = (1 - step) * w + step * (walk @ w)
+    centre, centre_w = v.mean(axis=0), w.mean(axis=0)
+    scale = np.ptp(v, axis=0).max() / max(np.ptp(w, axis=0).max(), 1e-12)
+    w = centre + (w - centre_w) * scale
+    n = vertex_normals(w, t)
+    depth = np.einsum("ij,ij->i", v - w, n)
+    return w, depth
+
+
+def vertex_normals(vertices, triangles):
+    """Area-weighted outward normal per vertex (triangles already outward)."""
+    v = np.asarray(vertices, float)
+    fn = np.cross(v[triangles[:, 1]] - v[triangles[:, 0]], v[triangles[:, 2]] - v[triangles[:, 0]])
+    n = np.zeros_like(v)
+    for k in range(3):
+        np.add.at(n, triangles[:, k], fn)
+    return n / np.maximum(np.linalg.norm(n, axis=1, keepdims=True), 1e-12)
 
 
 # ----------------------------------------------------------------------------
@@ -159,12 +199,13 @@ def view_polygons(vertices, triangles, face_rgb, direction, outline=None, outlin
 # the figure
 # ----------------------------------------------------------------------------
 
-def vertex_colours(space, values, kind, vlim, strong=None):
+def vertex_colours(space, values, kind, vlim, strong=None, greys=None):
     """{hemisphere: (V, 3) rgb}: the colour map at sources, grey elsewhere.
 
     Sources not in ``strong`` (bool per source; default all) are faded toward
     light grey (FADE of the way), so the map's pattern stays visible but the
-    points in clusters stand out.
+    points in clusters stand out; ``greys`` ({hemisphere: (V, 3)}) replaces that
+    grey per vertex (the inflated view's gyri and sulci).
     """
     cmap, norm = surface_cmap(kind), Normalize(*vlim)
     strong = np.ones(space.n_sources, bool) if strong is None else np.asarray(strong, bool)
@@ -174,29 +215,82 @@ def vertex_colours(space, values, kind, vlim, strong=None):
         part = space.source_slice(h.name)
         col = cmap(norm(np.nan_to_num(np.asarray(values, float)[part])))[:, :3]
         weak = ~strong[part]
-        col[weak] = (1 - FADE) * col[weak] + FADE * FADED
+        grey = FADED if greys is None else greys[h.name][h.sources][weak]
+        col[weak] = (1 - FADE) * col[weak] + FADE * grey
         rgb[h.sources] = col
         out[h.name] = rgb
     return out
 
 
-def views_figure(space, values, inside, kind, title, base: Path, vlim=None, strong=None) -> list:
+def _padded(box, pad=3.0):
+    """A text box grown by ``pad`` pixels, so labels keep a gap at any resolution."""
+    return matplotlib.transforms.Bbox([[box.x0 - pad, box.y0 - pad], [box.x1 + pad, box.y1 + pad]])
+
+
+def _cluster_labels(ax, xy, depth, front, member_labels, signs):
+    """Number each cluster seen in a view with its sign ("3+", "1-") at its point
+    nearest the viewer around its centre; labels that would overlap are moved down
+    or left out (their number is in the caption's table)."""
+    fig = ax.figure
+    r = fig.canvas.get_renderer()
+    placed = [_padded(t.get_window_extent(r)) for t in ax.texts]
+    for k in sorted(set(member_labels[front & (member_labels > 0)])):
+        pts = np.flatnonzero(front & (member_labels == k))
+        centre = xy[pts].mean(axis=0)
+        near = pts[np.argsort(((xy[pts] - centre) ** 2).sum(axis=1))[:max(1, pts.size // 3)]]
+        p = near[np.argmax(depth[near])]
+        text = ax.text(xy[p, 0], xy[p, 1], f"{k}{'+' if signs.get(k, 1) > 0 else '-'}",
+                       fontsize=6.5, weight="bold", ha="center", va="center", color="black",
+                       bbox=dict(facecolor="white", edgecolor="black", lw=0.4, pad=0.6,
+                                 alpha=0.85), zorder=5)
+        text.set_in_layout(False)
+        for dy in (0, -10, 10, -20, 20):
+            text.set_position((xy[p, 0], xy[p, 1]))
+            text.set_transform(ax.transData + matplotlib.transforms.ScaledTranslation(
+                0, dy / 72, fig.dpi_scale_trans))
+            b = _padded(text.get_window_extent(r))
+            inside = ax.get_window_extent(r)
+            if inside.contains(b.x0, b.y0) and inside.contains(b.x1, b.y1) and not any(
+                    b.overlaps(o) for o in placed):
+                placed.append(b)
+                break
+        else:
+            text.remove()
+
+
+def views_figure(space, values, inside, kind, title, base: Path, vlim=None, strong=None,
+                 threshold=None, numbers=None, inflated=False) -> list:
     """Lateral and medial views of each hemisphere of per-source ``values``.
 
     ``inside``: bool per source, the points outlined (reported clusters);
     ``strong``: bool per source, the points shown in full colour (others
-    faded; default all).  Returns the written paths (PNG and SVG).
+    faded; default all); ``numbers``: (labels per source, {cluster: sign}) to
+    number the clusters seen; ``inflated``: draw the smoothed surface, with gyri
+    light and sulci darker grey.  Returns the written paths (PNG and SVG).
     """
     vlim = vlim if vlim is not None else figures._stat_range(values, kind)
-    rgb = vertex_colours(space, values, kind, vlim, strong)
     hemis = space.hemispheres
-    fig = figures.new_figure(62 * len(hemis) + 14)
-    gs = fig.add_gridspec(len(hemis), 2)
-    axes = []
-    extent = max(np.ptp(np.column_stack([h.vertices[:, 1], h.vertices[:, 2]]), axis=0).max()
-                 for h in hemis)
-    for i, h in enumerate(hemis):
+    shapes, greys = {}, None
+    for h in hemis:
         t = outward_triangles(h.vertices, h.triangles)
+        if inflated:
+            w, depth = inflate(h.vertices, h.triangles)
+            shapes[h.name] = (w, t, depth)
+        else:
+            shapes[h.name] = (np.asarray(h.vertices, float), t, None)
+    if inflated:
+        greys = {}
+        for h in hemis:
+            d = shapes[h.name][2]
+            s_ = np.clip(0.5 - d / (2 * max(np.percentile(np.abs(d), 95), 1e-9)), 0, 1)
+            greys[h.name] = GYRUS[None] * (1 - s_[:, None]) + SULCUS[None] * s_[:, None]
+    rgb = vertex_colours(space, values, kind, vlim, strong, greys)
+    fig = figures.new_figure(64 * len(hemis) + 16)
+    gs = fig.add_gridspec(len(hemis), 2)
+    axes, pending = [], []
+    extent = max(np.ptp(shapes[h.name][0][:, 1:], axis=0).max() for h in hemis)
+    for i, h in enumerate(hemis):
+        verts, t, _ = shapes[h.name]
         face = rgb[h.name][t].mean(axis=1)
         member = np.zeros(h.n_vertices, bool)
         member[h.sources] = np.asarray(inside, bool)[space.source_slice(h.name)]
@@ -204,7 +298,7 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None, stro
         for j, (view, direction) in enumerate(VIEWS[h.name]):
             ax = fig.add_subplot(gs[i, j])
             axes.append(ax)
-            polys, colours = view_polygons(h.vertices, t, face, direction, edges,
+            polys, colours = view_polygons(verts, t, face, direction, edges,
                                            outline_width=0.012 * extent)
             coll = PolyCollection(polys, facecolors=colours, edgecolors=colours,
                                   linewidths=0.25, rasterized=True)
@@ -216,17 +310,26 @@ def views_figure(space, values, inside, kind, title, base: Path, vlim=None, stro
             ax.set_ylim(lo[1] - pad, hi[1] + pad)
             ax.set_aspect("equal")
             ax.set_axis_off()
-            ax.set_title(f"{h.name} hemisphere, {view}")
             d, right, _ = _camera(direction)
             front_right = right[1] > 0           # +y (anterior) to the right of the image
-            ax.text(0.0, 0.0, "P" if front_right else "A", transform=ax.transAxes,
-                    weight="bold", ha="left", va="bottom")
-            ax.text(1.0, 0.0, "A" if front_right else "P", transform=ax.transAxes,
-                    weight="bold", ha="right", va="bottom")
+            ax.set_title(f"{h.name} hemisphere, {view}"
+                         + (" (inflated)" if inflated else "")
+                         + f"\n{'P' if front_right else 'A'} <-  -> "
+                           f"{'A' if front_right else 'P'}", fontsize=7.5)
+            if numbers is not None:
+                lab = np.zeros(h.n_vertices, np.int64)
+                lab[h.sources] = np.asarray(numbers[0])[space.source_slice(h.name)]
+                _, right_, up_ = _camera(direction)
+                xy = np.column_stack([verts @ right_, verts @ up_])
+                dvec = np.asarray(direction, float) / np.linalg.norm(direction)
+                front = (vertex_normals(verts, t) @ dvec) > 0.2
+                pending.append((ax, xy, verts @ dvec, front, lab))
     sm = matplotlib.cm.ScalarMappable(norm=Normalize(*vlim), cmap=surface_cmap(kind))
-    cb = fig.colorbar(sm, ax=axes, shrink=0.8, aspect=30, pad=0.02)
-    cb.set_label(figures._stat_label(kind))
+    figures.stat_colorbar(fig, sm, kind, threshold, ax=axes, shrink=0.8, aspect=30, pad=0.02)
     fig.suptitle(title, fontsize=8.5)
+    fig.canvas.draw()                   # the final layout, so labels can be measured
+    for ax, xy, depth, front, lab in pending:
+        _cluster_labels(ax, xy, depth, front, lab, numbers[1])
     return figures.save(fig, base)
 
 
@@ -246,15 +349,15 @@ def _views(clusters, reported, times):
 def _title(name, kind, time_ms, ks, clusters):
     if not ks:
         return f"{name}: {kind} at its largest |{kind}|, {time_ms:g} ms (no cluster reported)"
-    ps = clusters.set_index("cluster").loc[ks, "p_corrected"].to_numpy(float)
     which = (f"cluster {ks[0]}" if len(ks) == 1 else
-             "clusters " + ", ".join(str(k) for k in ks[:-1]) + f" and {ks[-1]}")
-    ptxt = (f" (p = {ps[0]:.3g})" if len(ks) == 1 and np.isfinite(ps[0]) else
-            f" (p <= {np.nanmax(ps):.3g})" if np.isfinite(ps).all() else "")
-    return f"{name}: {kind} at {time_ms:g} ms, peak of {which}{ptxt}"
+             "clusters " + ", ".join(str(k) for k in ks[:-1]) + f" and {ks[-1]}"
+             if len(ks) <= 4 else
+             "clusters " + ", ".join(str(k) for k in ks[:3]) + f" and {len(ks) - 3} more")
+    return f"{name}: {kind} at {time_ms:g} ms, the peak time of {which}"
 
 
-def surface_figures(space, stat, labels, clusters, reported, times, name, kind, figdir) -> list:
+def surface_figures(space, stat, labels, clusters, reported, times, name, kind, figdir,
+                    threshold=None) -> list:
     """The report's spatial figures of a surface: [(caption, png path)].
 
     One figure per distinct peak time of the reported clusters (at most
@@ -274,19 +377,32 @@ def surface_figures(space, stat, labels, clusters, reported, times, name, kind, 
         title = _title(name, kind, times[t_idx], ks, clusters)
         if not ks and space.voxels is not None:
             title = title.replace(" at its largest", " on the cortex at its largest")
-        views_figure(space, stat[:, t_idx], inside, kind, title, base, vlim=vlim,
-                     strong=labels[:, t_idx] > 0)
-        out.append((f"The {kind} map at {times[t_idx]:g} ms on the template surface: lateral "
-                    "and medial views of each hemisphere (A: anterior, P: posterior), shaded "
-                    "to show the folds; full colour: points in a cluster at that time, faded: "
-                    "the rest; dark grey: not a source (outside the mask); black outlines: "
-                    "reported clusters at that time, along mesh edges"
-                    + ("; the volume parts are shown in their own figures." if space.voxels
-                       is not None else "."), base.with_suffix(".png")))
+        signs = ({int(k): int(v) for k, v in zip(clusters["cluster"], clusters["sign"])}
+                 if "sign" in clusters.columns else {})
+        shown = np.where(np.isin(labels[:, t_idx], reported), labels[:, t_idx], 0)
+        for inflated in (False, True):
+            b = base.with_name(base.name.replace("surface_", "surface_inflated_")) \
+                if inflated else base
+            views_figure(space, stat[:, t_idx], inside, kind, title, b, vlim=vlim,
+                         strong=labels[:, t_idx] > 0, threshold=threshold,
+                         numbers=(shown, signs), inflated=inflated)
+            out.append(((f"The same on the inflated surface (smoothed so that the walls and "
+                         "floors of sulci show; light grey: gyri, darker grey: sulci)."
+                         if inflated else
+                         f"The {kind} map at {times[t_idx]:g} ms on the template surface: "
+                         "lateral and medial views of each hemisphere (A: anterior, P: "
+                         "posterior), shaded to show the folds; full colour: points in a "
+                         "cluster at that time, faded: the rest; dark grey: not a source "
+                         "(outside the mask); black outlines: reported clusters at that time, "
+                         "along mesh edges, numbered with their sign (3+: cluster 3, "
+                         "positive)"
+                         + ("; the volume parts are shown in their own figures." if
+                            space.voxels is not None else ".")), b.with_suffix(".png")))
     if space.voxels is not None:
         out += volume_part_figures(space, stat, labels, clusters,
                                    [k for k in reported if k not in cortex], reported, times,
-                                   name, kind, figdir, vlim, surface_views=bool(views))
+                                   name, kind, figdir, vlim, surface_views=bool(views),
+                                   threshold=threshold)
     return out
 
 
@@ -301,7 +417,7 @@ def _part_box(voxels, values, margin=1):
 
 
 def volume_part_figures(space, stat, labels, clusters, in_parts, reported, times, name, kind,
-                        figdir, vlim, surface_views=True) -> list:
+                        figdir, vlim, surface_views=True, threshold=None) -> list:
     """Projections of the volume parts: one per distinct peak time of the reported
     clusters ``in_parts`` (at most MAX_VIEWS); with no reported cluster at all, one at
     the parts' largest |statistic|.  [(caption, png path)]."""
@@ -323,11 +439,12 @@ def volume_part_figures(space, stat, labels, clusters, in_parts, reported, times
             + f",\nin {', '.join(where)}" if ks else
             f"{name}: {kind} in the volume parts at their largest |{kind}|, "
             f"{times[t_idx]:g} ms (no cluster reported)")
-        figures.projection_figure(values, mask.astype(bool), inside.astype(bool), affine, kind,
-                                  title, base, vlim=vlim)
+        volume_figures.projection_figure(values, mask.astype(bool), inside.astype(bool),
+                                         affine, kind, title, base, vlim=vlim,
+                                         threshold=threshold)
         out.append((f"Maximum-intensity projections of the {kind} map over the CIFTI-2 volume "
                     f"parts ({', '.join(vox.names)}) at {times[t_idx]:g} ms, on the box around "
-                    "their voxels (grey outline: the volume parts' voxels; white: reported "
+                    "their voxels (grey outline: the volume parts' voxels; black: reported "
                     "clusters at that time). " + (
                         "The cortex is shown in the surface views." if surface_views else
                         "No reported cluster lies on the cortex, so no surface view is drawn."),

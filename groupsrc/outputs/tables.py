@@ -87,6 +87,14 @@ COLUMNS = {
         "time_ms": "sample time (ms), every sample of the analysed window",
         "value": "mean over the cluster's sources of the participant's measure at that time (input units)",
     },
+    "condition_timecourses.tsv": {
+        "participant_id": "participant",
+        "group": "participant's group (only when the participants table has a group column)",
+        "condition": "condition (a level of the within column the contrast weighs)",
+        "cluster": "cluster number",
+        "time_ms": "sample time (ms), every sample of the analysed window",
+        "value": "mean over the cluster's sources of the participant's maps of that condition, sessions averaged (input units)",
+    },
     "null_distribution.tsv": {
         "resample": "rearrangement number (0 = the observed data)",
         "max_stat": "largest score over the whole map in that rearrangement, on the scale used for the FWER",
@@ -463,3 +471,51 @@ def null_table(contrast) -> pd.DataFrame:
         if c not in out.columns:
             out[c] = np.nan
     return out[cols]
+
+
+def condition_timecourse_table(contrast, maps: pd.DataFrame, within_col, participants,
+                               maps_data, time_index, time_axis: TimeAxis,
+                               max_clusters=MAX_TIMECOURSE_CLUSTERS) -> pd.DataFrame:
+    """condition_timecourses.tsv: for a contrast with within weights, per participant,
+    condition the contrast weighs, cluster and sample, the mean over the cluster's
+    sources of the participant's maps of that condition (sessions averaged first).
+    Participants without a map of a condition have no rows for it."""
+    cols = [c for c in COLUMNS["condition_timecourses.tsv"]]
+    labels = np.asarray(contrast.inference.cluster_labels)
+    clusters = contrast.inference.clusters
+    if (not contrast.within or maps_data is None or within_col is None or clusters is None
+            or not len(clusters)):
+        return pd.DataFrame(columns=cols)
+    ids = [str(p) for p in contrast.participants]
+    group_of = None
+    if participants is not None and "group" in participants.columns:
+        parts = participants.copy()
+        key = parts["participant_id"] if "participant_id" in parts.columns else parts.index
+        group_of = dict(zip(key.astype(str), parts["group"].astype(str)))
+    else:
+        cols.remove("group")
+    pid = maps["participant_id"].astype(str).to_numpy()
+    cond = maps[within_col].astype(str).to_numpy()
+    tidx = np.asarray(time_index)
+    tms = times_ms(time_axis)
+    frames = []
+    for k in [int(k) for k in clusters["cluster"]][:max_clusters]:
+        src = np.flatnonzero((labels == k).any(axis=1))
+        if src.size == 0:
+            continue
+        # every map's mean over the cluster's sources (maps x samples), float64
+        per_map = np.stack([np.asarray(maps_data[m][src][:, tidx], np.float64).mean(axis=0)
+                            for m in range(len(maps))])
+        for c in contrast.within:
+            for p in ids:
+                sel = np.flatnonzero((pid == p) & (cond == str(c)))
+                if sel.size == 0:
+                    continue
+                f = {"participant_id": p, "condition": str(c), "cluster": k,
+                     "time_ms": tms, "value": per_map[sel].mean(axis=0)}
+                if group_of is not None:
+                    f["group"] = group_of.get(p, "n/a")
+                frames.append(pd.DataFrame(f, columns=cols))
+    if not frames:
+        return pd.DataFrame(columns=cols)
+    return pd.concat(frames, ignore_index=True)

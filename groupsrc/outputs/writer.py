@@ -141,6 +141,12 @@ def write_contrast(c: ContrastResult, analysis: AnalysisResult, folder: Path, ma
                                              c.participants))
     write_tsv(folder / "cluster_timecourses.tsv",
               tables.timecourse_table(c, analysis.participants, taxis))
+    within_col = analysis.settings.get("model", {}).get("within")
+    if c.within and within_col and analysis.maps_data is not None:
+        write_tsv(folder / "condition_timecourses.tsv",
+                  tables.condition_timecourse_table(
+                      c, analysis.maps, within_col, analysis.participants, analysis.maps_data,
+                      analysis.maps_time_index, taxis))
     atab = None
     if atlas:
         atab = tables.atlas_table(c, grid, atlas)

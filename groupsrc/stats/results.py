@@ -164,3 +164,7 @@ class AnalysisResult:
     #: the mixed model's per-feature fit (``mixed = true``): variance components, ICC,
     #: fit codes and their counts (see ``pipeline._fit_mixed``)
     model: dict | None = None
+    #: every map's data (maps x sources x all samples, e.g. the loading cache) and the
+    #: analysed samples' indices, for the outputs' per-condition cluster time courses
+    maps_data: np.ndarray | None = None
+    maps_time_index: np.ndarray | None = None
