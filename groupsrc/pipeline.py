@@ -21,6 +21,7 @@ import pandas as pd
 from . import __version__
 from .inputs.cohort import Cohort, load_cohort, summary
 from .inputs.design import ID, Design, build_design, plan_contrast, reduction_matrix
+from .inputs.underlay import read_underlay
 from .inputs.mixed_design import (MixedModelDesign, build_mixed_design, incomplete_participants,
                                   map_counts, plan_mixed_contrast)
 from .inputs.problems import InputError, ProblemList
@@ -48,6 +49,8 @@ class Prepared:
     glm_design: Design | None = None
     #: participants the GLM contrasts leave out (listed by check, report and methods)
     glm_excluded: list | None = None
+    #: the anatomical underlay for the figures (``[cohort] underlay``), or None
+    underlay: object | None = None
 
 
 def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
@@ -75,6 +78,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
                         plan_contrast(spec, design, problems,
                                       f"{settings.path} contrast '{spec.name}'")
         raise InputError(problems) from None
+    underlay = read_underlay(settings, cohort.grid, problems, cohort.inputs)
     parts = cohort.participants.reset_index(drop=True)
     where = f"{settings.path} [model] between"
     design = build_design(settings, parts, problems, where)
@@ -110,7 +114,8 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
         summ["mixed_columns"] = list(mixed.X.columns)
         summ["random_effects"] = list(mixed.z_names)
         summ["glm_excluded"] = list(excluded)
-    return Prepared(settings, cohort, design, plans, tindex, summ, mixed, glm_design, excluded)
+    return Prepared(settings, cohort, design, plans, tindex, summ, mixed, glm_design, excluded,
+                    underlay)
 
 
 def _model_of(spec, settings) -> str:
@@ -253,7 +258,8 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
                           participants=cohort.participants, maps=cohort.maps,
                           settings=settings_dict, timings=timings,
                           model=fitted["summary"] if fitted else None,
-                          maps_data=cohort.Y, maps_time_index=prep.time_index)
+                          maps_data=cohort.Y, maps_time_index=prep.time_index,
+                          underlay=prep.underlay)
 
 
 def _with_blocks(spec, cohort, ids, inf):
@@ -483,7 +489,8 @@ def declared_inputs(settings: Settings) -> list:
     and (best effort) the maps the maps table lists; the loading stage reports
     any problem with them."""
     paths = [settings.path] + [settings.resolve(settings.cohort.get(k)) for k in
-                               ("participants", "maps", "mask", "atlas", "atlas_labels")
+                               ("participants", "maps", "mask", "atlas", "atlas_labels",
+                                "underlay")
                                + SURFACE_KEYS]
     mpath = settings.resolve(settings.cohort.get("maps"))
     if mpath is not None and mpath.is_file():

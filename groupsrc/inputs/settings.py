@@ -67,6 +67,10 @@ ESTIMATIONS = ("reml", "ml")
 MODELS = ("glm", "mixed")
 
 
+def _nifti_name(v) -> bool:
+    return v.strip().lower().endswith((".nii", ".nii.gz"))
+
+
 def _unit_text(v) -> bool:
     return 0 < len(v.strip()) <= 24 and v.isprintable()
 
@@ -144,6 +148,10 @@ SCHEMA = {
         "atlas_right": Key(str, None, "GIfTI label file of the right hemisphere as atlas",
                            _gifti_name, "must name a GIfTI label file (.gii)",
                            'e.g. atlas_right = "template/right.label.gii"'),
+        "underlay": Key(str, None, "anatomical NIfTI drawn under the volume figures (any grid "
+                        "with an affine; resampled)", _nifti_name,
+                        "must name a NIfTI file (.nii or .nii.gz)",
+                        'e.g. underlay = "template/t1.nii.gz"'),
         "unit": Key(str, None, "unit of the map values, e.g. \"nA m\"; shown in axis labels, "
                     "table headers and the methods text", _unit_text,
                     "must be a short unit name (1 to 24 printable characters, no tab or "

@@ -17,7 +17,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 from jinja2 import Environment, PackageLoader, StrictUndefined, select_autoescape
+from markupsafe import Markup
 
+from .browser import browser_data, browser_script
 from .contrast_figures import contrast_figures
 from .files import write_text
 from .layout import (METHODS_FILE, REPORT_FILE, SUMMARY_FILE, check_results_folder, open_maps,
@@ -163,7 +165,7 @@ def _contrast_view(results: Path, c: dict, figs: list, unit: str) -> dict:
 
 
 def page_context(summary, contrast_summaries, figure_lists, results: Path, methods_md,
-                 model_figs=()) -> dict:
+                 model_figs=(), browser=None) -> dict:
     """Everything the template shows, as plain values (escaped by the template)."""
     st = summary.get("settings", {})
     unit = unit_of(summary)
@@ -199,6 +201,8 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
                                     indent=1),
         "methods": methods_blocks(methods_md),
         "mixed": model_section(results, summary, None),
+        "browser": browser,
+        "browser_js": Markup(browser_script()) if browser else "",
         "mixed_figures": [{"caption": cap, "uri": _image_uri(png),
                            "path": png.relative_to(results).as_posix()}
                           for cap, png in model_figs],
@@ -206,9 +210,9 @@ def page_context(summary, contrast_summaries, figure_lists, results: Path, metho
 
 
 def render_html(summary, contrast_summaries, figure_lists, results: Path, methods_md,
-                model_figs=()) -> str:
+                model_figs=(), browser=None) -> str:
     context = page_context(summary, contrast_summaries, figure_lists, results, methods_md,
-                           model_figs)
+                           model_figs, browser)
     return _environment().get_template("report.html.j2").render(**context)
 
 
@@ -248,5 +252,6 @@ def render_report(results_dir) -> Path:
     mfigs = model_figures(results, maps, summary, times_ms(summary["window"]))
     md = methods_text(summary, cs_list)
     write_text(results / METHODS_FILE, md)
-    page = render_html(summary, cs_list, figs, results, md, mfigs)
+    browser = browser_data(results, maps, summary, cs_list)
+    page = render_html(summary, cs_list, figs, results, md, mfigs, browser)
     return write_text(results / REPORT_FILE, page)

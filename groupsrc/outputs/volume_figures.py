@@ -8,9 +8,9 @@ Conventions:
   posterior/anterior or inferior/superior (letters in the labels, never on the
   data);
 * the statistic is drawn in full colour where it passes the cluster-forming
-  threshold and faded below it (so the pattern stays visible and the underlay
-  shows through); without a threshold (TFCE, max-stat, FDR, none) everywhere a
-  little transparent;
+  threshold and fades out below it (transparent at 0, so the underlay shows
+  through and the pattern stays visible); without a threshold (TFCE, max-stat,
+  FDR, none) it fades out toward 0 over the lower half of its colour range;
 * the underlay (:class:`~groupsrc.sources.underlay.Underlay`: an anatomical image
   resampled onto a display grid aligned with the world axes) is drawn in
   grey below the map, with an outline of the head or brain it shows; without
@@ -29,8 +29,9 @@ from ..sources.underlay import Underlay
 from .figures import (OUTLINE_CLUSTER, OUTLINE_MASK, SIGNED, _stat_range, new_figure, save,
                       stat_cmap, stat_colorbar)
 
-#: alpha of the statistic below the forming threshold, and everywhere without one
-FADED_ALPHA, PLAIN_ALPHA = 0.35, 0.85
+#: alpha of the statistic just below the forming threshold (falling to 0 at 0), and
+#: at half the colour range and beyond without a threshold
+FADED_ALPHA, PLAIN_ALPHA = 0.6, 0.9
 #: (name, projected axis, horizontal axis, vertical axis) of the three views
 VIEWS = [("sagittal", 0, 1, 2), ("coronal", 1, 0, 2), ("axial", 2, 0, 1)]
 #: axis label per world axis: the low and high ends' letters
@@ -91,11 +92,13 @@ def _draw_stat(ax, img2d, extent, kind, vlim, threshold):
     """The statistic, full colour beyond the threshold and faded below it."""
     cmap = stat_cmap(kind)
     img = np.asarray(img2d, float)
-    if threshold is not None and np.isfinite(threshold):
-        strong = np.abs(img) >= threshold if kind in SIGNED else img >= threshold
-        alpha = np.where(np.isfinite(img), np.where(strong, 1.0, FADED_ALPHA), 0.0)
+    size = np.abs(np.nan_to_num(img))
+    if threshold is not None and np.isfinite(threshold) and threshold > 0:
+        strong = size >= threshold
+        alpha = np.where(strong, 1.0, FADED_ALPHA * size / threshold)
     else:
-        alpha = np.where(np.isfinite(img), PLAIN_ALPHA, 0.0)
+        alpha = PLAIN_ALPHA * np.clip(size / max(abs(vlim[0]), abs(vlim[1]), 1e-12) * 2, 0, 1)
+    alpha = np.where(np.isfinite(img), alpha, 0.0)
     return ax.imshow(img.T, origin="lower", cmap=cmap, vmin=vlim[0], vmax=vlim[1],
                      extent=extent, interpolation="nearest", alpha=alpha.T, zorder=2)
 
@@ -105,8 +108,8 @@ def _draw_underlay_2d(ax, img2d, extent):
     v = np.asarray(img2d, float)
     pos = v[v > 0]
     top = float(np.percentile(pos, 99)) if pos.size else 1.0
-    ax.imshow(v.T, origin="lower", cmap="gray", vmin=0, vmax=top or 1.0, extent=extent,
-              interpolation="bilinear", zorder=1)
+    ax.imshow(np.ma.masked_less_equal(v, 0).T, origin="lower", cmap="gray", vmin=0,
+              vmax=1.25 * top or 1.0, extent=extent, interpolation="bilinear", zorder=1)
     if pos.size:
         xs = np.linspace(extent[0], extent[1], v.shape[0])
         ys = np.linspace(extent[2], extent[3], v.shape[1])

@@ -20,7 +20,8 @@ from ..stats.results import AnalysisResult, ContrastResult
 from .. import formats
 from . import tables
 from .files import jsonable, write_json, write_tsv
-from .layout import ALL_CLUSTERS, DATASET_DESCRIPTION, MODEL_DIR, RUN_RECORD, SUMMARY_FILE
+from .layout import (ALL_CLUSTERS, DATASET_DESCRIPTION, MODEL_DIR, RUN_RECORD, SUMMARY_FILE,
+                     UNDERLAY_FILE)
 from .mixed_outputs import write_model
 
 #: the BIDS specification version the description follows (1.10.0, from memory)
@@ -198,6 +199,11 @@ def write_results(analysis: AnalysisResult, out_dir: Path, run_record: dict) -> 
     write_tsv(out / ALL_CLUSTERS, all_clusters)
     if analysis.model is not None:
         write_model(analysis, maps, out / MODEL_DIR)
+    if analysis.underlay is not None:
+        u = analysis.underlay
+        formats.nifti.save(out / UNDERLAY_FILE, formats.nifti.grid_image(
+            np.asarray(u.values, np.float32), u.affine,
+            descrip="groupsrc underlay (display grid)"))
     if atlas:
         aframes = [w["atlas"] for w in written if w["atlas"] is not None and len(w["atlas"])]
         if aframes:

@@ -10,7 +10,8 @@ model, never the reverse.  NIfTI images are made and read only through
 Conventions of a build:
 
 * maps are 4D NIfTI-1 (x, y, z, time), float32 moment amplitude in nA m,
-  sform = qform = the template affine (mm), time in s; masks are uint8;
+  sform = qform = the template affine (mm), time in s; masks are uint8; the
+  anatomical underlay is a synthetic head on a grid of its own (:mod:`.underlay`);
 * tables are tab-separated with LF line ends;
 * NIfTI files are gzip-compressed without a timestamp and every random
   quantity comes from the seed, so two builds with one seed are
@@ -36,10 +37,11 @@ from ..formats import nifti
 from .model import simulate
 from .settings import EFFECTS, packaged_text, scenario_settings, size_settings
 from .truth import noise_free_effects, truth_masks
+from .underlay import head_image
 
 MARKER = ".groupsrc-demo-cohort"
 #: top-level entries a build writes (the only ones a rebuild replaces)
-OWN_ENTRIES = ("participants.tsv", "maps.tsv", "mask.nii.gz", "maps", "truth",
+OWN_ENTRIES = ("participants.tsv", "maps.tsv", "mask.nii.gz", "underlay.nii.gz", "maps", "truth",
                "analysis.toml", "scenario.toml", MARKER)
 
 
@@ -145,6 +147,9 @@ def _write_cohort(folder: Path, sim) -> None:
     _write(folder / "maps.tsv", sim.maps.to_csv(sep="\t", index=False, lineterminator="\n"))
     _write(folder / "mask.nii.gz", _nifti_gz(grid.mask.astype(np.uint8), grid.affine,
                                              descrip="groupsrc demo: source mask"))
+    head, affine = head_image(float(sim.model.cfg["head"]["brain_radius_mm"]))
+    _write(folder / "underlay.nii.gz", _nifti_gz(head, affine,
+                                                 descrip="groupsrc demo: synthetic head"))
 
 
 def _write_truth(folder: Path, sim, effects: dict, masks: dict) -> None:
@@ -234,6 +239,7 @@ title = "Velmora Listening Lab: rare versus frequent tones in patients and contr
 participants = "participants.tsv"
 maps = "maps.tsv"
 mask = "mask.nii.gz"
+underlay = "underlay.nii.gz"      # a synthetic head of the demo's own, on its own grid
 unit = "nA m"                     # minimum-norm moment amplitude
 
 [model]

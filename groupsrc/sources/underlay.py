@@ -19,7 +19,7 @@ from scipy import ndimage
 
 #: display voxels per template voxel along each axis, the margin around the template's
 #: box (mm), and the smallest display voxel (mm)
-REFINE, MARGIN_MM, MIN_VOXEL_MM = 4, 10.0, 1.0
+REFINE, MARGIN_MM, MIN_VOXEL_MM = 4, 30.0, 1.0
 #: at most this many display voxels (memory of the figures)
 MAX_VOXELS = 8_000_000
 

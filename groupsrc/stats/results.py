@@ -168,3 +168,6 @@ class AnalysisResult:
     #: analysed samples' indices, for the outputs' per-condition cluster time courses
     maps_data: np.ndarray | None = None
     maps_time_index: np.ndarray | None = None
+    #: the anatomical underlay on its display grid (volume analyses with
+    #: ``[cohort] underlay``): a :class:`~groupsrc.sources.underlay.Underlay`
+    underlay: object | None = None
