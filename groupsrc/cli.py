@@ -33,13 +33,18 @@ def _parser():
                    help="results folder (default: ./groupsrc_demo_results, with --surface "
                         "./groupsrc_surface_demo_results)")
     d.add_argument("--cohort-dir", type=Path, default=None,
-                   help="where to build the demo cohort (default: OUT/../groupsrc_demo_cohort)")
+                   help="where to build the demo cohort (default: beside the results folder, "
+                        "its name plus _cohort, e.g. ./groupsrc_demo_results_cohort)")
     d.add_argument("--small", action="store_true", help="a small, fast cohort (for tests)")
     d.add_argument("--surface", action="store_true",
                    help="the cortical-surface demo: GIfTI maps on a synthetic folded cortex")
-    d.add_argument("--resamples", type=int, default=None)
-    d.add_argument("--seed", type=int, default=None)
-    d.add_argument("--workers", type=int, default=1)
+    d.add_argument("--resamples", type=int, default=None,
+                   help="override the demo's [inference] resamples (default: the demo "
+                        "analysis file's value)")
+    d.add_argument("--seed", type=int, default=None,
+                   help="override the demo's [inference] seed of the rearrangements")
+    d.add_argument("--workers", type=int, default=1,
+                   help="parallel workers for the resampling (default 1), as for run")
     d.add_argument("--overwrite", action="store_true", help="replace an existing results folder")
     d.add_argument("--build-only", action="store_true", help="build and check the cohort only")
     d.add_argument("--quiet", action="store_true",

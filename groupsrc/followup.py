@@ -11,7 +11,9 @@ analysis's model is refitted on those means with statsmodels ``MixedLM``: the
 same fixed effects (the mixed model's columns, which ``groupsrc check``
 prints), a random intercept per participant and the analysis's random slopes,
 REML unless ``estimation = "ml"``.  Every contrast of the analysis is then
-estimated on the refit (``t_test`` of its weights; statsmodels' z and p).
+tested on the region means by the analysis's own mixed model (t or F with
+Satterthwaite df, as the run's maps), except, for a cluster, the contrast that
+selected it.
 
 Written to ``RESULTS_DIR_followup`` (or ``--out``), never into the results
 folder or an input:
@@ -20,8 +22,12 @@ folder or an input:
                        whether the same test selected it (the circularity caution)
 * ``region_means.tsv`` one row per map and region: participant, condition, session,
                        map covariates, participants' model columns, the mean
-* ``coefficients.tsv`` one row per region and term: fixed effects, variance parameters,
-                       contrasts, with estimate, standard error, z, p and 95% interval
+* ``coefficients.tsv`` one row per region and term: fixed effects and variance
+                       parameters (statsmodels MixedLM: estimate, SE, Wald z, p, 95%
+                       interval), contrasts (the analysis's own mixed model: estimate,
+                       SE, t or F with Satterthwaite df, p, 95% t-interval); for a
+                       cluster, the test of the contrast that selected it is left out
+                       ("circular, not reported")
 * ``followup.md``      the same, readable, with the caution
 
 Circularity: a cluster was selected by the test of its own contrast on these
@@ -57,6 +63,9 @@ CAUTION = ("estimates from a region selected by the same test are inflated (circ
            "cluster, not as an effect size")
 USER_NOTE = ("a region given by the user: if it was chosen by looking at these data, the "
              "same circularity caution applies")
+#: the note on the test of the contrast that selected a cluster region
+SELECTING_NOTE = ("circular, not reported: this contrast's test selected the region, so its "
+                  "t, df and p on the region say nothing new")
 
 
 @dataclass
@@ -501,21 +510,31 @@ def refit(values, mdesign, reml, contrasts):
             rows.append({"term": term, "kind": "variance", "estimate": cov[a, b]})
     rows.append({"term": "residual variance", "kind": "variance", "estimate": fit.scale})
     for name, L in contrasts:
-        L = np.atleast_2d(L)
-        if L.shape[0] > 1:
-            pad = np.zeros((L.shape[0], len(fit.params) - p))
-            ft = fit.f_test(np.hstack([L, pad]))
-            rows.append({"term": f"contrast {name} (F)", "kind": "contrast",
-                         "estimate": float(np.squeeze(ft.fvalue)),
-                         "p": float(np.squeeze(ft.pvalue))})
-            continue
-        tt = fit.t_test(L)
-        lo, hi = np.asarray(tt.conf_int())[0]
-        rows.append({"term": f"contrast {name}", "kind": "contrast",
-                     "estimate": float(np.squeeze(tt.effect)), "std_error": float(np.squeeze(tt.sd)),
-                     "z": float(np.squeeze(tt.tvalue)), "p": float(np.squeeze(tt.pvalue)),
-                     "ci_low": lo, "ci_high": hi})
+        rows.append({"term": f"contrast {name}" + (" (F)" if np.ndim(L) == 2 and
+                                                    np.shape(L)[0] > 1 else ""),
+                     "kind": "contrast", "contrast": name,
+                     **_contrast_test(values, mdesign, reml, L)})
     return rows, note
+
+
+def _contrast_test(values, mdesign, reml, L) -> dict:
+    """The contrast on the region means by the analysis's own mixed model (REML or ML,
+    Satterthwaite df; F by Fai and Cornelius): estimate, SE, t (or F), df, p and the
+    95% t-interval at that df."""
+    from scipy import stats as sps
+    from .stats.models.mixed.fit import fit_features
+    from .stats.models.mixed.inference import contrast_statistics
+    from .stats.models.mixed.model import MixedCore
+    y = np.asarray(values, np.float64)[:, None]
+    fit = fit_features(MixedCore(mdesign.stats_design()), y, reml=reml)
+    cs = contrast_statistics(fit, y, np.atleast_2d(np.asarray(L, float)))
+    df = float(cs.df[0])
+    if cs.k > 1:
+        return {"F": float(cs.statistic[0]), "df": df, "df1": cs.k, "p": float(cs.p[0])}
+    est, se = float(cs.estimate[0]), float(cs.se[0])
+    q = float(sps.t.ppf(0.975, df)) if np.isfinite(df) and df > 0 else np.nan
+    return {"estimate": est, "std_error": se, "t": float(cs.statistic[0]), "df": df,
+            "p": float(cs.p[0]), "ci_low": est - q * se, "ci_high": est + q * se}
 
 
 def _contrast_weights(prep, mdesign):
@@ -589,7 +608,12 @@ def _tables(prep, regions, means, mdesign, reml, contrasts):
         mean_rows.append(frame)
         rows, note = refit(means[:, j], mdesign, reml, contrasts)
         for row in rows:
-            coef_rows.append({"region": r.name, **row, "circular": "yes" if r.circular else "no"})
+            selecting = r.circular and row.pop("contrast", None) == r.contrast
+            row.pop("contrast", None)
+            if selecting:            # the test that chose the region: its result is circular
+                row.update({k: np.nan for k in ("t", "F", "df", "df1", "p")})
+            coef_rows.append({"region": r.name, **row, "circular": "yes" if r.circular else "no",
+                              "note": SELECTING_NOTE if selecting else "n/a"})
         src, smp = np.flatnonzero(r.points.any(axis=1)), np.flatnonzero(r.points.any(axis=0))
         region_rows.append({"region": r.name, "origin": r.origin, "contrast": r.contrast,
                             "cluster": r.cluster, "description": r.what,
@@ -598,8 +622,8 @@ def _tables(prep, regions, means, mdesign, reml, contrasts):
                             "circular": "yes" if r.circular else "no",
                             "caution": CAUTION if r.circular else USER_NOTE,
                             "fit_note": note or "n/a"})
-    coef_cols = ["region", "term", "kind", "estimate", "std_error", "z", "p", "ci_low",
-                 "ci_high", "circular"]
+    coef_cols = ["region", "term", "kind", "estimate", "std_error", "z", "t", "F", "df", "df1",
+                 "p", "ci_low", "ci_high", "circular", "note"]
     return {"regions.tsv": pd.DataFrame(region_rows),
             "region_means.tsv": pd.concat(mean_rows, ignore_index=True),
             "coefficients.tsv": pd.DataFrame(coef_rows).reindex(columns=coef_cols)}
@@ -614,17 +638,50 @@ def _markdown(tables, regions, results, reml) -> str:
     for r, row in zip(regions, tables["regions.tsv"].to_dict("records")):
         lines += [f"## {r.name}", "", f"{r.what}; {row['n_points']} source x sample points."
                   + ("" if r.circular else f" Note: {USER_NOTE}."), "",
-                  f"statsmodels MixedLM ({'REML' if reml else 'ML'}) on the region mean of "
-                  "every map, the analysis's fixed and random effects:", "",
-                  "| term | estimate | std. error | z | p |", "|---|---|---|---|---|"]
+                  f"The region mean of every map, refitted with the analysis's fixed and "
+                  f"random effects ({'REML' if reml else 'ML'}): fixed effects and variances "
+                  "by statsmodels MixedLM (Wald z); the contrasts by the analysis's own mixed "
+                  "model (t or F with Satterthwaite df). Intervals are 95%.", "",
+                  "| term | estimate [95% CI] | std. error | test | p |",
+                  "|---|---|---|---|---|"]
         for c in coefs[coefs.region == r.name].to_dict("records"):
-            cells = [f"{c[k]:.4g}" if isinstance(c[k], float) and np.isfinite(c[k]) else ""
-                     for k in ("estimate", "std_error", "z", "p")]
-            lines.append(f"| {c['term']} | " + " | ".join(cells) + " |")
+            lines.append(f"| {c['term']} | {_est_ci(c)} | {_num(c.get('std_error'))} | "
+                         f"{_test_text(c)} | {_p_text(c)} |")
         if row["fit_note"] != "n/a":
             lines += ["", f"statsmodels said: {row['fit_note']}"]
         lines.append("")
     return "\n".join(lines) + "\n"
+
+
+def _num(v, digits=4) -> str:
+    try:
+        v = float(v)
+    except (TypeError, ValueError):
+        return ""
+    return f"{v:.{digits}g}" if np.isfinite(v) else ""
+
+
+def _est_ci(c) -> str:
+    est, lo, hi = _num(c.get("estimate")), _num(c.get("ci_low")), _num(c.get("ci_high"))
+    return f"{est} [{lo}, {hi}]" if est and lo and hi else est
+
+
+def _test_text(c) -> str:
+    if c.get("note", "n/a") == SELECTING_NOTE:
+        return "circular, not reported"
+    if _num(c.get("t")):
+        return f"t({_num(c.get('df'), 3)}) = {_num(c.get('t'), 3)}"
+    if _num(c.get("F")):
+        return f"F({_num(c.get('df1'), 3)}, {_num(c.get('df'), 3)}) = {_num(c.get('F'), 3)}"
+    if _num(c.get("z")):
+        return f"z = {_num(c.get('z'), 3)}"
+    return ""
+
+
+def _p_text(c) -> str:
+    if c.get("note", "n/a") == SELECTING_NOTE:
+        return "circular, not reported"
+    return _num(c.get("p"), 3)
 
 
 def _target(results, out, overwrite, inputs, problems) -> Path | None:
