@@ -110,7 +110,8 @@ def glance(contrasts: list, tables: dict, effect_names: dict, unit: str) -> dict
                 _with_ci(r["std_effect_at_peak"], r["std_effect_ci_low"],
                          r["std_effect_ci_high"]) + f" ({effect_names.get(c['name'], '')})"]})
     legend = [(k, v.format(unit=unit)) for k, v in GLANCE_COLUMNS.items()]
-    return {"columns": [header(k) for k in GLANCE_COLUMNS], "rows": rows, "legend": legend,
+    columns = [{**header(k), "unit": unit if k in UNIT_COLUMNS else ""} for k in GLANCE_COLUMNS]
+    return {"columns": columns, "rows": rows, "legend": legend,
             "width": len(GLANCE_COLUMNS)}
 
 
@@ -176,7 +177,8 @@ def _cell(v) -> str:
 
 
 #: columns in the maps' unit (their headers show it)
-UNIT_COLUMNS = ("estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "estimate", "value")
+UNIT_COLUMNS = ("estimate_at_peak", "estimate_ci_low", "estimate_ci_high", "estimate", "value",
+                "peak estimate [95% CI]")
 
 
 def table_view(frame: pd.DataFrame | None, columns=None, docs=None, highlight=None,
