@@ -1,4 +1,4 @@
-"""Command line: ``groupsrc demo | check | run | report | followup``.
+"""Command line: ``groupsrc demo | check | run | report | followup | cache | init``.
 
 Exit codes: 0 success, 1 a problem with the data or design (every problem
 listed), 2 a usage error.
@@ -73,6 +73,26 @@ def _parser():
     r.add_argument("--quiet", action="store_true",
                    help="no progress bars or progress lines (problems are still printed)")
 
+    i = sub.add_parser("init", help="write maps.tsv, a participants.tsv skeleton and an "
+                       "analysis file from BIDS-like map file names (sub-01_cond-rare_...)")
+    i.add_argument("maps_folder", type=Path, metavar="MAPS_FOLDER",
+                   help="the folder holding the map files (searched recursively)")
+    i.add_argument("--out", type=Path, default=None,
+                   help="where to write the three files (default: the folder holding "
+                        "MAPS_FOLDER); an existing file is never overwritten")
+
+    k = sub.add_parser("cache", help="show the loading cache (entries, size, limit); clear "
+                       "it or set its size limit")
+    k.add_argument("--folder", type=Path, default=None,
+                   help="the cache folder (default: $GROUPSRC_CACHE_DIR, else "
+                        "~/.cache/groupsrc; give an analysis file's [cohort] cache here)")
+    k.add_argument("--clear", action="store_true",
+                   help="remove every entry (always safe: the next check or run decodes the "
+                        "maps again)")
+    k.add_argument("--limit", default=None, metavar="SIZE",
+                   help="keep the folder within SIZE (e.g. 8G), removing the entries used "
+                        "least recently; stored in the folder")
+
     rp = sub.add_parser("report", help="rebuild figures and report from a results folder")
     rp.add_argument("results", type=Path, help="results folder written by 'groupsrc run'")
 
@@ -115,15 +135,54 @@ def _check_options(args, parser):
             args.memory = parse_size(args.memory)
         except ValueError as exc:
             parser.error(f"--memory: {exc}")
+        from .stats.engine.memory import physical_memory, size_text
+        total = physical_memory()
+        if total and args.memory > total:
+            parser.error(f"--memory: {size_text(args.memory)} is more than this machine's "
+                         f"memory ({size_text(total)}); the bound is for this run's working "
+                         "set: give a size below that, or leave --memory out")
+    if getattr(args, "command", None) == "cache" and args.limit is not None:
+        try:
+            args.limit = parse_size(args.limit)
+        except ValueError as exc:
+            parser.error(f"--limit: {exc}")
     from .stats.inference import SEED_LIMIT
     seed = getattr(args, "seed", None)
     if seed is not None and not 0 <= seed < SEED_LIMIT:
         parser.error(f"--seed must be a whole number from 0 to {SEED_LIMIT - 1}, got {seed}")
 
 
+#: options that take a value which may start with '-' (a mistyped "--memory -5G" is
+#: then checked as a value and refused with its reason, not as "expected one argument")
+_VALUE_OPTIONS = ("--memory", "--scheduler", "--resamples", "--seed", "--workers", "--out",
+                  "--cohort-dir", "--contrast")
+
+
+def _dash_values(argv, parser) -> list:
+    """``--memory -5G`` -> ``--memory=-5G`` when ``-5G`` is not an option of ours."""
+    known = set()
+    for action in parser._actions:
+        known.update(action.option_strings)
+        for sub in (getattr(action, "choices", None) or {}).values():
+            if isinstance(sub, argparse.ArgumentParser):
+                known.update(o for a in sub._actions for o in a.option_strings)
+    out, i = [], 0
+    while i < len(argv):
+        a = str(argv[i])
+        if a in _VALUE_OPTIONS and i + 1 < len(argv) and str(argv[i + 1]).startswith("-") \
+                and str(argv[i + 1]) not in known:
+            out.append(f"{a}={argv[i + 1]}")
+            i += 2
+            continue
+        out.append(argv[i])
+        i += 1
+    return out
+
+
 def main(argv=None) -> int:
     parser = _parser()
-    args = parser.parse_args(argv)
+    raw = list(sys.argv[1:] if argv is None else argv)
+    args = parser.parse_args(_dash_values(raw, parser))
     if args.command is None:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
@@ -136,10 +195,10 @@ def main(argv=None) -> int:
         print(exc.problems.format(), file=sys.stderr)
         return EXIT_DATA
     except BackendUnavailable as exc:
-        print(f"1 problem found:\n  1. --scheduler {args.scheduler}: {exc} -> start the "
-              "scheduler and its workers first, check the address and port, or use "
-              "--scheduler local:N (or leave --scheduler out) to run on this machine",
-              file=sys.stderr)
+        print(f"1 problem found:\n  1. --scheduler: {exc} -> start the scheduler and its "
+              "workers first, check the address and port (a scheduler's own port, usually "
+              "8786), or use --scheduler local:N (or leave --scheduler out) to run on this "
+              "machine", file=sys.stderr)
         return EXIT_DATA
     except OSError as exc:
         # the file system refused (permission, disk full, ...): not a bug of ours
@@ -194,8 +253,22 @@ def _log_to_stderr():
         logger.propagate = False
 
 
+def _cap_workers(args):
+    """``--workers`` above the cores this process may use: use one per core, and say so
+    (results never depend on the count; every thread holds its own scoring arrays)."""
+    from .stats.engine.backends import cap_threads
+    n = getattr(args, "workers", None)
+    if n is None:
+        return
+    use, why = cap_threads(n)
+    if why:
+        logging.getLogger("groupsrc").info(f"--workers {n}: using {use}, one per core ({why})")
+        args.workers = use
+
+
 def _dispatch(args, argv) -> int:
     command = ["groupsrc"] + (list(argv) if argv is not None else sys.argv[1:])
+    _cap_workers(args)
     if args.command == "check":
         return cmd_check(args.analysis, as_json=args.json)
     if args.command == "run":
@@ -218,6 +291,10 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "demo":
         return cmd_demo(args, command)
+    if args.command == "cache":
+        return cmd_cache(args)
+    if args.command == "init":
+        return cmd_init(args)
     if args.command == "followup":
         from .followup import followup
         notes = []
@@ -269,7 +346,14 @@ def cmd_check(analysis: Path, as_json=False) -> int:
                   "not sources")
     print(f"  samples      : {s['samples']}, {s['time_range_ms'][0]:g} to "
           f"{s['time_range_ms'][1]:g} ms every {s['sampling_interval_ms']:g} ms")
+    from .pipeline import window_text
+    tw = settings.inference.get("time_window")
+    print(f"  window       : {window_text(s)} analysed"
+          + (f" (time_window [{tw[0]:g}, {tw[1]:g}] s)" if tw else " (all samples)"))
     print(f"  loading cache: {'reused' if prep.cohort.cache_hit else 'built'}")
+    from .pipeline import run_notes
+    for note in run_notes(settings, prep):
+        print(f"  note         : {note}")
     left_out = len(prep.summary.get("glm_excluded") or ())
     used = (f" ({prep.design.X.shape[0] - left_out} in the GLM contrasts, see below)"
             if left_out and any(p.model != "mixed" for p in prep.plans) else "")
@@ -281,6 +365,69 @@ def cmd_check(analysis: Path, as_json=False) -> int:
         model = ", mixed model" if plan.model == "mixed" else ""
         print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}{model}] "
               f"{plan.description}")
+    return EXIT_OK
+
+
+def cmd_init(args) -> int:
+    """``groupsrc init MAPS_FOLDER``: the three files of a new analysis (scaffold.py)."""
+    from .scaffold import build
+    s = build(args.maps_folder, args.out)
+    kind = {"nifti": "NIfTI volumes", "gifti": "GIfTI maps per hemisphere",
+            "cifti": "CIFTI-2 dense time series"}[s.kind]
+    print(f"wrote to {s.folder}:")
+    print(f"  maps.tsv         : {s.maps} maps ({kind}) of {len(s.participants)} participants"
+          + (f"; conditions {', '.join(s.conditions)}" if s.conditions else "")
+          + (f"; sessions {', '.join(s.sessions)}" if s.sessions else ""))
+    print(f"  participants.tsv : {len(s.participants)} participants, an empty 'group' column "
+          "to fill in (add columns for other attributes, e.g. age)")
+    print("  analysis.toml    : a commented analysis file"
+          + (f" (contrast {s.conditions[0]} minus {s.conditions[1]})" if len(s.conditions) > 1
+             else " (the mean response against zero)"))
+    if s.skipped:
+        print(f"  skipped {s.skipped} file(s) that are not maps (.nii, .nii.gz, .func.gii, "
+              ".dtseries.nii)")
+    todo = ["state the maps' unit, e.g. unit = \"nA m\""]
+    if s.kind in ("gifti", "cifti"):
+        todo.append("give the template meshes (mesh_left / mesh_right)")
+    todo.append("set the model and contrasts")
+    print(f"next: edit analysis.toml ({'; '.join(todo)}), then run "
+          f"groupsrc check {s.folder / 'analysis.toml'}")
+    return EXIT_OK
+
+
+def cmd_cache(args) -> int:
+    """``groupsrc cache``: what the loading cache holds; ``--clear``, ``--limit``."""
+    import datetime
+
+    from .inputs import cache
+    from .stats.engine.memory import size_text
+    folder = (args.folder or cache.default_cache_dir()).expanduser()
+    print(f"loading cache: {folder}")
+    if args.limit is not None:
+        cache.set_limit(folder, args.limit)
+        removed = cache.enforce_limit(folder)
+        print(f"  limit set to {size_text(args.limit)}"
+              + (f"; removed {len(removed)} entr{'y' if len(removed) == 1 else 'ies'} used "
+                 "least recently" if removed else ""))
+    if args.clear:
+        n, freed, live = cache.clear(folder)
+        print(f"  cleared: {n} entr{'y' if n == 1 else 'ies'} removed, {size_text(freed)} freed"
+              + (f"; {len(live)} temporary file(s) of running processes left alone"
+                 if live else ""))
+    for name in cache.remove_dead_temporaries(folder):
+        print(f"  removed {name} (a temporary file of an interrupted run)")
+    cap, origin = cache.limit(folder)
+    found = cache.entries(folder)
+    total = sum(e.size for e in found)
+    print(f"  limit        : {size_text(cap)} ({origin}; change with groupsrc cache --limit "
+          "SIZE)")
+    print(f"  entries      : {len(found)}, {size_text(total)} in all"
+          + ("" if folder.is_dir() else " (the folder does not exist yet)"))
+    for e in reversed(found):                          # most recently used first
+        shape = (f"{e.shape[1]} sources x {e.shape[2]} samples, "
+                 if e.shape and len(e.shape) == 3 else "")
+        when = datetime.datetime.fromtimestamp(e.last_use).strftime("%Y-%m-%d %H:%M")
+        print(f"    {e.key[:12]}  {shape}{size_text(e.size)}, last used {when}")
     return EXIT_OK
 
 

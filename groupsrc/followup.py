@@ -141,9 +141,14 @@ def _cluster_regions(results, summary, maps, contrast, clusters, problems):
             ptxt = f", corrected p = {p:.3g}" if isinstance(p, float) and np.isfinite(p) else ""
             out.append(Region(f"{name}_cluster{k}", labels == k, "cluster", name, int(k), True,
                               f"cluster {k} of contrast {name} ({row['t_start_ms']:g} to "
-                              f"{row['t_end_ms']:g} ms, {int(row['n_sources'])} sources"
+                              f"{row['t_end_ms']:g} ms, {_sources(row['n_sources'])}"
                               f"{ptxt})"))
     return out
+
+
+def _sources(n) -> str:
+    """'1 source', '12 sources'."""
+    return f"{int(n)} source{'' if int(n) == 1 else 's'}"
 
 
 def _mask_region(masks, window, maps, summary, problems, notes):
@@ -173,7 +178,7 @@ def _mask_region(masks, window, maps, summary, problems, notes):
     stems = list(dict.fromkeys(Path(m).name.split(".")[0] for m in masks))
     kept = f" ({'; '.join(left_out)})" if left_out else ""
     return Region(f"mask_{'+'.join(stems)}", src[:, None] & keep_t[None, :], "mask",
-                  what=f"{', '.join(Path(m).name for m in masks)}, {int(src.sum())} sources"
+                  what=f"{', '.join(Path(m).name for m in masks)}, {_sources(src.sum())}"
                   f"{kept}, {t_used[0] * 1e3:g} to {t_used[-1] * 1e3:g} ms")
 
 

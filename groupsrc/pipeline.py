@@ -28,6 +28,7 @@ from .inputs.problems import InputError, ProblemList
 from .stats.results import AnalysisResult, ContrastResult
 from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
 from .inputs.tables import HEMISPHERE_PATHS
+from .inputs.timecheck import analysed_window, check_time_axis
 
 log = logging.getLogger("groupsrc")
 #: one line per stage with its duration; silent with --quiet (notices stay on ``log``)
@@ -97,18 +98,17 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     if design is None and not problems:
         problems.add(where, "the design could not be built",
                      "check the formula and the columns it names")
-    tw = settings.inference.get("time_window")
-    tindex = cohort.time_axis.window(*(tw or (None, None)))
-    if tindex.size == 0:
-        t = cohort.time_axis.times
-        problems.add(f"{settings.path} [inference] time_window",
-                     f"{tw} holds no sample; the maps run from {t[0]:.4g} s to {t[-1]:.4g} s",
-                     "choose a window inside that range")
+    window = analysed_window(settings, cohort.time_axis, problems) \
+        if check_time_axis(settings, cohort.time_axis, problems) else None
+    tindex = window.index if window is not None else np.arange(0)
     if not problems:
         _check_reduced_range(cohort, plans, settings, problems)
     if problems:
         raise InputError(problems)
     summ = summary(cohort, settings)
+    summ.update(window.summary())
+    if window.notes:
+        summ["notes"] = list(window.notes)
     if settings.model.get("mixed"):
         summ.update(map_counts(cohort.maps, design.participants, settings.model.get("within")))
         summ["mixed_columns"] = list(mixed.X.columns)
@@ -358,16 +358,25 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     new_progress = reporter(quiet=quiet) if progress is None else _reporter(progress)
     for action in sweep_stale(out):
         log.info(action)
+    from .stats.engine.memory import remove_dead_work_dirs
+    for name in remove_dead_work_dirs():
+        log.info(f"removed the temporary folder {name} of an interrupted run")
     # cheap check first (declared inputs), full check once every map is known
     check_target(out, overwrite=overwrite, inputs=declared_inputs(settings))
     prep = prepare(settings, progress=new_progress)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
     stage_log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
-                   + (" (loading cache reused)" if prep.cohort.cache_hit else ""))
+                   + (" (loading cache reused)" if prep.cohort.cache_hit else "")
+                   + "; analysing " + window_text(prep.summary))
+    for note in run_notes(settings, prep, resamples):
+        log.info(note)
     if scheduler:                  # an unanswering scheduler is refused before any work
         from .stats.engine.backends import dask_client
-        dask_client(scheduler)
+        notes = []
+        dask_client(scheduler, per_worker_bytes=_worker_bytes(prep), notes=notes)
+        for note in notes:
+            log.info(note)
     checkpoint = open_checkpoint(out, prep, resamples, seed, resume)
     try:
         result = analyse(prep, resamples=resamples, seed=seed, workers=workers,
@@ -395,6 +404,35 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     checkpoint.remove()            # the results are in place: nothing left to resume
     stage_log.info(f"results written in {time.perf_counter() - t_stats:.1f} s")
     return out
+
+
+def run_notes(settings, prep, resamples=None) -> list:
+    """Notices about a run that is valid but cannot give what it seems to promise:
+    fewer resamples than the smallest corrected p at ``alpha`` needs."""
+    inf = inference_settings(settings, resamples)
+    notes = list(prep.summary.get("notes", []))
+    m, alpha = int(inf["resamples"]), float(inf["alpha"])
+    if inf["correction"] not in ("fdr", "none") and m * alpha < 1:
+        need = int(np.ceil(1 / alpha - 1e-9))
+        notes.append(f"{m} resample{'s' if m != 1 else ''} (the observed data included): no "
+                     f"corrected p can be below 1/{m} = {1 / m:.3g}, so nothing can reach "
+                     f"alpha = {alpha:g}; that needs at least {need} resamples (5000 give p "
+                     "to 0.0002)")
+    return notes
+
+
+def window_text(summ) -> str:
+    """'0 to 500 ms, 126 samples' of the window analysed."""
+    a, b = summ["window_ms"]
+    return f"{a:g} to {b:g} ms, {summ['window_samples']} samples"
+
+
+def _worker_bytes(prep) -> int:
+    """About what each Dask worker holds for a contrast: the per-participant data, their
+    residuals and product buffers (three arrays of the maps' size at most), and a batch."""
+    from .stats.engine.backends import MEMORY_BUDGET
+    n, s = prep.cohort.Y.shape[0], prep.cohort.grid.n_sources
+    return int(3 * 4 * n * s * len(prep.time_index) + MEMORY_BUDGET)
 
 
 def checkpoint_folder(out) -> Path:

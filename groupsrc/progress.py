@@ -5,7 +5,9 @@ Three modes, chosen once per run by :func:`reporter`:
 * ``bar`` -- stderr is a terminal: a bar with the rate and the time left
   (tqdm), one per stage;
 * ``lines`` -- stderr is not a terminal (a batch job's log): one line at
-  every ~10% with the rate and the time left, so a log file stays short;
+  every ~10% with the rate and the time left (timed from the first step's end,
+  so the one-off costs of the first step -- compiled code loaded, caches
+  warmed -- do not inflate it), so a log file stays short;
 * ``quiet`` -- ``--quiet``: nothing.
 
 A reporter is a callable ``new(desc, total, unit)`` returning a
@@ -35,13 +37,20 @@ class Progress:
         self.stream = stream
         self.t0 = time.monotonic()
         self.start = None          # done count when this process began (resumed runs)
+        #: (time, done) at the first step of work: the rate is timed from there, since
+        #: the first step also pays one-off costs (compiled code loaded or compiled,
+        #: caches warmed) that would make the time left far too long
+        self.first = None
         self.printed = 0.0         # share at the last line printed
         self.last = 0              # done count at the previous update
         self.bar = None
         if mode == "bar":
             from tqdm import tqdm
+            # the rate and time left are ours (timed from the first step's end), as in
+            # the lines mode; tqdm's would include the first step's one-off costs
             self.bar = tqdm(total=self.total, desc=desc, unit=unit, file=self._out(),
-                            leave=False, dynamic_ncols=True)
+                            leave=False, dynamic_ncols=True,
+                            bar_format="{l_bar}{bar}| {n_fmt}/{total_fmt} [{elapsed}{postfix}]")
 
     def _out(self):
         return self.stream if self.stream is not None else sys.stderr
@@ -53,8 +62,11 @@ class Progress:
         done = int(done)
         if self.start is None:
             self.start = done if done < self.total else 0
+        if self.first is None and done > self.start:
+            self.first = (time.monotonic(), done)
         if self.bar is not None:
             self.bar.n = done
+            self.bar.postfix = self._rate(done)[2:] or None
             self.bar.refresh()
         elif self.mode == "lines" and self.total:
             share = done / self.total
@@ -69,8 +81,11 @@ class Progress:
             self.close()
 
     def _rate(self, done):
-        spent = time.monotonic() - self.t0
-        work = done - (self.start or 0)
+        """', 12.5 resamples/s, 3 min left' from the work after the first step ('' before)."""
+        if self.first is None:
+            return ""
+        spent = time.monotonic() - self.first[0]
+        work = done - self.first[1]
         if spent <= 0 or work <= 0:
             return ""
         rate = work / spent

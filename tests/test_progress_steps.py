@@ -62,3 +62,25 @@ def test_progress_lines_every_tenth():
     batches = _lines(list(range(96, 1000, 96)) + [1000])
     assert batches[0] == "10%" and len(batches) == 11
     assert _lines([500, 1000]) == ["50%", "100%"]
+
+
+def test_time_left_is_timed_after_the_first_step(monkeypatch):
+    """The first step pays one-off costs (compiled code loaded or compiled); the time left
+    comes from the work after it.  Here the first 100 of 1000 take 20 s, every later 100
+    one second: after 200 the honest estimate is 800 / (100 per s) = 8 s (arithmetic)."""
+    import io
+
+    import groupsrc.progress as progress
+    clock = [0.0]
+    monkeypatch.setattr(progress.time, "monotonic", lambda: clock[0])
+    out = io.StringIO()
+    bar = progress.reporter(stream=out)("resampling c", 1000, "resample")
+    assert bar.mode == "lines"
+    bar.update(0)
+    for t, done in ((20.0, 100), (21.0, 200), (22.0, 300)):
+        clock[0] = t
+        bar.update(done)
+    lines = out.getvalue().splitlines()
+    assert lines[0].endswith("(100/1000 resamples)"), lines     # no estimate yet
+    assert lines[1].endswith("(200/1000 resamples), 100 resamples/s, 8 s left"), lines
+    assert lines[2].endswith("(300/1000 resamples), 100 resamples/s, 7 s left"), lines

@@ -163,8 +163,9 @@ def test_a_lock_of_a_dead_process_is_taken_over_once(cohort, tmp_path, capsys):
     assert "took over" not in capsys.readouterr().err
 
 
-def test_a_held_lock_refuses_in_this_process_too(tmp_path):
-    """Another holder in a second process: a plain flock, as any run takes it."""
+def test_a_lock_held_by_another_process_refuses_this_one(tmp_path):
+    """The holder is a second process taking the lock as any run does; the refusal names
+    it and its command, and the lock is free once that process is gone."""
     out = tmp_path / "res"
     code = ("import sys, time\nfrom groupsrc.outputs.folder import results_lock\n"
             f"with results_lock({str(out)!r}, command=['holder']):\n"

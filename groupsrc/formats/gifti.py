@@ -50,7 +50,8 @@ mesh               NIFTI_INTENT_POINTSET /     GeometricType = Anatomical
 Each array's ``Name`` metadata names the map and its sample time.  The time
 axis of a written map is kept in the file's metadata as ``time_start_s`` and
 ``sampling_interval_s`` (our names: the standard has no time axis), and read
-back from there by :func:`read_time_axis`.
+back from there by :func:`read_time_axis`; an input map that states them
+(README, "Writing your own maps") has its time axis read from them.
 """
 
 from __future__ import annotations
@@ -123,7 +124,8 @@ class GiftiHeader:
     structure: str | None        # hemisphere named by the file's metadata
     layout: str                  # "arrays" (one per sample) or "matrix" (one (V, T) array)
     format: str = "gifti"
-    time_axis: TimeAxis | None = None   # GIfTI carries none
+    #: GIfTI has none; ours (``time_start_s``, ``sampling_interval_s``) when the file states it
+    time_axis: TimeAxis | None = None
 
     @property
     def shape(self) -> tuple:
@@ -159,7 +161,18 @@ def read_header(path) -> GiftiHeader:
     else:
         raise ValueError(f"data arrays of shapes {shapes[:3]}: expected one array per sample "
                          "(vertices,) or one array (vertices, samples)")
-    return GiftiHeader(Path(path), int(n), int(t), structure_of(img), layout)
+    return GiftiHeader(Path(path), int(n), int(t), structure_of(img), layout,
+                       time_axis=_stated_time_axis(img, int(t)))
+
+
+def _stated_time_axis(img, n) -> TimeAxis | None:
+    """The time axis a map's metadata states (``time_start_s``, ``sampling_interval_s``,
+    as groupsrc writes them and README's recipe does), or None when it states none."""
+    meta = dict(img.meta)
+    try:
+        return TimeAxis(float(meta[TIME_START]), float(meta[TIME_STEP]), n)
+    except (KeyError, TypeError, ValueError):
+        return None
 
 
 def read_data(header: GiftiHeader, dtype=np.float32) -> np.ndarray:

@@ -72,10 +72,32 @@ def _check_cifti_vertices(headers, mpath, meshes, problems):
         for k, s in zip(keys, sets):
             if s != ref:
                 h = headers.pop(k)
-                problems.add(f"{mpath} row {k[0]} ({h.path})", f"holds a different set of "
-                             f"{hemi} vertices ({h.parts[hemi][1].size}) than most maps "
-                             f"({np.frombuffer(ref, np.int64).size})",
+                problems.add(f"{mpath} row {k[0]} ({h.path})",
+                             vertex_difference(hemi, h.parts[hemi][1],
+                                               np.frombuffer(ref, np.int64)),
                              FIX_MODELS)
+
+
+def vertex_difference(hemi, mine, most) -> str:
+    """How one file's vertices of a hemisphere differ from most maps' (indices into the
+    mesh), with a few of each kind named."""
+    mine, most = np.asarray(mine, np.int64), np.asarray(most, np.int64)
+    missing = np.setdiff1d(most, mine)
+    extra = np.setdiff1d(mine, most)
+
+    def some(a):
+        shown = ", ".join(str(int(x)) for x in a[:5])
+        return shown + (", ..." if a.size > 5 else "")
+    parts = []
+    if missing.size:
+        parts.append(f"{missing.size} of most maps' vertices are not in it (e.g. {some(missing)})")
+    if extra.size:
+        parts.append(f"it has {extra.size} vertices most maps lack (e.g. {some(extra)})")
+    if not parts:
+        parts.append("the same vertices in another order")
+    count = (f"{mine.size} {hemi} vertices, as most maps do, but not the same ones"
+             if mine.size == most.size else f"{mine.size} {hemi} vertices, most maps {most.size}")
+    return f"holds {count}: " + "; ".join(parts)
 
 
 def _voxel_signature(h):

@@ -24,7 +24,8 @@ from ..formats.nifti import (DecodeError, affine_difference, read_data, read_hea
                              read_sources)
 from .problems import InputError, ProblemList
 from .settings import Settings, is_surface
-from .tables import ID, MISSING, check_tables, map_path, read_table, real_path, rows_text
+from .tables import (HEMISPHERE_PATHS, ID, MISSING, check_tables, map_path, read_table,
+                     real_path, rows_text)
 
 
 
@@ -165,6 +166,66 @@ def check_same_files(settings, maps, mpath, digests, problems):
                          "or a copied participant")
 
 
+def content_digests(Y, skip=()) -> dict:
+    """{row: digest of its decoded values} for the rows of ``Y`` (maps, sources, time)
+    not in ``skip``; a memory-mapped ``Y``'s pages are handed back row by row."""
+    import hashlib
+
+    from ..stats.engine.pages import release
+    out = {}
+    for i in range(Y.shape[0]):
+        if i in skip:
+            continue
+        # SHA-1 for speed (hardware-assisted on most processors, about 1.5 GB/s here):
+        # an equality test between a cohort's own maps, not a guard against forgery
+        out[i] = hashlib.sha1(memoryview(np.ascontiguousarray(Y[i])).cast("B"),
+                              usedforsecurity=False).hexdigest()
+        release(Y)
+    return out
+
+
+#: maps with fewer values (sources x samples) are not compared by content: a few values can
+#: coincide by chance (e.g. weights of a tiny test cohort), thousands cannot
+MIN_CONTENT_POINTS = 64
+
+
+def same_content(Y, skip=()) -> list:
+    """Groups (row lists, two or more) of rows of ``Y`` that hold identical decoded data
+    (none for maps of fewer than ``MIN_CONTENT_POINTS`` values)."""
+    if Y.shape[0] == 0 or int(np.prod(Y.shape[1:])) < MIN_CONTENT_POINTS:
+        return []
+    by = {}
+    for i, d in content_digests(Y, skip).items():
+        by.setdefault(d, []).append(i)
+    return [rows for rows in by.values() if len(rows) > 1]
+
+
+def check_same_content(settings, maps, mpath, Y, problems, skip=(), cells=None):
+    """Maps of different files whose decoded data are identical are a problem.
+
+    The file check (:func:`check_same_files`) compares bytes; a map re-saved as
+    ``.nii`` instead of ``.nii.gz``, with another compression level or data type, or
+    converted from another format holds the same values in other bytes.  ``Y``'s rows
+    follow ``maps``' rows; ``cells(line)`` names a row's files (default: its path).
+    """
+    within = settings.model.get("within")
+    lines = list(maps.index)
+    cells = cells or (lambda line: maps.at[line, "path"])
+    for rows in same_content(Y, skip):
+        found = [lines[i] for i in rows]
+        first = np.asarray(Y[rows[0]])
+        why = (f"(every value {float(first.flat[0]):g}: an empty estimate?)"
+               if np.all(first == first.flat[0]) else
+               "(one map saved again, e.g. as .nii instead of .nii.gz or with another "
+               "compression)")
+        problems.add(f"{mpath} rows {rows_text(found)}",
+                     "maps " + ", ".join(str(cells(ln)) for ln in found) + " are different "
+                     f"files holding the same data once decoded {why}, used for "
+                     + "; ".join(_describe(maps, ln, within) for ln in found),
+                     "give each map its own data; a copied map gives a zero contrast or a "
+                     "copied participant")
+
+
 def _time_of(settings, header):
     t = header.time_axis
     t0 = settings.cohort.get("time_start")
@@ -250,6 +311,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         else:
             _cache.discard(Y)
     _decode_problems(problems, maps, mpath, headers, bad, broken)
+    check_same_content(settings, maps, mpath, Y, problems, skip=set(bad) | set(broken))
     if grid.n_sources == 0 and not broken:
         problems.add(mpath, "no source is finite in every map", "give a mask")
     if problems:
@@ -270,7 +332,9 @@ def _surface_cohort(settings, parts, maps, mpath, problems, progress, use_cache)
     """The surface branch: meshes, per-hemisphere maps (inputs/surface_cohort.py)."""
     got = surface_cohort.load_surface(settings, maps, mpath, problems, progress=progress,
                                       use_cache=use_cache)
-    if parts is None:
+    check_same_content(settings, maps, mpath, got.Y, problems, cells=lambda line: " + ".join(
+        str(maps.at[line, c]) for c in maps.columns if c in ("path",) + HEMISPHERE_PATHS))
+    if parts is None or problems:
         raise InputError(problems)
     return Cohort(participants=parts.set_index(ID, drop=False),
                   maps=maps.reset_index(drop=True), grid=got.space, time_axis=got.time_axis,

@@ -446,6 +446,12 @@ def check_neighbors(settings: "Settings", problems: ProblemList) -> None:
 
 #: Names Windows reserves for devices; a results folder cannot carry them.
 _RESERVED = {"con", "prn", "aux", "nul"} | {f"{p}{i}" for p in ("com", "lpt") for i in range(1, 10)}
+#: folders of the results folder that are not contrasts (outputs/layout.py: MODEL_DIR; kept
+#: in step by tests/test_input_plausibility.py)
+RESULT_FOLDERS = ("model",)
+#: longest contrast name: it names a folder, and paths inside it (file systems allow 255
+#: bytes per name, and some systems 260 characters per path)
+MAX_NAME_LENGTH = 64
 
 
 def _contrast(rc, i, where, model, names, problems):
@@ -466,7 +472,8 @@ def _contrast(rc, i, where, model, names, problems):
         problems.add(cwhere, "missing 'name'", "add name = \"my_contrast\"")
         name = f"contrast_{i + 1}"
     else:
-        cwhere = f"{where} contrast '{name}'"
+        shown = name if len(name) <= MAX_NAME_LENGTH else f"{name[:40]}..."
+        cwhere = f"{where} contrast '{shown}'"
         _check_name(name, cwhere, names, problems)
     n_before = len(problems)
     _check_contrast_content(c, cwhere, model, problems)
@@ -485,6 +492,14 @@ def _check_name(name, cwhere, names, problems):
     if name.casefold() in _RESERVED:
         problems.add(cwhere, f"'{name}' is a reserved device name on Windows",
                      "choose another name (it becomes a folder name in the results)")
+    if name.casefold() in RESULT_FOLDERS:
+        problems.add(cwhere, f"'{name}' is the name of a folder every results folder of a "
+                     "mixed model holds (its variance components)",
+                     "choose another name (it becomes a folder name in the results)")
+    if len(name) > MAX_NAME_LENGTH:
+        problems.add(cwhere, f"name is {len(name)} characters long; at most {MAX_NAME_LENGTH}",
+                     "shorten it (it becomes a folder name in the results); the description "
+                     "can hold the long form")
     key = name.casefold()
     if key in names:
         other = names[key]

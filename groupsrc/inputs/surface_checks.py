@@ -76,9 +76,44 @@ def read_meshes(settings, problems) -> dict:
         defects = mesh_defects(v.shape[0], t, closed=closed)
         for d in defects:
             problems.add(where, d, FIX_MESH)
-        if not defects:
+        extent = mesh_extent_problem(v)
+        if extent:
+            problems.add(where, *extent)
+        if not defects and not extent:
             out[hemi] = _Mesh(hemi, path, v, t)
     return out
+
+
+#: the largest side of a brain surface's bounding box, in mm, lies in this range: about
+#: 170 mm for a human hemisphere, 200 mm for a sphere-inflated one, some 15 mm for a
+#: rodent's cortex (common practice); metres or micrometres fall far outside
+PLAUSIBLE_EXTENT_MM = (5.0, 1000.0)
+
+
+def mesh_extent_problem(vertices):
+    """(what, fix) when a mesh's coordinates cannot be millimetres, else None."""
+    v = np.asarray(vertices, dtype=np.float64)
+    if v.size == 0:
+        return None
+    if not np.all(np.isfinite(v)):
+        return ("its coordinates hold NaN or infinite values",
+                "write the mesh with finite coordinates in mm")
+    side = float(np.max(np.ptp(v, axis=0)))
+    lo, hi = PLAUSIBLE_EXTENT_MM
+    if lo <= side <= hi:
+        return None
+    unit = ""
+    if side > hi:
+        unit = (" (they look like micrometres: divide them by 1000)" if 1e3 * lo <= side <= 1e3 * hi
+                else "")
+    elif 1e-3 * lo <= side <= 1e-3 * hi:
+        unit = " (they look like metres: multiply them by 1000)"
+    elif 1e-1 * lo <= side <= 1e-1 * hi:
+        unit = " (they may be centimetres: multiply them by 10)"
+    return (f"its coordinates span {side:.4g} units at most, implausible for a brain surface "
+            f"in mm (expected {lo:g} to {hi:g} mm){unit}",
+            "write the mesh's coordinates in millimetres; cluster tables and figures report "
+            "them as mm")
 
 
 def _vertex_file(settings, key, meshes, problems, reader, kind):
@@ -231,7 +266,7 @@ def _check_row_vertices(row, line, mpath, meshes, problems) -> list:
         if h.n_vertices != meshes[hemi].n:
             other = [o for o in meshes if o != hemi and meshes[o].n == h.n_vertices]
             hint = (f"; that is the {other[0]} mesh's count: is this the {other[0]} "
-                    "hemisphere's file?" if other else "")
+                    "hemisphere's file?" if other else _transposed_hint(h, meshes[hemi].n))
             problems.add(f"{where} column '{col}' ({h.path})",
                          f"has {h.n_vertices} values per sample; mesh_{hemi} has "
                          f"{meshes[hemi].n} vertices{hint}",
@@ -243,6 +278,19 @@ def _check_row_vertices(row, line, mpath, meshes, problems) -> list:
         else:
             fit.append(hemi)
     return fit
+
+
+def _transposed_hint(h, n_mesh) -> str:
+    """A hint when a map's samples axis has the mesh's vertex count: its array is the
+    wrong way round."""
+    if h.n_times != n_mesh:
+        return ""
+    if h.layout == "matrix":
+        return (f"; its one data array is {h.n_vertices} x {h.n_times}: it looks transposed "
+                "(samples x vertices): write it as vertices x samples, one row per vertex")
+    return (f"; it holds {h.n_times} data arrays of {h.n_vertices} values: one array per "
+            "vertex instead of one per sample (transposed): write one array per sample, each "
+            "with one value per vertex")
 
 
 def _times(settings, headers, mpath, problems):
@@ -283,15 +331,19 @@ def _times(settings, headers, mpath, problems):
     return ref
 
 
-def _check_time(settings, ref, fmt, problems):
-    """GIfTI needs time_start and sampling_interval; every axis needs finite values."""
+def _check_time(settings, ref, fmt, problems, headers=None):
+    """GIfTI maps need time_start and sampling_interval unless every file states its time
+    axis in its metadata (``headers``); every axis needs finite values."""
     where = f"{settings.path} [cohort]"
     if fmt == "gifti":
         missing = [k for k in ("time_start", "sampling_interval")
                    if settings.cohort.get(k) is None]
-        if missing:
+        stated = bool(headers) and all(h.time_axis is not None for h in headers.values())
+        if missing and not stated:
             problems.add(where, f"{' and '.join(missing)} required: GIfTI maps carry no time "
-                         "axis", "add e.g. time_start = -0.1 and sampling_interval = 0.004 "
+                         "axis (and these state none in their metadata time_start_s and "
+                         "sampling_interval_s)",
+                         "add e.g. time_start = -0.1 and sampling_interval = 0.004 "
                          "(seconds) under [cohort]")
             return None
     if ref is None:

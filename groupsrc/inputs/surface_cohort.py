@@ -169,7 +169,7 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
         raise InputError(problems)
     headers = (cifti_headers if fmt == "cifti" else gifti_headers)(maps, mpath, meshes, problems)
     ref = _times(settings, headers, mpath, problems)
-    time_axis = _check_time(settings, ref, fmt, problems)
+    time_axis = _check_time(settings, ref, fmt, problems, headers)
 
     cache_dir = settings.resolve(settings.cohort.get("cache")) or _cache.default_cache_dir()
     index = _cache.HashIndex(cache_dir)

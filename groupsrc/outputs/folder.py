@@ -297,7 +297,10 @@ def _busy(out, path, record, option) -> InputError:
 def _flock(fd) -> bool | None:
     """True: locked; False: held by another process; None: the file system cannot lock."""
     import errno
-    import fcntl
+    try:
+        import fcntl
+    except ImportError:           # pragma: no cover - systems without flock (Windows)
+        return None
     try:
         fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
         return True

@@ -236,8 +236,10 @@ def _all_contrast_figures(results, maps, summary, cs_list):
     if workers < 2 or "fork" not in multiprocessing.get_all_start_methods():
         return [contrast_figures(results, maps, summary, cs) for cs in cs_list]
     from concurrent.futures import ProcessPoolExecutor
+    from ..processes import die_with_parent
     context = multiprocessing.get_context("fork")
-    with ProcessPoolExecutor(max_workers=workers, mp_context=context) as pool:
+    with ProcessPoolExecutor(max_workers=workers, mp_context=context,
+                             initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
         futures = [pool.submit(contrast_figures, results, maps, summary, cs) for cs in cs_list]
         return [f.result() for f in futures]
 

@@ -38,6 +38,7 @@ from pathlib import Path
 
 import numpy as np
 
+from ...processes import owner_is_dead, owner_token
 from .backends import worker_count
 from ..models.base import LIST_BLOCK, RES_BLOCK
 from .pages import release  # noqa: F401  (re-exported)
@@ -65,6 +66,8 @@ class MemoryTooSmall(ValueError):
 def parse_size(text) -> int:
     """Bytes of a size such as ``512M``, ``4G``, ``2.5GiB``, ``8000000`` (M, G: 2^20, 2^30;
     MB, GB: 10^6, 10^9); ValueError when it is not one."""
+    if re.fullmatch(r"\s*-.*", str(text)):
+        raise ValueError(f"'{text}' is not a positive size: give one such as 512M or 4G")
     m = re.fullmatch(r"\s*([0-9]+(?:\.[0-9]+)?)\s*([A-Za-z]*)\s*", str(text))
     if not m or m.group(2).lower() not in _UNITS:
         raise ValueError(f"'{text}' is not a size such as 512M, 4G or 2.5GiB")
@@ -74,8 +77,16 @@ def parse_size(text) -> int:
     return int(value)
 
 
+def physical_memory() -> int | None:
+    """Bytes of memory this machine has (None where unknown)."""
+    try:
+        return int(os.sysconf("SC_PAGE_SIZE")) * int(os.sysconf("SC_PHYS_PAGES"))
+    except (ValueError, OSError, AttributeError):
+        return None
+
+
 def size_text(n) -> str:
-    for unit, div in (("GiB", 2 ** 30), ("MiB", 2 ** 20), ("KiB", 2 ** 10)):
+    for unit, div in (("TiB", 2 ** 40), ("GiB", 2 ** 30), ("MiB", 2 ** 20), ("KiB", 2 ** 10)):
         if n >= div:
             return f"{n / div:.4g} {unit}"
     return f"{int(n)} bytes"
@@ -140,13 +151,36 @@ def plan(memory, n_units, n_features, *, workers=1, distributed=False,
 # ----------------------------------------------------------------------------
 
 _WORK: list = []
+#: work folders in the system's temporary folder: ``groupsrc-work-<owner token>-<random>``
+WORK_PREFIX = "groupsrc-work-"
 
 
 def _work_dir() -> Path:
     if not _WORK:
-        _WORK.append(Path(tempfile.mkdtemp(prefix="groupsrc-work-")))
+        _WORK.append(Path(tempfile.mkdtemp(prefix=f"{WORK_PREFIX}{owner_token()}-")))
         atexit.register(shutil.rmtree, _WORK[0], True)
     return _WORK[0]
+
+
+def remove_dead_work_dirs(base=None) -> list:
+    """Remove the work folders of runs that were killed outright (their owner token's
+    process is provably gone, :mod:`groupsrc.processes`); return their names.  Folders
+    of live runs and of other hosts are left alone, as are earlier unnamed ones."""
+    base = Path(base or tempfile.gettempdir())
+    removed = []
+    try:
+        names = sorted(os.listdir(base))
+    except OSError:
+        return []
+    for name in names:
+        if not name.startswith(WORK_PREFIX):
+            continue
+        token = "-".join(name[len(WORK_PREFIX):].split("-")[:3])
+        path = base / name
+        if path.is_dir() and not path.is_symlink() and owner_is_dead(token):
+            shutil.rmtree(path, ignore_errors=True)
+            removed.append(name)
+    return removed
 
 
 def _disk_array(shape):
