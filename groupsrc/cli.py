@@ -16,7 +16,8 @@ from pathlib import Path
 
 from . import __version__
 from .inputs.problems import InputError, ProblemList
-from .stats.engine.backends import BackendUnavailable
+from .options import cap_workers, check_options, dash_values
+from .stats.engine.scheduler import BackendUnavailable
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE = 0, 1, 2
 
@@ -114,79 +115,14 @@ def _parser():
     return p
 
 
-def _check_options(args, parser):
-    """Command-line values: a bad one is a usage error (exit 2) with a message."""
-    from .inputs.settings import MAX_RESAMPLES
-    for name in ("resamples", "workers"):
-        v = getattr(args, name, None)
-        if v is not None and v < 1:
-            parser.error(f"--{name} must be at least 1, got {v}")
-    if getattr(args, "resamples", None) is not None and args.resamples > MAX_RESAMPLES:
-        parser.error(f"--resamples must be at most {MAX_RESAMPLES:,}, got {args.resamples}")
-    from .stats.engine.backends import parse_scheduler
-    from .stats.engine.memory import parse_size
-    if getattr(args, "scheduler", None) is not None:
-        try:
-            parse_scheduler(args.scheduler)
-        except ValueError as exc:
-            parser.error(f"--scheduler: {exc}")
-    if getattr(args, "memory", None) is not None:
-        try:
-            args.memory = parse_size(args.memory)
-        except ValueError as exc:
-            parser.error(f"--memory: {exc}")
-        from .stats.engine.memory import physical_memory, size_text
-        total = physical_memory()
-        if total and args.memory > total:
-            parser.error(f"--memory: {size_text(args.memory)} is more than this machine's "
-                         f"memory ({size_text(total)}); the bound is for this run's working "
-                         "set: give a size below that, or leave --memory out")
-    if getattr(args, "command", None) == "cache" and args.limit is not None:
-        try:
-            args.limit = parse_size(args.limit)
-        except ValueError as exc:
-            parser.error(f"--limit: {exc}")
-    from .stats.inference import SEED_LIMIT
-    seed = getattr(args, "seed", None)
-    if seed is not None and not 0 <= seed < SEED_LIMIT:
-        parser.error(f"--seed must be a whole number from 0 to {SEED_LIMIT - 1}, got {seed}")
-
-
-#: options that take a value which may start with '-' (a mistyped "--memory -5G" is
-#: then checked as a value and refused with its reason, not as "expected one argument")
-_VALUE_OPTIONS = ("--memory", "--scheduler", "--resamples", "--seed", "--workers", "--out",
-                  "--cohort-dir", "--contrast")
-
-
-def _dash_values(argv, parser) -> list:
-    """``--memory -5G`` -> ``--memory=-5G`` when ``-5G`` is not an option of ours."""
-    known = set()
-    for action in parser._actions:
-        known.update(action.option_strings)
-        for sub in (getattr(action, "choices", None) or {}).values():
-            if isinstance(sub, argparse.ArgumentParser):
-                known.update(o for a in sub._actions for o in a.option_strings)
-    out, i = [], 0
-    while i < len(argv):
-        a = str(argv[i])
-        if a in _VALUE_OPTIONS and i + 1 < len(argv) and str(argv[i + 1]).startswith("-") \
-                and str(argv[i + 1]) not in known:
-            out.append(f"{a}={argv[i + 1]}")
-            i += 2
-            continue
-        out.append(argv[i])
-        i += 1
-    return out
-
-
 def main(argv=None) -> int:
     parser = _parser()
     raw = list(sys.argv[1:] if argv is None else argv)
-    args = parser.parse_args(_dash_values(raw, parser))
+    args = parser.parse_args(dash_values(raw, parser))
     if args.command is None:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
-    _check_options(args, parser)
+    check_options(args, parser)
     _log_to_stderr()
     previous = _on_sigterm()
     try:
@@ -253,22 +189,9 @@ def _log_to_stderr():
         logger.propagate = False
 
 
-def _cap_workers(args):
-    """``--workers`` above the cores this process may use: use one per core, and say so
-    (results never depend on the count; every thread holds its own scoring arrays)."""
-    from .stats.engine.backends import cap_threads
-    n = getattr(args, "workers", None)
-    if n is None:
-        return
-    use, why = cap_threads(n)
-    if why:
-        logging.getLogger("groupsrc").info(f"--workers {n}: using {use}, one per core ({why})")
-        args.workers = use
-
-
 def _dispatch(args, argv) -> int:
     command = ["groupsrc"] + (list(argv) if argv is not None else sys.argv[1:])
-    _cap_workers(args)
+    cap_workers(args)
     if args.command == "check":
         return cmd_check(args.analysis, as_json=args.json)
     if args.command == "run":
@@ -283,7 +206,7 @@ def _dispatch(args, argv) -> int:
         return EXIT_OK
     if args.command == "report":
         from .outputs import build_report
-        from .outputs.folder import results_lock
+        from .outputs.runlock import results_lock
         with results_lock(args.results, command=command, option="RESULTS_DIR",
                           log=logging.getLogger("groupsrc").info):
             path = build_report(args.results)
@@ -371,63 +294,16 @@ def cmd_check(analysis: Path, as_json=False) -> int:
 def cmd_init(args) -> int:
     """``groupsrc init MAPS_FOLDER``: the three files of a new analysis (scaffold.py)."""
     from .scaffold import build
-    s = build(args.maps_folder, args.out)
-    kind = {"nifti": "NIfTI volumes", "gifti": "GIfTI maps per hemisphere",
-            "cifti": "CIFTI-2 dense time series"}[s.kind]
-    print(f"wrote to {s.folder}:")
-    print(f"  maps.tsv         : {s.maps} maps ({kind}) of {len(s.participants)} participants"
-          + (f"; conditions {', '.join(s.conditions)}" if s.conditions else "")
-          + (f"; sessions {', '.join(s.sessions)}" if s.sessions else ""))
-    print(f"  participants.tsv : {len(s.participants)} participants, an empty 'group' column "
-          "to fill in (add columns for other attributes, e.g. age)")
-    print("  analysis.toml    : a commented analysis file"
-          + (f" (contrast {s.conditions[0]} minus {s.conditions[1]})" if len(s.conditions) > 1
-             else " (the mean response against zero)"))
-    if s.skipped:
-        print(f"  skipped {s.skipped} file(s) that are not maps (.nii, .nii.gz, .func.gii, "
-              ".dtseries.nii)")
-    todo = ["state the maps' unit, e.g. unit = \"nA m\""]
-    if s.kind in ("gifti", "cifti"):
-        todo.append("give the template meshes (mesh_left / mesh_right)")
-    todo.append("set the model and contrasts")
-    print(f"next: edit analysis.toml ({'; '.join(todo)}), then run "
-          f"groupsrc check {s.folder / 'analysis.toml'}")
+    print("\n".join(build(args.maps_folder, args.out).lines()))
     return EXIT_OK
 
 
 def cmd_cache(args) -> int:
     """``groupsrc cache``: what the loading cache holds; ``--clear``, ``--limit``."""
-    import datetime
-
-    from .inputs import cache
-    from .stats.engine.memory import size_text
-    folder = (args.folder or cache.default_cache_dir()).expanduser()
-    print(f"loading cache: {folder}")
-    if args.limit is not None:
-        cache.set_limit(folder, args.limit)
-        removed = cache.enforce_limit(folder)
-        print(f"  limit set to {size_text(args.limit)}"
-              + (f"; removed {len(removed)} entr{'y' if len(removed) == 1 else 'ies'} used "
-                 "least recently" if removed else ""))
-    if args.clear:
-        n, freed, live = cache.clear(folder)
-        print(f"  cleared: {n} entr{'y' if n == 1 else 'ies'} removed, {size_text(freed)} freed"
-              + (f"; {len(live)} temporary file(s) of running processes left alone"
-                 if live else ""))
-    for name in cache.remove_dead_temporaries(folder):
-        print(f"  removed {name} (a temporary file of an interrupted run)")
-    cap, origin = cache.limit(folder)
-    found = cache.entries(folder)
-    total = sum(e.size for e in found)
-    print(f"  limit        : {size_text(cap)} ({origin}; change with groupsrc cache --limit "
-          "SIZE)")
-    print(f"  entries      : {len(found)}, {size_text(total)} in all"
-          + ("" if folder.is_dir() else " (the folder does not exist yet)"))
-    for e in reversed(found):                          # most recently used first
-        shape = (f"{e.shape[1]} sources x {e.shape[2]} samples, "
-                 if e.shape and len(e.shape) == 3 else "")
-        when = datetime.datetime.fromtimestamp(e.last_use).strftime("%Y-%m-%d %H:%M")
-        print(f"    {e.key[:12]}  {shape}{size_text(e.size)}, last used {when}")
+    from .inputs.cache import default_cache_dir
+    from .inputs.cache_upkeep import upkeep
+    print("\n".join(upkeep((args.folder or default_cache_dir()).expanduser(),
+                           clear=args.clear, new_limit=args.limit)))
     return EXIT_OK
 
 
@@ -457,7 +333,7 @@ def _print_mixed(prep):
 
 
 def cmd_demo(args, command) -> int:
-    from .outputs.folder import results_lock
+    from .outputs.runlock import results_lock
     surface = getattr(args, "surface", False)
     out = (args.out or Path("groupsrc_surface_demo_results" if surface
                             else "groupsrc_demo_results")).resolve()

@@ -334,7 +334,7 @@ def run(analysis_path, out_dir=None, *, resamples=None, seed=None, workers=1,
     the results folder (:func:`checkpoint_folder`); ``resume`` continues an
     interrupted run from there.
     """
-    from .outputs.folder import results_lock
+    from .outputs.runlock import results_lock
 
     settings = parse_settings(analysis_path)
     out = Path(out_dir) if out_dir else settings.base / "results"
@@ -352,6 +352,7 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     from .outputs import write_results
     from .outputs.folder import check_target, staged, sweep_stale
     from .progress import reporter
+    from .stats.engine.scheduler import parse_scheduler, probe_scheduler
 
     t_start = time.perf_counter()
     stage_log.setLevel(logging.WARNING if quiet else logging.NOTSET)
@@ -363,6 +364,8 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
         log.info(f"removed the temporary folder {name} of an interrupted run")
     # cheap check first (declared inputs), full check once every map is known
     check_target(out, overwrite=overwrite, inputs=declared_inputs(settings))
+    if scheduler and parse_scheduler(scheduler)[0] == "address":
+        probe_scheduler(parse_scheduler(scheduler)[1])    # refused before the maps are read
     prep = prepare(settings, progress=new_progress)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
@@ -372,7 +375,7 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     for note in run_notes(settings, prep, resamples):
         log.info(note)
     if scheduler:                  # an unanswering scheduler is refused before any work
-        from .stats.engine.backends import dask_client
+        from .stats.engine.scheduler import dask_client
         notes = []
         dask_client(scheduler, per_worker_bytes=_worker_bytes(prep), notes=notes)
         for note in notes:
@@ -391,7 +394,7 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
         raise
     finally:
         if scheduler:
-            from .stats.engine.backends import close_clients
+            from .stats.engine.scheduler import close_clients
             close_clients()
     t_stats = time.perf_counter()
     stage_log.info(f"statistics done in {t_stats - t_loaded:.1f} s")

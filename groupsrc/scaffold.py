@@ -174,6 +174,31 @@ class Scaffold:
     hemispheres: list
     skipped: int
 
+    def lines(self) -> list:
+        """What was written, and what to do next (printed by ``groupsrc init``)."""
+        kind = {"nifti": "NIfTI volumes", "gifti": "GIfTI maps per hemisphere",
+                "cifti": "CIFTI-2 dense time series"}[self.kind]
+        n = len(self.participants)
+        out = [f"wrote to {self.folder}:",
+               f"  maps.tsv         : {self.maps} maps ({kind}) of {n} participants"
+               + (f"; conditions {', '.join(self.conditions)}" if self.conditions else "")
+               + (f"; sessions {', '.join(self.sessions)}" if self.sessions else ""),
+               f"  participants.tsv : {n} participants, an empty 'group' column to fill in "
+               "(add columns for other attributes, e.g. age)",
+               "  analysis.toml    : a commented analysis file"
+               + (f" (contrast {self.conditions[0]} minus {self.conditions[1]})"
+                  if len(self.conditions) > 1 else " (the mean response against zero)")]
+        if self.skipped:
+            out.append(f"  skipped {self.skipped} file(s) that are not maps (.nii, .nii.gz, "
+                       ".func.gii, .dtseries.nii)")
+        todo = ['state the maps\' unit, e.g. unit = "nA m"']
+        if self.kind in ("gifti", "cifti"):
+            todo.append("give the template meshes (mesh_left / mesh_right)")
+        todo.append("set the model and contrasts")
+        out.append(f"next: edit analysis.toml ({'; '.join(todo)}), then run "
+                   f"groupsrc check {self.folder / 'analysis.toml'}")
+        return out
+
 
 def build(maps_folder, out=None) -> Scaffold:
     """Write the three files (see the module docstring); InputError lists every problem."""

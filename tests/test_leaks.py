@@ -18,7 +18,7 @@ import pytest
 
 from conftest import make_cohort
 from groupsrc.cli import main
-from groupsrc.inputs import cache
+from groupsrc.inputs import cache_upkeep
 from groupsrc.processes import host_tag, owner_token
 from groupsrc.stats.engine import memory
 
@@ -182,7 +182,7 @@ def test_work_folders_of_killed_runs_are_removed(tmp_path):
 # ----------------------------------------------------------------------------
 
 def _entry_size(folder):
-    return {e.key: e.size for e in cache.entries(folder)}
+    return {e.key: e.size for e in cache_upkeep.entries(folder)}
 
 
 def test_the_cache_keeps_to_its_limit_least_recently_used_first(tmp_path, monkeypatch,
@@ -215,22 +215,22 @@ def test_groupsrc_cache_shows_clears_and_limits(tmp_path, monkeypatch, capsys):
     capsys.readouterr()
     assert main(["cache"]) == 0
     text = capsys.readouterr().out
-    found = cache.entries(folder)
+    found = cache_upkeep.entries(folder)
     assert len(found) == 2 and f"entries      : 2, " in text, text
     assert all(e.key[:12] in text for e in found) and "4 GiB (default" in text, text
     # --limit: stored in the folder, the least recently used entry removed
     one = max(e.size for e in found)
     assert main(["cache", "--limit", str(one + one // 2)]) == 0
     text = capsys.readouterr().out
-    assert [e.key for e in cache.entries(folder)] == [found[-1].key], text
-    assert json.loads((folder / cache.LIMIT_FILE).read_text())["bytes"] == one + one // 2
+    assert [e.key for e in cache_upkeep.entries(folder)] == [found[-1].key], text
+    assert json.loads((folder / cache_upkeep.LIMIT_FILE).read_text())["bytes"] == one + one // 2
     # --clear: every entry and the hash memo go; a file of the user's in the folder stays
     (folder / "notes.json").write_text("{}")
     assert main(["cache", "--clear"]) == 0
     text = capsys.readouterr().out
-    assert "1 entry removed" in text and cache.entries(folder) == [], text
-    assert not (folder / cache.HASHES_FILE).exists() and (folder / "notes.json").exists()
-    assert (folder / cache.LIMIT_FILE).exists()          # the setting stays
+    assert "1 entry removed" in text and cache_upkeep.entries(folder) == [], text
+    assert not (folder / cache_upkeep.HASHES_FILE).exists() and (folder / "notes.json").exists()
+    assert (folder / cache_upkeep.LIMIT_FILE).exists()          # the setting stays
     # a bad size is a usage error
     with pytest.raises(SystemExit) as exit_:
         main(["cache", "--limit", "big"])

@@ -1,4 +1,4 @@
-"""One run per results folder at a time (outputs/folder.results_lock), with real processes.
+"""One run per results folder at a time (outputs/runlock.results_lock), with real processes.
 
 The promises checked are the project's own (README, "When a results folder is
 replaced"; DESIGN.md, "Reliability principles"): a second run on the same --out --
@@ -20,7 +20,7 @@ import pytest
 
 from conftest import make_cohort
 from groupsrc.cli import main
-from groupsrc.outputs.folder import lock_path, results_lock
+from groupsrc.outputs.runlock import lock_path, results_lock
 from groupsrc.pipeline import checkpoint_folder
 
 #: a real `groupsrc run` that, once its first batch of resamples is saved in the
@@ -167,7 +167,7 @@ def test_a_lock_held_by_another_process_refuses_this_one(tmp_path):
     """The holder is a second process taking the lock as any run does; the refusal names
     it and its command, and the lock is free once that process is gone."""
     out = tmp_path / "res"
-    code = ("import sys, time\nfrom groupsrc.outputs.folder import results_lock\n"
+    code = ("import sys, time\nfrom groupsrc.outputs.runlock import results_lock\n"
             f"with results_lock({str(out)!r}, command=['holder']):\n"
             "    print('held', flush=True)\n    time.sleep(600)\n")
     proc = subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE, text=True)

@@ -23,9 +23,9 @@ import pytest
 
 from conftest import make_cohort
 from groupsrc.cli import main
-from groupsrc.stats.engine import backends
-from groupsrc.stats.engine.backends import (CONNECT_TIMEOUT, BackendUnavailable, dask_client,
-                                            local_worker_cap, probe_scheduler)
+from groupsrc.stats.engine import scheduler
+from groupsrc.stats.engine.scheduler import (CONNECT_TIMEOUT, BackendUnavailable, dask_client,
+                                             local_worker_cap, probe_scheduler)
 
 
 @pytest.fixture
@@ -86,7 +86,7 @@ def _refused(address):
 
 def test_a_web_server_is_refused_naming_it(web_server):
     text, spent = _refused(web_server)
-    assert web_server in text and "not one" in text and "answers HTTP" in text, text
+    assert web_server in text and "not a scheduler" in text and "answers HTTP" in text, text
     assert spent < CONNECT_TIMEOUT + 2, spent       # hang guard (it used to run > 10 min)
 
 
@@ -130,6 +130,7 @@ def test_run_with_a_web_server_as_scheduler_exits_1(web_server, tmp_path):
     assert got.returncode == 1, got.stderr
     assert "Traceback" not in got.stderr and web_server in got.stderr, got.stderr
     assert "--scheduler local:N" in got.stderr          # the way on
+    assert "loading maps" not in got.stderr             # refused before the maps are read
     assert not (tmp_path / "res").exists()
 
 
@@ -141,7 +142,7 @@ def test_local_workers_are_capped_by_cores_and_memory():
     assert local_worker_cap(4, cores=8, memory=64 * 2 ** 30) == (4, "")
     n, why = local_worker_cap(999, cores=2, memory=64 * 2 ** 30)
     assert n == 2 and "2 cores" in why
-    each = backends.WORKER_OVERHEAD + 2 ** 30
+    each = scheduler.WORKER_OVERHEAD + 2 ** 30
     n, why = local_worker_cap(16, per_worker_bytes=2 ** 30, cores=32, memory=5 * 2 ** 30)
     assert n == math.floor(0.8 * 5 * 2 ** 30 / each) and "memory available" in why
     assert local_worker_cap(8, per_worker_bytes=2 ** 40, cores=8, memory=2 ** 30)[0] == 1
@@ -149,7 +150,7 @@ def test_local_workers_are_capped_by_cores_and_memory():
 
 def test_local_999_runs_with_one_worker_per_core(tmp_path, capsys):
     analysis = make_cohort(tmp_path / "cohort")
-    cores = backends.available_cores()
+    cores = scheduler.available_cores()
     rc = main(["run", str(analysis), "--scheduler", "local:999", "--resamples", "20",
                "--out", str(tmp_path / "res"), "--quiet"])
     text = capsys.readouterr().err
@@ -182,7 +183,7 @@ def test_memory_values_are_checked(tmp_path, capsys, value, fragment):
 
 def test_too_many_workers_are_capped_and_said(tmp_path, capsys):
     analysis = make_cohort(tmp_path / "cohort")
-    cores = backends.available_cores()
+    cores = scheduler.available_cores()
     rc = main(["run", str(analysis), "--workers", "1000", "--resamples", "20", "--out",
                str(tmp_path / "res"), "--quiet"])
     text = capsys.readouterr().err

@@ -28,23 +28,7 @@ The rule for reusing a memoised hash -- it is reused only when the file's
 Anything else is hashed in full again.  The cache is an optimisation: when
 it cannot be written, loading still succeeds.
 
-**Size and clean-up** (``groupsrc cache`` shows and clears the folder):
-
-* a size limit, ``DEFAULT_LIMIT`` unless ``groupsrc cache --limit SIZE`` stored
-  another in the folder's ``limit.json`` (or ``$GROUPSRC_CACHE_LIMIT`` says
-  so); after a new entry is stored, the entries used least recently are
-  removed until the folder fits (never the entry just stored).  An entry's
-  last use is its ``.json`` file's modification time, set on every hit.
-  Removing an entry another run has open is safe: its mapping keeps the data;
-* temporary files carry their writer's owner token
-  (``<key>.f32.tmp-<host>-<pid>-<start>``, :mod:`groupsrc.processes`), and
-  those of processes provably gone (killed while decoding) are removed when
-  the cache is next opened (:class:`HashIndex`), as are files of the earlier
-  ``.tmp<pid>`` naming whose process is gone and that were not written to for
-  an hour.
-* only files of the cache's own names are ever removed (``ENTRY`` and the
-  temporary names above, ``file_hashes.json``), so a ``cache`` folder set to
-  a folder of the user's loses nothing else.
+The folder's size limit, eviction and clean-up are in :mod:`.cache_upkeep`.
 """
 
 from __future__ import annotations
@@ -53,29 +37,14 @@ import hashlib
 import json
 import logging
 import os
-import re
 import time
-from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from ..processes import owner_is_dead, owner_token
+from .cache_upkeep import HASHES_FILE, _tmp, enforce_limit, remove_dead_temporaries
 
 CACHE_ENV = "GROUPSRC_CACHE_DIR"
-LIMIT_ENV = "GROUPSRC_CACHE_LIMIT"
-#: size limit of a cache folder unless set otherwise (bytes)
-DEFAULT_LIMIT = 4 * 2 ** 30
-LIMIT_FILE = "limit.json"
-HASHES_FILE = "file_hashes.json"
-#: the files of one entry: ``<key>.f32`` (the data), ``<key>.json`` (its description),
-#: ``<key>.digests.json`` (a hash of each map's decoded data)
-ENTRY = re.compile(r"^([0-9a-f]{32})\.(f32|json|digests\.json)$")
-#: temporary files: the owner-token naming, and the earlier ``.tmp<pid>``
-_TMP = re.compile(r"^(?:[0-9a-f]{32}\.(?:f32|json|digests\.json)|file_hashes)"
-                  r"\.tmp(?:-(?P<token>[0-9a-f]{8}-\d+-\d+)|(?P<pid>\d+))$")
-#: an earlier-style temporary file is left alone while written to this recently (s)
-_LEGACY_QUIET = 3600.0
 log = logging.getLogger("groupsrc")
 
 
@@ -194,11 +163,6 @@ def load_cached(cache_dir: Path, key: str):
     return arr, meta
 
 
-def _tmp(cache_dir: Path, name: str) -> Path:
-    """A temporary file name of this process in the cache folder."""
-    return Path(cache_dir) / f"{name}.tmp-{owner_token()}"
-
-
 def _tmp_data(cache_dir: Path, key: str) -> Path:
     return _tmp(cache_dir, f"{key}.f32")
 
@@ -251,179 +215,3 @@ def discard(array) -> None:
     name = getattr(array, "filename", None)
     if name and ".f32.tmp" in str(name):
         Path(name).unlink(missing_ok=True)
-
-
-# ----------------------------------------------------------------------------
-# decoded-content digests of an entry (files used twice, by their data)
-# ----------------------------------------------------------------------------
-
-def load_digests(cache_dir: Path, key: str) -> list | None:
-    """The per-map digests saved beside entry ``key`` (None when there are none)."""
-    try:
-        data = json.loads((Path(cache_dir) / f"{key}.digests.json").read_text())
-        return data if isinstance(data, list) else None
-    except (OSError, ValueError):
-        return None
-
-
-def save_digests(cache_dir: Path, key: str, digests: list) -> None:
-    """Keep the per-map digests beside entry ``key`` (only while the entry exists)."""
-    cache_dir = Path(cache_dir)
-    if not (cache_dir / f"{key}.f32").exists():
-        return
-    try:
-        tmp = _tmp(cache_dir, f"{key}.digests.json")
-        tmp.write_text(json.dumps(list(digests)))
-        os.replace(tmp, cache_dir / f"{key}.digests.json")
-    except OSError:
-        pass
-
-
-# ----------------------------------------------------------------------------
-# size, eviction, clean-up
-# ----------------------------------------------------------------------------
-
-@dataclass
-class Entry:
-    """One cache entry: its key, bytes on disk, last use (seconds since the epoch) and
-    shape (maps, sources, samples) when its description says."""
-
-    key: str
-    size: int
-    last_use: float
-    shape: tuple | None = None
-
-
-def entries(cache_dir: Path) -> list:
-    """The cache folder's entries, least recently used first."""
-    cache_dir = Path(cache_dir)
-    found = {}
-    try:
-        names = os.listdir(cache_dir)
-    except OSError:
-        return []
-    for name in names:
-        m = ENTRY.match(name)
-        if not m:
-            continue
-        try:
-            st = os.stat(cache_dir / name)
-        except OSError:
-            continue
-        e = found.setdefault(m.group(1), Entry(m.group(1), 0, 0.0))
-        e.size += st.st_size
-        if m.group(2) == "json":
-            e.last_use = st.st_mtime
-            try:
-                e.shape = tuple(json.loads((cache_dir / name).read_text())["shape"])
-            except (OSError, ValueError, KeyError, TypeError):
-                pass
-    return sorted(found.values(), key=lambda e: (e.last_use, e.key))
-
-
-def remove_entry(cache_dir: Path, key: str) -> None:
-    # the description first: without it the entry is no longer served
-    for suffix in (".json", ".f32", ".digests.json"):
-        try:
-            (Path(cache_dir) / f"{key}{suffix}").unlink()
-        except OSError:
-            pass
-
-
-def limit(cache_dir: Path) -> tuple:
-    """(bytes, where it comes from) of the cache folder's size limit."""
-    env = os.environ.get(LIMIT_ENV)
-    if env:
-        from ..stats.engine.memory import parse_size
-        try:
-            return parse_size(env), f"${LIMIT_ENV}"
-        except ValueError:
-            log.info(f"${LIMIT_ENV} = {env!r} is not a size such as 4G; the default is used")
-    try:
-        value = json.loads((Path(cache_dir) / LIMIT_FILE).read_text())["bytes"]
-        if isinstance(value, int) and value > 0:
-            return value, "groupsrc cache --limit"
-    except (OSError, ValueError, KeyError, TypeError):
-        pass
-    return DEFAULT_LIMIT, "default"
-
-
-def set_limit(cache_dir: Path, nbytes: int) -> None:
-    Path(cache_dir).mkdir(parents=True, exist_ok=True)
-    tmp = _tmp(cache_dir, "limit")
-    tmp.write_text(json.dumps({"bytes": int(nbytes)}))
-    os.replace(tmp, Path(cache_dir) / LIMIT_FILE)
-
-
-def enforce_limit(cache_dir: Path, keep: str | None = None) -> list:
-    """Remove the least recently used entries until the folder fits its limit (never
-    ``keep``); return the keys removed.  Says so when ``keep`` alone is above it."""
-    cap, _ = limit(cache_dir)
-    found = entries(cache_dir)
-    total = sum(e.size for e in found)
-    removed = []
-    for e in found:
-        if total <= cap:
-            break
-        if e.key == keep:
-            continue
-        remove_entry(cache_dir, e.key)
-        total -= e.size
-        removed.append(e.key)
-    if total > cap and keep is not None:
-        log.info(f"the loading cache ({cache_dir}) holds {total / 2 ** 30:.3g} GiB, above "
-                 f"its limit of {cap / 2 ** 30:.3g} GiB, with this analysis's data alone; "
-                 "they are removed first when the next analysis needs room (raise the limit "
-                 "with 'groupsrc cache --limit SIZE')")
-    return removed
-
-
-def remove_dead_temporaries(cache_dir: Path) -> list:
-    """Remove temporary files of processes that are provably gone; return their names."""
-    cache_dir = Path(cache_dir)
-    try:
-        names = os.listdir(cache_dir)
-    except OSError:
-        return []
-    removed = []
-    for name in names:
-        m = _TMP.match(name)
-        if not m or not _tmp_is_dead(cache_dir / name, m):
-            continue
-        try:
-            (cache_dir / name).unlink()
-            removed.append(name)
-        except OSError:
-            pass
-    return removed
-
-
-def _tmp_is_dead(path: Path, m) -> bool:
-    if m.group("token"):
-        return owner_is_dead(m.group("token"))
-    pid = int(m.group("pid"))           # the earlier naming: no host in the name
-    try:
-        os.kill(pid, 0)
-        return False
-    except ProcessLookupError:
-        pass
-    except OSError:
-        return False
-    try:
-        return time.time() - os.stat(path).st_mtime > _LEGACY_QUIET
-    except OSError:
-        return False
-
-
-def clear(cache_dir: Path) -> tuple:
-    """Remove every entry and the memo of file hashes (the limit setting stays), and the
-    temporary files of ended runs; returns (entries removed, bytes freed, temporary
-    files of live runs left alone)."""
-    cache_dir = Path(cache_dir)
-    found = entries(cache_dir)
-    for e in found:
-        remove_entry(cache_dir, e.key)
-    (cache_dir / HASHES_FILE).unlink(missing_ok=True)
-    remove_dead_temporaries(cache_dir)
-    live = [n for n in (os.listdir(cache_dir) if cache_dir.is_dir() else []) if _TMP.match(n)]
-    return len(found), sum(e.size for e in found), live
