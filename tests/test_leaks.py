@@ -11,6 +11,7 @@ import os
 import signal
 import subprocess
 import sys
+import tempfile
 import time
 
 import psutil
@@ -175,6 +176,52 @@ def test_work_folders_of_killed_runs_are_removed(tmp_path):
         (d / "a.f32").write_bytes(b"1234")
     assert memory.remove_dead_work_dirs(tmp_path) == [dead.name]
     assert not dead.exists() and live.exists() and unnamed.exists()
+
+
+def test_the_next_run_removes_a_killed_runs_work_folder(tmp_path, monkeypatch, capsys):
+    """The wiring of the above into ``groupsrc run`` (README, "After a kill")."""
+    analysis = make_cohort(tmp_path / "cohort")
+    temp = tmp_path / "temp"
+    temp.mkdir()
+    monkeypatch.setattr(tempfile, "tempdir", str(temp))
+    dead = temp / f"{memory.WORK_PREFIX}{host_tag()}-{_dead_pid()}-7-abcd"
+    dead.mkdir()
+    (dead / "a.f32").write_bytes(b"1234")
+    assert main(["run", str(analysis), "--out", str(tmp_path / "res"), "--resamples", "20",
+                 "--quiet"]) == 0
+    assert not dead.exists()
+    assert dead.name in capsys.readouterr().err
+
+
+#: a process holding groupsrc's own `local:2` cluster; prints its worker processes
+LOCAL_CLUSTER = """
+import os, time
+from groupsrc.stats.engine.scheduler import dask_client
+client = dask_client("local:2")
+pids = list(client.run(os.getpid).values())
+print(" ".join(map(str, pids)), flush=True)
+time.sleep(300)
+"""
+
+
+@pytest.mark.skipif((os.cpu_count() or 1) < 2, reason="local:2 starts one worker per core")
+def test_local_cluster_workers_die_with_their_parent():
+    parent = subprocess.Popen([sys.executable, "-c", LOCAL_CLUSTER], stdout=subprocess.PIPE,
+                              stderr=subprocess.DEVNULL, text=True)
+    try:
+        workers = [int(p) for p in parent.stdout.readline().split()]
+    finally:
+        parent.send_signal(signal.SIGKILL)
+        parent.wait()
+    assert len(workers) == 2 and parent.pid not in workers, workers
+    try:
+        assert _wait(lambda: all(_gone(w) for w in workers)), "Dask workers outlived the run"
+    finally:
+        for w in workers:
+            try:
+                os.kill(w, signal.SIGKILL)
+            except ProcessLookupError:
+                pass
 
 
 # ----------------------------------------------------------------------------
