@@ -56,7 +56,7 @@ def check_options(args, parser):
 #: options that take a value which may start with '-' (a mistyped "--memory -5G" is
 #: then checked as a value and refused with its reason, not as "expected one argument")
 _VALUE_OPTIONS = ("--memory", "--scheduler", "--resamples", "--seed", "--workers", "--out",
-                  "--cohort-dir", "--contrast")
+                  "--cohort-dir", "--contrast", "--limit", "--folder", "--mask")
 
 
 def dash_values(argv, parser) -> list:

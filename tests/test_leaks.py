@@ -278,7 +278,9 @@ def test_groupsrc_cache_shows_clears_and_limits(tmp_path, monkeypatch, capsys):
     assert "1 entry removed" in text and cache_upkeep.entries(folder) == [], text
     assert not (folder / cache_upkeep.HASHES_FILE).exists() and (folder / "notes.json").exists()
     assert (folder / cache_upkeep.LIMIT_FILE).exists()          # the setting stays
-    # a bad size is a usage error
-    with pytest.raises(SystemExit) as exit_:
-        main(["cache", "--limit", "big"])
-    assert exit_.value.code == 2
+    # a bad size is a usage error that says why, a negative one too
+    for value, why in (("big", "'big' is not a size"), ("-5G", "'-5G' is not a positive size")):
+        with pytest.raises(SystemExit) as exit_:
+            main(["cache", "--limit", value])
+        err = capsys.readouterr().err
+        assert exit_.value.code == 2 and why in err and "expected one argument" not in err, err
