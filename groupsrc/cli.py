@@ -286,8 +286,12 @@ def cmd_check(analysis: Path, as_json=False) -> int:
         _print_mixed(prep)
     for plan in prep.plans:
         model = ", mixed model" if plan.model == "mixed" else ""
-        print(f"  contrast     : {plan.name} [{plan.kind}, {plan.scheme}{model}] "
+        print(f"  contrast     : {plan.name} [{plan.statistic_name}, {plan.scheme}{model}] "
               f"{plan.description}")
+        if plan.groups is not None:
+            sizes = ", ".join(f"{k} {v}" for k, v in plan.groups.sizes.items())
+            print(f"                 variance groups: {plan.groups.column} ({sizes}); "
+                  f"{plan.groups.reason}")
     return EXIT_OK
 
 

@@ -461,13 +461,18 @@ def _cifti_geometry(header, space, problems) -> bool:
 # the table and the refit
 # ----------------------------------------------------------------------------
 
-def region_means(Y, samples, regions) -> np.ndarray:
-    """(n_maps, n_regions): each map's mean over each region's points."""
+def region_means(Y, samples, regions, units=None) -> np.ndarray:
+    """(n_maps, n_regions): each map's mean over each region's points, in the input's
+    units when the stored maps' ``units`` are given (``scale * mean + mean offset``)."""
     out = np.empty((Y.shape[0], len(regions)))
     for k in range(Y.shape[0]):
         block = np.asarray(Y[k, :, samples], np.float64)
         for j, r in enumerate(regions):
             out[k, j] = block[r.points].mean()
+    if units is not None and units.level_rows is not None:
+        level = units.level(slice(None), samples)
+        out = out * units.scale + units.scale * np.array([level[r.points].mean()
+                                                          for r in regions])[None, :]
     return out
 
 
@@ -597,7 +602,7 @@ def followup(results, *, contrast=None, clusters=None, mask=None, window=None, o
     if problems:
         raise InputError(problems)
     samples = _window_samples(summary, prep)
-    means = region_means(prep.cohort.Y, samples, regions)
+    means = region_means(prep.cohort.Y, samples, regions, prep.cohort.units)
     reml = prep.settings.model.get("estimation", "reml") == "reml"
     tables = _tables(prep, regions, means, mdesign, reml, _contrast_weights(prep, mdesign))
     return _write(target, tables, _markdown(tables, regions, results, reml), results)

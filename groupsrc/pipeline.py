@@ -29,6 +29,7 @@ from .stats.results import AnalysisResult, ContrastResult
 from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
 from .inputs.tables import HEMISPHERE_PATHS
 from .inputs.timecheck import analysed_window, check_time_axis
+from .inputs.units import tests_level
 
 log = logging.getLogger("groupsrc")
 #: one line per stage with its duration; silent with --quiet (notices stay on ``log``)
@@ -77,7 +78,8 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
                 for spec in settings.contrasts:
                     if _model_of(spec, settings) == "glm":   # mixed ones need the maps
                         plan_contrast(spec, design, problems,
-                                      f"{settings.path} contrast '{spec.name}'")
+                                      f"{settings.path} contrast '{spec.name}'",
+                                      settings.inference.get("variance_groups"))
         raise InputError(problems) from None
     underlay = read_underlay(settings, cohort.grid, problems, cohort.inputs)
     parts = cohort.participants.reset_index(drop=True)
@@ -91,7 +93,8 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
             plan = plan_mixed_contrast(spec, design, mixed, problems, cwhere) \
                 if mixed is not None else None
         else:
-            plan = plan_contrast(spec, glm_design, problems, cwhere) \
+            plan = plan_contrast(spec, glm_design, problems, cwhere,
+                                 settings.inference.get("variance_groups")) \
                 if glm_design is not None else None
         if plan is not None:
             plans.append(plan)
@@ -103,6 +106,7 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     tindex = window.index if window is not None else np.arange(0)
     if not problems:
         _check_reduced_range(cohort, plans, settings, problems)
+        _check_attainable(settings, cohort, glm_design, plans, problems)
     if problems:
         raise InputError(problems)
     summ = summary(cohort, settings)
@@ -143,30 +147,55 @@ def _models(settings, cohort, parts, design, problems, where):
     return mixed, glm_design, excluded
 
 
-#: largest magnitude the reduced maps may reach: the resampling squares float32
-#: values, and float32 overflows above about 3.4e38
-_REDUCED_LIMIT = 1e18
+#: largest magnitude the level ``offset / scale`` times the within weights may reach in a
+#: contrast that carries it: the resampling squares float32 values (overflow ~3.4e38)
+_LEVEL_LIMIT = 1e18
 
 
 def _check_reduced_range(cohort, plans, settings, problems):
-    """A contrast whose within-participant weights would push the maps out of range."""
-    if cohort.n_maps == 0 or not plans:
+    """A contrast that carries the maps' level (within weights not summing to zero),
+    when that level is beyond what single precision can square: the maps ride on a
+    constant many orders of magnitude above their spread (inputs/units.py)."""
+    units = cohort.units
+    if cohort.n_maps == 0 or not plans or units.level_rows is None:
         return
-    top = 0.0
-    step = max(1, int(2e7 // max(1, cohort.Y.shape[2] * cohort.n_maps)))
-    from .stats.engine.pages import release
-    for a in range(0, cohort.Y.shape[1], step):
-        top = max(top, float(np.abs(cohort.Y[:, a:a + step]).max()))
-        release(cohort.Y)
+    with np.errstate(invalid="ignore", over="ignore"):
+        top = float(np.nanmax(np.abs(np.asarray(units.level_rows[0], np.float64))))
     for plan in plans:
-        weight = sum(abs(float(v)) for v in (plan.within or {"all": 1.0}).values())
-        if top * weight > _REDUCED_LIMIT:
+        weight = abs(sum(float(v) for v in (plan.within or {"all": 1.0}).values()))
+        if weight > 0 and not (top * weight <= _LEVEL_LIMIT):
             problems.add(f"{settings.path} contrast '{plan.name}'",
-                         f"the maps reach {top:.3g} and the within weights sum to {weight:g} "
-                         "in magnitude: the reduced maps would exceed the range the statistics "
-                         "can square in single precision",
-                         "rescale the maps (e.g. to nA m or to a unitless score) or use "
-                         "smaller within weights such as 1 and -1")
+                         f"the maps ride on a level {top:.3g} times their spread, and the "
+                         f"within weights sum to {weight:g}: the averaged maps would exceed "
+                         "the range the statistics can square in single precision",
+                         "subtract the constant from the maps, or use within weights that "
+                         "sum to zero (such as 1 and -1)")
+
+
+def _check_attainable(settings, cohort, design, plans, problems, resamples=None):
+    """A GLM contrast whose rearrangements cannot give a corrected p at or below alpha
+    (too few participants, or too few resamples): refused, saying how far it falls
+    short, instead of a run whose every p is above alpha."""
+    from .inputs.design import smallest_p
+    from .stats.corrections.scorers import CORRECTIONS
+    inf = inference_settings(settings, resamples)
+    if design is None or not CORRECTIONS[inf["correction"]].resamples:
+        return
+    blocks = (cohort.participants.loc[design.participants, inf["blocks"]].astype(str)
+              .to_numpy() if inf.get("blocks") else None)
+    for plan in plans:
+        if plan.model == "mixed":
+            continue
+        p_min, count = smallest_p(plan, design, inf["resamples"], inf["tails"], blocks)
+        if p_min > inf["alpha"]:
+            short = ("more resamples" if inf["resamples"] < count else "more participants")
+            problems.add(f"{settings.path} contrast '{plan.name}'",
+                         f"the smallest corrected p its {plan.scheme} rearrangements can give "
+                         f"is {p_min:.3g} ({min(count, inf['resamples'])} distinct "
+                         f"rearrangements of {len(design.participants)} participants), above "
+                         f"alpha = {inf['alpha']:g}: it could never be significant",
+                         f"it needs {short}" + ("" if short == "more resamples" else
+                                                " (or a one-sided test, tails)"))
 
 
 def inference_settings(settings, resamples=None, seed=None) -> dict:
@@ -190,6 +219,7 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
     """
     from .stats.corrections.scorers import CORRECTIONS, TfceOptions
     from .stats.inference import Execution, InferenceSpec, infer
+    from .stats.models.groupvar import GroupVarianceKernel
     from .stats.models.ols import OLSKernel
     from .stats.models.reduction import reduce_maps
 
@@ -233,15 +263,25 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
                                                      samples.stop - samples.start)),
                                progress=_stage(new_progress, f"reducing {plan.name}", "source"))
             t1 = time.perf_counter()
-            kernel = OLSKernel(data.reshape(len(ids), -1), glm.X.to_numpy(),
-                               plan.weights, scheme=plan.scheme)
+            wsum = float(W.sum(axis=1)[0]) if len(ids) else 0.0
+            level = tests_level(glm.X.to_numpy(), plan.weights, wsum)
+            if level:                   # the contrast sees the maps' mean level
+                _add_level(data, cohort.units, wsum, samples)
+            if plan.groups is not None:
+                kernel = GroupVarianceKernel(data.reshape(len(ids), -1), glm.X.to_numpy(),
+                                             plan.weights, plan.groups.labels,
+                                             info=plan.groups.record())
+            else:
+                kernel = OLSKernel(data.reshape(len(ids), -1), glm.X.to_numpy(),
+                                   plan.weights, scheme=plan.scheme)
             kernel.allocate = plan_memory.array
             result = ContrastResult(
                 name=plan.name, description=plan.description,
-                inference=infer(kernel, adjacency, _with_blocks(spec, cohort, ids, inf),
-                                execution),
-                data=data, participants=ids, design=glm.X, weights=plan.weights,
-                within=plan.within)
+                inference=_in_units(infer(kernel, adjacency,
+                                          _with_blocks(spec, cohort, ids, inf), execution),
+                                    cohort.units),
+                data=cohort.units.to_input(data, wsum, samples=samples, level_included=level),
+                participants=ids, design=glm.X, weights=plan.weights, within=plan.within)
         results.append(result)
         timings[plan.name] = round(time.perf_counter() - t0, 3)
         stage_log.info(f"contrast {plan.name}: "
@@ -262,6 +302,26 @@ def analyse(prep: Prepared, *, resamples=None, seed=None, workers=1, progress=No
                           underlay=prep.underlay)
 
 
+def _add_level(data, units, weight_sum, samples, chunk=4096):
+    """``data += weight_sum * offset / scale`` in place (the maps' level, for a contrast
+    that tests it; :mod:`.inputs.units`)."""
+    for a in range(0, data.shape[1], chunk):
+        part = data[:, a:a + chunk]
+        part[...] = part.astype(np.float64) + weight_sum * units.level(
+            slice(a, a + chunk), samples)
+
+
+def _in_units(result, units):
+    """An inference result's estimate and standard error in the input's units (the
+    statistics are scale-free; the estimate carries the level already where the
+    contrast tests it)."""
+    for name in ("estimate", "se"):
+        value = getattr(result, name)
+        if value is not None:
+            setattr(result, name, np.asarray(value, np.float64) * units.scale)
+    return result
+
+
 def _with_blocks(spec, cohort, ids, inf):
     """The inference spec with the exchangeability blocks of these participants."""
     import dataclasses
@@ -280,6 +340,14 @@ def _fit_mixed(prep, samples, timings, progress=None):
     t0 = time.perf_counter()
     Y = prep.cohort.Y
     Yf = np.ascontiguousarray(Y[:, :, samples], dtype=np.float32).reshape(Y.shape[0], -1)
+    units = prep.cohort.units
+    # a contrast that tests the maps' mean level needs it back (inputs/units.py); the
+    # other contrasts and the variance components do not depend on it
+    level = any(tests_level(prep.mixed.X.to_numpy(), p.weights, 1.0)
+                for p in prep.plans if p.model == "mixed")
+    if level:
+        lv = units.level(slice(None), samples).reshape(-1)
+        Yf = (Yf.astype(np.float64) + lv[None, :]).astype(np.float32)
     core = MixedCore(prep.mixed.stats_design())
     reml = prep.settings.model.get("estimation", "reml") == "reml"
     fit = fit_features(core, Yf, reml=reml, progress=progress)
@@ -288,10 +356,13 @@ def _fit_mixed(prep, samples, timings, progress=None):
     stage_log.info(f"mixed model: {Yf.shape[1]} features fitted in "
                    f"{timings['mixed_model_fit']:.1f} s")
     shape = (Y.shape[1], Yf.shape[1] // Y.shape[1])
+    sc = units.scale                  # standard deviations in the input's units
     summary = {"method": "REML" if reml else "ML", "counts": fit.counts(),
                "code": fit.code.reshape(shape), "iterations": fit.iterations.reshape(shape),
-               "sd_residual": vc["sd_residual"].reshape(shape), "icc": vc["icc"].reshape(shape),
-               "sd": {n: vc["sd"][j].reshape(shape) for j, n in enumerate(prep.mixed.z_names)},
+               "sd_residual": sc * vc["sd_residual"].reshape(shape),
+               "icc": vc["icc"].reshape(shape),
+               "sd": {n: sc * vc["sd"][j].reshape(shape)
+                      for j, n in enumerate(prep.mixed.z_names)},
                "corr": {(prep.mixed.z_names[a], prep.mixed.z_names[b]): r.reshape(shape)
                         for (a, b), r in vc["corr"].items()},
                "columns": list(prep.mixed.X.columns), "random": list(prep.mixed.z_names),
@@ -310,13 +381,15 @@ def _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency, inf
     cohort, md = prep.cohort, prep.mixed
     within_col = prep.settings.model.get("within")
     kernel = MixedKernel(fitted["fit"], fitted["Y"], plan.weights, scheme=plan.scheme)
-    result = infer(kernel, adjacency, _with_blocks(spec, cohort, md.participants, inf), execution)
+    result = _in_units(infer(kernel, adjacency, _with_blocks(spec, cohort, md.participants, inf),
+                             execution), cohort.units)
     # descriptive per-participant measure (cluster time courses): participants whose
     # maps allow the within weights; the model itself used every map
     ok = reducible(cohort.maps, md.participants, within_col, plan.within, conditions)
     ids = [p for p, k in zip(md.participants, ok) if k]
     W = reduction_matrix(cohort.maps, ids, within_col, plan.within, conditions)
     data = reduce_maps(cohort.Y, W, samples)
+    cohort.units.to_input(data, float(W.sum(axis=1)[0]) if len(ids) else 0.0, samples=samples)
     return ContrastResult(name=plan.name, description=plan.description, inference=result,
                           data=data, participants=list(md.participants), design=md.X,
                           weights=plan.weights, within=plan.within, model="mixed",
@@ -367,6 +440,12 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     if scheduler and parse_scheduler(scheduler)[0] == "address":
         probe_scheduler(parse_scheduler(scheduler)[1])    # refused before the maps are read
     prep = prepare(settings, progress=new_progress)
+    if resamples is not None:        # --resamples: the attainable p with that number
+        problems = ProblemList()
+        _check_attainable(settings, prep.cohort, prep.glm_design, prep.plans, problems,
+                          resamples)
+        if problems:
+            raise InputError(problems)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
     t_loaded = time.perf_counter()
     stage_log.info(f"loaded and checked {prep.cohort.n_maps} maps in {t_loaded - t_start:.1f} s"
@@ -566,7 +645,8 @@ def run_record(settings, prep, result, command, workers) -> dict:
         "cache_hit": prep.cohort.cache_hit,
         "cohort": prep.summary,
         "contrasts": [{"name": c.name, "description": c.description, "model": c.model,
-                       "statistic": c.inference.kind, "df": list(c.inference.df),
+                       "statistic": c.inference.kind, "kind": c.inference.kind,
+                       **c.inference.statistic_info, "df": list(c.inference.df),
                        "scheme": c.inference.scheme, "resamples": c.inference.n_resamples,
                        "exact": c.inference.exact,
                        "weights": np.asarray(c.weights).tolist(),

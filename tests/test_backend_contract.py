@@ -23,6 +23,7 @@ from groupsrc.stats.models.ols import OLSKernel
 from groupsrc.stats.models.mixed.model import MixedCore
 from groupsrc.stats.models.mixed.fit import fit_features
 from groupsrc.stats.models.mixed.kernel import MixedKernel
+from groupsrc.stats.models.groupvar import GroupVarianceKernel
 
 from _mixed_data import simulate, unbalanced_design
 
@@ -61,8 +62,20 @@ def _mixed_kernel(scheme):
     return kernel
 
 
+def _groupvar_kernel(scheme):
+    """Variance groups (Welch's v with an age covariate): sign flips only."""
+    rng = np.random.default_rng(4)
+    g = np.repeat([0, 1], [5, 9])
+    Y = (rng.standard_normal((g.size, GRID.n_sources * T)) * np.where(g == 0, 2.0, 1.0)[:, None]
+         ).astype(np.float32)
+    X = np.c_[np.ones(g.size), g, rng.standard_normal(g.size)]
+    return GroupVarianceKernel(Y, X, [0.0, 1.0, 0.0], g)
+
+
 #: a kernel of each kind, for a rearrangement scheme
-KERNEL_JOBS = {"ols": _ols_kernel, "mixed": _mixed_kernel}
+KERNEL_JOBS = {"ols": _ols_kernel, "mixed": _mixed_kernel, "groupvar": _groupvar_kernel}
+#: kernels that use one rearrangement scheme only
+ONLY_SCHEME = {"groupvar": "sign-flip"}
 
 
 def _job(correction, scheme="sign-flip", kernel="ols", m=70, seed=5):
@@ -96,6 +109,8 @@ def test_every_backend_gives_the_serial_null_bit_for_bit(name, kernel, scheme, c
     # runs of chunks really split them
     monkeypatch.setattr(kernels, "FEATURE_CHUNK", 64)
     monkeypatch.setattr(mixed_kernel, "FEATURE_CHUNK", 64)
+    if ONLY_SCHEME.get(kernel, scheme) != scheme:
+        pytest.skip(f"the {kernel} kernel uses {ONLY_SCHEME[kernel]} only")
     job, m = _job(correction, scheme, kernel)
     assert job.kernel.fc == 64
     ref = _null(make_backend("serial"), job, m, batch=m)

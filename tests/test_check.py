@@ -252,7 +252,9 @@ def test_cache_invalidated_when_a_map_changes(tiny_cohort, capsys):
     assert not np.array_equal(np.asarray(prep.cohort.Y), first)
     # loaded values equal the file's voxel values (nibabel is the reference reader)
     src = prep.cohort.grid.ijk.tolist().index([2, 2, 2])
-    np.testing.assert_allclose(prep.cohort.Y[0, src], data[2, 2, 2, :], rtol=1e-6)
+    # (the stored maps are centred and scaled, inputs/units.py; raw() undoes it)
+    np.testing.assert_allclose(prep.cohort.raw(0, src), data[2, 2, 2, :], rtol=1e-6,
+                               atol=1e-6 * prep.cohort.units.scale)
 
 
 def test_time_axis_in_milliseconds_is_understood(tiny_cohort, tmp_path, capsys):
@@ -307,3 +309,26 @@ def test_atlas_is_checked_against_the_grid(tiny_cohort, tmp_path, capsys):
     (a.parent / "atlas.tsv").write_text("index\tname\n1\tfront\n2\tback\n")
     rc, text = run_check(a, capsys)
     assert rc == 0, text
+
+
+def test_a_cohort_too_small_to_reach_alpha_is_refused(tmp_path, capsys):
+    """Two per group: 2^4 = 16 sign vectors (two-sided, the all-minus mirror: p >= 2/16)
+    and C(4, 2) = 6 group relabellings (equal groups mirror: p >= 2/6) -- counts of
+    combinatorics (common practice) -- so neither contrast could ever reach 0.05; the age
+    slope has 4! = 24 orderings (p >= 1/24) and passes."""
+    from conftest import make_cohort
+    analysis = make_cohort(tmp_path / "c", n_per_group=2)
+    text = assert_refused(analysis, capsys, ["contrast 'rare_minus_frequent'", "0.125",
+                                             "contrast 'group_by_tone'", "0.333",
+                                             "could never be significant",
+                                             "more participants"], out=tmp_path / "out")
+    assert "contrast 'age_slope'" not in text
+
+
+def test_too_few_resamples_for_alpha_is_refused(tiny_cohort, tmp_path, capsys):
+    """--resamples 10: the identity among 10 draws, p >= 1/10 (Phipson & Smyth 2010)."""
+    rc = main(["run", str(tiny_cohort), "--out", str(tmp_path / "out"), "--resamples", "10"])
+    text = capsys.readouterr()
+    text = text.out + text.err
+    assert rc == 1 and "0.1 (10 distinct rearrangements" in text and "more resamples" in text
+    assert not (tmp_path / "out").exists()

@@ -427,7 +427,8 @@ def test_loaded_data_match_the_files_voxel_by_voxel(cohort):
                 column[key] = slc.start + j
         cols = [column[(r.structure, (r.i, r.j, r.k)) if r.structure else (r.hemisphere, r.vertex)]
                 for r in lab.itertuples()]
-        np.testing.assert_array_equal(np.asarray(coh.Y[m]), data[:, cols].T)
+        np.testing.assert_allclose(coh.raw(m), data[:, cols].T, rtol=1e-6,
+                                   atol=1e-6 * coh.units.scale)     # inputs/units.py
     again = load_cohort(settings, progress=False)             # from the loading cache
     assert again.cache_hit and again.grid.voxels.names == coh.grid.voxels.names
     np.testing.assert_array_equal(np.asarray(again.Y), np.asarray(coh.Y))

@@ -103,4 +103,5 @@ def test_stale_cache_is_never_served_end_to_end(tiny_cohort, tmp_path, settled):
     assert not prep.cohort.cache_hit
     expected = np.asanyarray(nib.load(str(nii)).dataobj)[2, 2, 2, :]   # nibabel as reference
     assert expected[0] == 123.0
-    np.testing.assert_array_equal(prep.cohort.Y[0, src_k], expected)
+    np.testing.assert_allclose(prep.cohort.raw(0, src_k), expected, rtol=1e-6,
+                               atol=1e-6 * prep.cohort.units.scale)     # inputs/units.py

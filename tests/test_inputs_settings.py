@@ -264,11 +264,13 @@ def test_every_engine_parameter_is_accounted_for():
 
 
 def test_every_value_rule_key_is_tried():
-    # each checked [inference] key guards an engine parameter (time_window: pipeline.prepare)
+    # each checked [inference] key guards an engine parameter (time_window: pipeline.prepare;
+    # variance_groups: design.variance_groups, a participants column or auto / none)
     checked = {f"{sec} {k}" for sec in ("inference", "inference.tfce")
                for k, spec in SCHEMA[sec].items()
                if spec.check is not None or spec.choices is not None}
-    assert checked - {"inference time_window", "inference neighbors"} <= set(ENGINE_BAD)
+    assert checked - {"inference time_window", "inference neighbors",
+                      "inference variance_groups"} <= set(ENGINE_BAD)
 
 
 @pytest.mark.parametrize("source,text,value",

@@ -70,7 +70,10 @@ def test_glm_contrasts_of_a_mixed_analysis_leave_out_incomplete_participants(tmp
     assert "GLM contrasts: leave out sub-03" in text
     n = len(pd.read_csv(analysis.parent / "participants.tsv", sep="\t"))   # pandas
     assert f"{n} participants ({n - 1} in the GLM contrasts, see below)" in text
-    assert "age_slope [t, permutation] " in text
+    # the GLM's groups are now 3 and 4 participants: variance groups by default
+    # (inputs/design.py, variance_groups = "auto"), Welch's v with sign flips
+    assert "age_slope [Welch v, sign-flip] " in text
+    assert "variance groups: group (control 3, patient 4)" in text
 
 
 @pytest.mark.parametrize("key,value", [("map_covariates", '["trials"]'),

@@ -135,11 +135,13 @@ def read_mask(path: Path):
     return np.isfinite(data) & (data != 0), hdr.affine
 
 
-def read_sources(header: MapHeader, flat_index: np.ndarray, out: np.ndarray) -> None:
-    """Decode one 4D map and copy its in-mask sources into ``out`` (sources, time)."""
-    data = read_data(header, np.float32)
+def read_sources(header: MapHeader, flat_index: np.ndarray) -> np.ndarray:
+    """Decode one 4D map; its in-mask sources (sources, time) in float64.  The file is
+    decoded in its own type (float64 files keep their precision, float32 ones are not
+    doubled in memory), only the in-mask values are widened."""
+    data = read_data(header)
     n_t = data.shape[3]
-    out[:] = data.reshape(-1, n_t)[flat_index]
+    return np.asarray(data.reshape(-1, n_t)[flat_index], dtype=np.float64)
 
 
 def affine_difference(a: np.ndarray, b: np.ndarray) -> str:

@@ -24,6 +24,7 @@ from ..formats.nifti import (DecodeError, affine_difference, read_data, read_hea
                              read_sources)
 from .problems import InputError, ProblemList
 from .settings import Settings, is_surface
+from .units import LEVEL_ROWS, Standardizer, Units, split_units
 from .tables import (HEMISPHERE_PATHS, ID, MISSING, check_tables, map_path, read_table,
                      real_path, rows_text)
 
@@ -35,17 +36,24 @@ class Cohort:
     maps: pd.DataFrame           # one row per map, in the row order of Y
     grid: VolumeGrid
     time_axis: TimeAxis
-    Y: np.ndarray                # (n_maps, n_sources, n_times) float32
+    Y: np.ndarray                # (n_maps, n_sources, n_times) float32, centred and scaled
     inputs: dict = field(default_factory=dict)   # path -> sha256
     cache_hit: bool = False
     #: optional atlas: {"labels": (n_sources,) int array (0 = none), "names": {int: str}}
     atlas: dict | None = None
     #: facts about the inputs that ``check`` prints (e.g. CIFTI-2 parts not read)
     notes: dict = field(default_factory=dict)
+    #: how ``Y`` relates to the input's units (:mod:`.units`): raw = scale * Y + offset
+    units: Units = field(default_factory=Units)
 
     @property
     def n_maps(self) -> int:
         return int(self.Y.shape[0])
+
+    def raw(self, rows=slice(None), sources=slice(None), samples=slice(None)) -> np.ndarray:
+        """Maps in the input's units (float64): ``scale * Y + offset``."""
+        Y = np.asarray(self.Y[rows], np.float64)[..., sources, samples]
+        return Y * self.units.scale + self.units.scale * self.units.level(sources, samples)
 
 
 _SURFACE_FORMATS = {"gifti": "GIfTI", "cifti": "CIFTI-2"}
@@ -275,7 +283,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         # damaged files are listed in the same pass
         good = [i for i, h in enumerate(headers) if h is not None and h.shape == ref.shape
                 and np.allclose(h.affine, ref.affine, atol=1e-3)]
-        _, _, bad, broken = _decode([headers[i] for i in good], ref, mask, progress)
+        _, _, bad, broken, _ = _decode([headers[i] for i in good], ref, mask, progress)
         _decode_problems(problems, maps, mpath, [headers[i] for i in good],
                          {good[j]: v for j, v in bad.items()},
                          {good[j]: v for j, v in broken.items()})
@@ -290,26 +298,28 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
         inputs[str(p)] = index.sha256(p)
     index.save()
     key = _cache.cache_key([inputs[str(p)] for p in map_paths]
-                           + [inputs.get(str(mask_path), "nomask"), "v1"])
+                           + [inputs.get(str(mask_path), "nomask"), CACHE_VERSION])
 
     hit = _cache.load_cached(cache_dir, key) if use_cache else None
     if hit is not None:
-        Y, meta = hit
+        stored, meta = hit
+        Y, units = split_units(stored, meta)
         grid_mask = np.zeros(ref.shape[:3], bool)
         grid_mask.reshape(-1)[np.asarray(meta["flat_index"], dtype=np.int64)] = True
         grid = VolumeGrid.from_mask(grid_mask, ref.affine)
         bad, broken = {int(k): v for k, v in meta.get("nonfinite", {}).items()}, {}
         cache_hit = True
     else:
-        Y, grid, bad, broken = _decode(
+        stored, grid, bad, broken, scale = _decode(
             headers, ref, mask, progress,
             allocate=(lambda shape: _cache.create(cache_dir, key, shape)) if use_cache else None)
         cache_hit = False
+        meta = {"flat_index": grid.flat_index.tolist(), "nonfinite": {}, "scale": scale}
         if not bad and not broken:
-            Y = _cache.store(cache_dir, key, Y,
-                             {"flat_index": grid.flat_index.tolist(), "nonfinite": {}})
+            stored = _cache.store(cache_dir, key, stored, meta)
         else:
-            _cache.discard(Y)
+            _cache.discard(stored)
+        Y, units = split_units(stored, meta)
     _decode_problems(problems, maps, mpath, headers, bad, broken)
     check_same_content(settings, maps, mpath, Y, problems, skip=set(bad) | set(broken))
     if grid.n_sources == 0 and not broken:
@@ -325,7 +335,7 @@ def load_cohort(settings: Settings, *, progress: bool | None = None,
                  "names": atlas["names"]}
     return Cohort(participants=parts.set_index(ID, drop=False),
                   maps=maps.reset_index(drop=True), grid=grid, time_axis=time_axis, Y=Y,
-                  inputs=inputs, cache_hit=cache_hit, atlas=atlas)
+                  inputs=inputs, cache_hit=cache_hit, atlas=atlas, units=units)
 
 
 def _surface_cohort(settings, parts, maps, mpath, problems, progress, use_cache) -> Cohort:
@@ -339,7 +349,7 @@ def _surface_cohort(settings, parts, maps, mpath, problems, progress, use_cache)
     return Cohort(participants=parts.set_index(ID, drop=False),
                   maps=maps.reset_index(drop=True), grid=got.space, time_axis=got.time_axis,
                   Y=got.Y, inputs=got.inputs, cache_hit=got.cache_hit, atlas=got.atlas,
-                  notes=got.notes)
+                  notes=got.notes, units=got.units)
 
 
 def _read_mask(mask_path, ref, problems):
@@ -443,11 +453,13 @@ def _read_atlas(settings, ref, problems):
 
 
 def _decode(headers, ref, mask, progress, allocate=None):
-    """Y (maps, sources, time), the grid, {i: NaN/Inf count}, {i: decode error}.
+    """(stored array, grid, {i: NaN/Inf count}, {i: decode error}, scale).
 
-    ``progress``: a :func:`groupsrc.progress.reporter`, or True/False/None (a bar
-    on a terminal); ``allocate(shape)`` gives the array Y is decoded into (e.g.
-    the cache's memory-mapped file, whose pages are handed back map by map).
+    The stored array is (maps + 2, sources, time) float32: the maps centred and scaled
+    in float64 as they are decoded (:mod:`.units`), then the two rows of ``offset /
+    scale``.  ``progress``: a :func:`groupsrc.progress.reporter`, or True/False/None
+    (a bar on a terminal); ``allocate(shape)`` gives the array it is decoded into
+    (e.g. the cache's memory-mapped file, whose pages are handed back map by map).
     """
     from ..progress import per_item
     from ..stats.engine.pages import release
@@ -466,24 +478,32 @@ def _decode(headers, ref, mask, progress, allocate=None):
             mask &= np.isfinite(data).all(axis=3)
             mask &= ~(data == 0).all(axis=3)
     grid = VolumeGrid.from_mask(mask, ref.affine)
-    shape = (len(headers), grid.n_sources, n_t)
+    shape = (len(headers) + LEVEL_ROWS, grid.n_sources, n_t)
     Y = allocate(shape) if allocate is not None else None
     Y = np.empty(shape, dtype=np.float32) if Y is None else Y
     flat = grid.flat_index
     bad = {}
+    standard = Standardizer()
     for i, h in enumerate(each(headers, "loading maps", "map")):
         if i in broken:
             continue
         try:
-            read_sources(h, flat, Y[i])
+            raw = read_sources(h, flat)
         except DecodeError as exc:
             broken[i] = str(exc)
             continue
+        Y[i] = standard(raw)
         nonfinite = int((~np.isfinite(Y[i])).sum())
         if nonfinite:
             bad[i] = nonfinite
         release(Y)
-    return Y, grid, bad, broken
+    standard.settle(Y, len(headers))
+    Y[len(headers):] = standard.level_rows(Y.shape[1:])
+    return Y, grid, bad, broken, float(standard.scale or 1.0)
+
+
+#: the loading cache's format: centred and scaled maps plus two rows of offset / scale
+CACHE_VERSION = "v2-units"
 
 
 def summary(cohort: Cohort, settings: Settings) -> dict:

@@ -27,6 +27,18 @@ their meaning does not depend on how factors are coded:
 The design matrix uses formulaic's default (treatment) coding; because
 contrasts are built from predictions, sum coding would give the same
 estimates, statistics and p-values.
+
+Variance groups (``[inference] variance_groups``)
+-------------------------------------------------
+Which participants may have a residual variance of their own
+(:func:`variance_groups`): ``"none"`` -- one pooled variance; a participants
+column -- its levels, for every contrast; ``"auto"`` (default) -- the levels of
+the compared factor (``compare``) or the cells of the between formula's factors
+(other contrasts), *when those groups differ in size*: with equal groups the
+pooled t keeps its level whatever the variances, with unequal groups it does
+not (the Behrens-Fisher problem).  A contrast with variance groups is tested
+with Welch's v (one row) or the G statistic (several rows) and sign flips
+(:mod:`groupsrc.stats.models.groupvar`).
 """
 
 from __future__ import annotations
@@ -78,6 +90,7 @@ class Design:
     factors: dict              # factor column -> sorted levels
     covariates: dict           # numeric column -> mean
     participants: list
+    table: pd.DataFrame | None = None   # the participants' rows, in the order of X
 
 
 def build_design(settings, parts: pd.DataFrame, problems: ProblemList, where) -> Design | None:
@@ -122,7 +135,7 @@ def build_design(settings, parts: pd.DataFrame, problems: ProblemList, where) ->
             if parts[col].std() == 0:
                 problems.add(where, f"covariate '{col}' is constant", "remove it from 'between'")
     return Design(X=X, spec=Xm.model_spec, factors=factors, covariates=covariates,
-                  participants=parts[ID].tolist())
+                  participants=parts[ID].tolist(), table=parts.reset_index(drop=True))
 
 
 def _prediction_row(design: Design, fixed: dict) -> np.ndarray:
@@ -151,6 +164,15 @@ class ContrastPlan:
     kind: str                # "t" or "F"
     scheme: str              # "sign-flip" or "permutation"
     model: str = "glm"       # "glm" or "mixed"
+    #: variance groups of the contrast (:func:`variance_groups`), or None: pooled
+    groups: "VarianceGroups | None" = None
+
+    @property
+    def statistic_name(self) -> str:
+        """What ``check`` calls the statistic: t, F, Welch v or G (variance groups)."""
+        if self.groups is None:
+            return self.kind
+        return "Welch v" if self.kind == "t" else "G"
 
 
 def _plain(exc) -> str:
@@ -159,16 +181,96 @@ def _plain(exc) -> str:
     return re.sub(r"\s+", " ", text).strip()
 
 
-def plan_contrast(spec, design: Design, problems: ProblemList, where) -> ContrastPlan | None:
+@dataclass(frozen=True)
+class VarianceGroups:
+    """Participants' variance groups for one contrast."""
+
+    column: str              # the participants column (or "a x b" for cells of factors)
+    labels: np.ndarray       # (n,) one label per participant, in the design's order
+    sizes: dict              # label -> participants
+    reason: str              # why (for check, the report and the methods text)
+
+    def record(self) -> dict:
+        """JSON-ready: what run.json says."""
+        return {"column": self.column, "sizes": {str(k): int(v) for k, v in self.sizes.items()},
+                "reason": self.reason}
+
+
+def _cells(design: Design, columns) -> np.ndarray:
+    t = design.table
+    labels = t[columns[0]].astype(str)
+    for c in columns[1:]:
+        labels = labels + " x " + t[c].astype(str)
+    return labels.to_numpy()
+
+
+def variance_groups(setting, spec, design: Design, problems: ProblemList,
+                    where) -> VarianceGroups | None:
+    """The variance groups of contrast ``spec`` under ``[inference] variance_groups =
+    setting`` (module docstring), or None (pooled).  An explicit column whose groups
+    cannot each give a variance is a problem; ``auto`` stays pooled then, and when a
+    group holds fewer than 3 participants (a variance from two is no estimate)."""
+    setting = setting or "auto"
+    if setting == "none" or design.table is None:
+        return None
+    if setting != "auto":
+        if setting not in design.table.columns:
+            return None                          # reported by the table checks
+        labels = design.table[setting].astype(str).to_numpy()
+        column, reason = setting, f"set by [inference] variance_groups = \"{setting}\""
+    else:
+        if spec.compare:
+            cols = [next(iter(spec.compare))]
+        else:
+            cols = [f for f in design.factors]
+        cols = [c for c in cols if c in design.table.columns]
+        if not cols:
+            return None
+        labels = _cells(design, cols)
+        column = " x ".join(cols)
+        reason = ""
+    names, counts = np.unique(labels, return_counts=True)
+    sizes = dict(zip(names.tolist(), counts.tolist()))
+    if setting == "auto":
+        if len(sizes) < 2 or counts.min() == counts.max():
+            return None
+        if counts.min() < 3:
+            return None   # a variance from 2 participants is no estimate; stay pooled
+        reason = ("automatic: the groups of " + column + " differ in size ("
+                  + ", ".join(f"{k} {v}" for k, v in sizes.items()) + ")")
+    vg = VarianceGroups(column, labels, sizes, reason)
+    from ..stats.models.groupvar import groups_without_variance
+    empty = groups_without_variance(design.X.to_numpy(), labels)
+    if empty:
+        if setting == "auto":
+            return None
+        problems.add(f"{where} [inference] variance_groups",
+                     f"the variance of group(s) {', '.join(empty)} of '{column}' cannot be "
+                     "estimated (too few participants for the design)",
+                     "use a column whose groups each hold several participants, or "
+                     "variance_groups = \"none\"")
+        return None
+    return vg
+
+
+def plan_contrast(spec, design: Design, problems: ProblemList, where,
+                  variance_groups_setting="none") -> ContrastPlan | None:
     """The contrast's weights and resampling scheme, or None with problems added."""
     try:
-        return _plan_contrast(spec, design, problems, where)
+        plan = _plan_contrast(spec, design, problems, where)
     except Exception as exc:  # formulaic evaluating the user's formula on the reference grid
         problems.add(where, f"cannot be computed with the formula in [model] between "
                      f"({_plain(exc)})",
                      "use plain columns, C(...) and interactions in between; scale() or "
                      "center() are not needed, contrasts are taken at the covariates' means")
         return None
+    if plan is None:
+        return None
+    vg = variance_groups(variance_groups_setting, spec, design, problems, where)
+    if vg is not None:
+        plan.groups = vg
+        plan.scheme = "sign-flip"
+    return plan
 
 
 def weights_over(spec, cols, problems: ProblemList, where, what="a design-matrix column"):
@@ -245,6 +347,34 @@ def _plan_contrast(spec, design: Design, problems: ProblemList, where) -> Contra
                      "that groupsrc check prints)")
         return None
     return ContrastPlan(spec.name, spec.description or desc, within, w, kind, scheme)
+
+
+def smallest_p(plan: ContrastPlan, design: Design, n_resamples: int, tails: str,
+               blocks=None) -> tuple[float, int]:
+    """(smallest corrected p the rearrangements can give, distinct rearrangements).
+
+    Sign flips: ``2^n`` sign vectors, and two-sided the vector of all minus signs gives
+    the observed statistic's mirror, so ``2 / 2^n``.  Permutations: the distinct
+    relabellings of the *tested* columns (the design columns the contrast weighs, a
+    continuous covariate in the nuisance does not multiply them), within blocks; a
+    two-level tested column with equal groups has a mirror too.  With fewer
+    rearrangements than requested all are used (exact), else ``n_resamples`` of them,
+    the identity among them (Phipson & Smyth 2010)."""
+    from ..stats.resampling import count_distinct_permutations
+    n = len(design.participants)
+    if plan.scheme == "sign-flip":
+        count = 2 ** n if n < 63 else 2 ** 62
+        mirror = tails == "two"
+    else:
+        W = np.atleast_2d(plan.weights)
+        cols = np.flatnonzero(np.abs(W).sum(axis=0) > 0)
+        tested = np.round(design.X.to_numpy()[:, cols], 12)
+        count = count_distinct_permutations(labels=tested, blocks=blocks, n=n)
+        values, sizes = np.unique(tested, axis=0, return_counts=True)
+        mirror = tails == "two" and blocks is None and len(values) == 2 and sizes[0] == sizes[1]
+    m = min(int(n_resamples), count)
+    k = 2 if (mirror and m == count) else 1
+    return k / m, count
 
 
 def _within_text(within):

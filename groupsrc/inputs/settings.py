@@ -200,6 +200,11 @@ SCHEMA = {
         "neighbors": Key(str, None, " | ".join(NEIGHBORS) + "; default: the source space's "
                          "first kind (face on a volume, edge on a surface)", choices=NEIGHBORS),
         "blocks": Key(str, None, "participants column defining exchangeability blocks"),
+        "variance_groups": Key(str, "auto", "auto | none | a participants column: groups whose "
+                               "residual variance may differ (auto: the between factor, when "
+                               "its groups differ in size)", lambda v: bool(v.strip()),
+                               "must name a column, or be auto or none",
+                               "write variance_groups = \"auto\" (or \"none\", or a column)"),
         "tfce": Key(dict, None, "the [inference.tfce] table"),
     },
     "inference.tfce": {

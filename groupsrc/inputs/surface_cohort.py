@@ -47,9 +47,10 @@ from .cifti_checks import cifti_headers
 from .surface_checks import (_check_time, _times, check_same_files, gifti_headers,
                              read_atlas, read_masks, read_meshes)
 from .tables import HEMISPHERE_PATHS, MISSING, map_path
+from .units import LEVEL_ROWS, Standardizer, Units, split_units
 
 #: cache entries of surfaces carry this tag, so they never collide with volumes
-CACHE_TAG = "surface-v1"
+CACHE_TAG = "surface-v2-units"
 #: and those of CIFTI-2 files whose volume parts are sources too (earlier entries held no voxels)
 VOLUME_CACHE_TAG = "cifti-volume-parts-v1"
 
@@ -65,21 +66,24 @@ class SurfaceInputs:
     cache_hit: bool
     atlas: dict | None
     notes: dict = field(default_factory=dict)
+    units: Units = field(default_factory=Units)
 
 
 # ----------------------------------------------------------------------------
 # decoding
 # ----------------------------------------------------------------------------
 
-def _read_row(fmt, headers, line, hemis):
-    """{hemisphere: (V, T) float32} of one maps row (NaN where a CIFTI file has no value)."""
+def _read_row(fmt, headers, line, hemis, dtype=np.float32):
+    """{hemisphere: (V, T) dtype} of one maps row (NaN where a CIFTI file has no value)."""
     if fmt == "cifti":
-        return cifti.read_data(headers[(line, None)])
-    return {h: gifti.read_data(headers[(line, h)]) for h in hemis}
+        return cifti.read_data(headers[(line, None)], dtype)
+    return {h: gifti.read_data(headers[(line, h)], dtype) for h in hemis}
 
 
 def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
-    """(Y, masks used, {line: {part: NaN count}}, {line: decode error}) for complete rows.
+    """(stored, masks used, {line: {part: NaN count}}, {line: decode error}, scale) for
+    complete rows.  ``stored`` holds the maps centred and scaled in float64 as they are
+    decoded, then two rows of ``offset / scale`` (:mod:`.units`).
 
     ``voxels``: the CIFTI-2 volume parts (their voxels follow the vertices in Y);
     ``progress``: a :func:`groupsrc.progress.reporter` (silent when quiet), or
@@ -113,21 +117,25 @@ def decode(fmt, headers, lines, meshes, masks, n_t, progress, voxels=None):
     sizes = [int(use[h].sum()) for h in hemis] + [len(ijk) for _, ijk in
                                                   (voxels.parts if voxels is not None else ())]
     bounds = np.cumsum([0] + sizes)
-    Y = np.empty((len(lines), int(bounds[-1]), n_t), dtype=np.float32)
+    Y = np.empty((len(lines) + LEVEL_ROWS, int(bounds[-1]), n_t), dtype=np.float32)
+    standard = Standardizer()
     for i, line in enumerate(each(lines, "loading maps", "map")):
         if line in broken:
             continue
         try:
-            data = _read_row(fmt, headers, line, hemis)
+            data = _read_row(fmt, headers, line, hemis, np.float64)
         except gifti.DecodeError as exc:
             broken[line] = str(exc)
             continue
-        Y[i] = np.concatenate([data[h][use[h]] for h in hemis] + [data[n] for n in names])
+        Y[i] = standard(np.concatenate([data[h][use[h]] for h in hemis]
+                                       + [data[n] for n in names]))
         nonfinite = {part: int((~np.isfinite(Y[i, a:b])).sum())
                      for part, a, b in zip(hemis + names, bounds[:-1], bounds[1:])}
         if any(nonfinite.values()):
             bad[line] = {part: n for part, n in nonfinite.items() if n}
-    return Y, use, bad, broken
+    standard.settle(Y, len(lines))
+    Y[len(lines):] = standard.level_rows(Y.shape[1:])
+    return Y, use, bad, broken, float(standard.scale or 1.0)
 
 
 # ----------------------------------------------------------------------------
@@ -190,7 +198,7 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
     if problems or time_axis is None:
         # decode what passed, so NaN values and damaged files are listed in this pass too
         if complete:
-            _, _, bad, broken = decode(fmt, headers, complete, meshes, masks, n_t, progress,
+            _, _, bad, broken, _ = decode(fmt, headers, complete, meshes, masks, n_t, progress,
                                        voxels)
             _decode_problems(problems, mpath, bad, broken)
         index.save()
@@ -214,18 +222,20 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
                            + ([VOLUME_CACHE_TAG] if voxels is not None else []))
     hit = _cache.load_cached(cache_dir, key) if use_cache else None
     if hit is not None:
-        Y, meta = hit
+        stored, meta = hit
         use = {}
         for h in hemis:
             use[h] = np.zeros(meshes[h].n, bool)
             use[h][np.asarray(meta["sources"][h], dtype=np.int64)] = True
         bad, broken = {}, {}
     else:
-        Y, use, bad, broken = decode(fmt, headers, list(maps.index), meshes, masks, n_t,
-                                     progress, voxels)
+        stored, use, bad, broken, scale = decode(fmt, headers, list(maps.index), meshes,
+                                                 masks, n_t, progress, voxels)
+        meta = {"sources": {h: np.flatnonzero(use[h]).tolist() for h in hemis},
+                "scale": scale}
         if not bad and not broken:
-            Y = _cache.store(cache_dir, key, Y, {"sources": {h: np.flatnonzero(use[h]).tolist()
-                                                             for h in hemis}})
+            stored = _cache.store(cache_dir, key, stored, meta)
+    Y, units = split_units(stored, meta)
     _decode_problems(problems, mpath, bad, broken)
     if sum(int(u.sum()) for u in use.values()) == 0 and not broken:
         problems.add(mpath, "no vertex is finite in every map", "give mask_left / mask_right")
@@ -236,7 +246,7 @@ def load_surface(settings, maps, mpath, problems: ProblemList, *, progress=None,
                         voxels=voxels)
     notes = _notes(fmt, headers, masks, use)
     return SurfaceInputs(space, time_axis, Y, inputs, hit is not None,
-                         source_atlas(space, atlas), notes)
+                         source_atlas(space, atlas), notes, units)
 
 
 def _voxel_parts(headers, lines) -> VoxelParts | None:

@@ -208,11 +208,18 @@ def model_columns(settings: Settings) -> list:
             cols.extend(c.compare.keys())
     if settings.inference.get("blocks"):
         cols.append(settings.inference["blocks"])
+    vg = settings.inference.get("variance_groups") or "auto"
+    if vg not in VARIANCE_GROUP_MODES:
+        cols.append(vg)
     seen = []
     for c in cols:
         if c not in seen:
             seen.append(c)
     return seen
+
+
+#: the values of [inference] variance_groups that are not column names
+VARIANCE_GROUP_MODES = ("auto", "none")
 
 
 def map_covariates(settings: Settings) -> list:

@@ -84,7 +84,9 @@ def _contrast_summary(c: ContrastResult, alpha, forming_p) -> dict:
             "cluster_rule": inf.cluster_rule,
             "fit": dataclasses.asdict(inf.fit) if inf.fit else None,
             "resampling": dataclasses.asdict(record) if record else None,
-            "tfce": dataclasses.asdict(inf.tfce) if inf.tfce else None}
+            "tfce": dataclasses.asdict(inf.tfce) if inf.tfce else None,
+            # the statistic actually used (stats kernels' describe(), inference)
+            **inf.statistic_info}
 
 
 def _model_brief(model) -> dict | None:
@@ -107,10 +109,14 @@ def write_maps(c: ContrastResult, maps, folder: Path, reported) -> None:
         maps.estimate(folder, "std_error", inf.se, c.name, "std error", signed=False)
     effect = ("hedges g" if c.model == "glm" else "d total sd") if inf.kind == "t" \
         else "partial eta2"
+    if inf.statistic_info.get("effect_size") == "d_mean_group_variance" and inf.kind == "t":
+        effect = "d mean group var"        # variance groups (stats/models/groupvar.py)
     maps.estimate(folder, "std_effect", inf.std_effect, c.name, effect,
                   signed=inf.kind == "t", bounded=inf.kind != "t")
     if inf.scale == "z":
-        maps.estimate(folder, "test_statistic", inf.test_statistic, c.name, f"{inf.kind} value",
+        named = {"welch_v": "Welch v", "G": "G"}.get(inf.statistic_info.get("statistic"),
+                                                     inf.kind)
+        maps.estimate(folder, "test_statistic", inf.test_statistic, c.name, f"{named} value",
                       signed=inf.kind == "t")
         maps.estimate(folder, "df", inf.df_map, c.name, "df Satterthwait", signed=False)
     maps.p_values(folder, "p_uncorrected", inf.p_uncorrected, c.name, "uncorrected")

@@ -167,10 +167,13 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
     if not correction.resamples:
         obs = kernel.observed(spec.tails)
         stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
-        outcome = correction.parametric(stat_map, obs.p_uncorrected, spec.alpha)
+        outcome = _undefined_kept(stat_map, lambda m: correction.parametric(
+            m, obs.p_uncorrected, spec.alpha))
         null = pd.DataFrame(columns=NULL_COLUMNS)
         return _result(kernel, obs, outcome, null, spec, threshold, shape, None, None)
     rearr = kernel.rearrangements(spec.n_resamples, spec.seed, spec.blocks)
+    if hasattr(kernel, "z_floor"):     # resamples read only beyond the forming threshold
+        kernel.z_floor = float(threshold) if threshold is not None else 0.0
     kernel.prepare(rearr)
     trim()                                   # the stages before leave freed memory held
     fixed = dict(seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
@@ -185,7 +188,8 @@ def infer(kernel: StatisticKernel, adjacency, spec: InferenceSpec = InferenceSpe
     trim()
     obs = kernel.observed(spec.tails)
     stat_map = np.asarray(obs.statistic, np.float64).reshape(shape)
-    outcome = correction.outcome(stat_map, null["max_stat"].to_numpy(), spec.alpha)
+    outcome = _undefined_kept(stat_map, lambda m: correction.outcome(
+        m, null["max_stat"].to_numpy(), spec.alpha))
     record = ResamplingRecord(
         seed=int(rearr.seed), kind=rearr.kind, n_resamples=rearr.n_resamples,
         exact=bool(rearr.exact), batch_size=batch, freedman_lane=bool(kernel.freedman_lane),
@@ -293,6 +297,32 @@ def _progress(progress, total):
     return update
 
 
+def _undefined_kept(stat_map, score):
+    """``score(map)`` with undefined (NaN) features scored as 0 -- never beyond a
+    threshold, as in every resample -- and their corrected p left NaN."""
+    undefined = np.isnan(stat_map)
+    if not undefined.any():
+        return score(stat_map)
+    outcome = score(np.where(undefined, 0.0, stat_map))
+    if outcome.p_corrected is not None:
+        p = np.array(outcome.p_corrected, dtype=np.float64)
+        p[undefined] = np.nan
+        outcome = dataclasses.replace(outcome, p_corrected=p)
+    return outcome
+
+
+#: how many undefined points the record names (the count is always complete)
+UNDEFINED_NAMED = 10
+
+
+def _undefined_record(statistic, shape) -> dict:
+    """The count of undefined (degenerate) points and the first few as [source, sample]."""
+    undefined = np.isnan(np.asarray(statistic, np.float64)).reshape(shape)
+    where = np.argwhere(undefined)[:UNDEFINED_NAMED]
+    return {"degenerate_features": int(undefined.sum()),
+            "degenerate_points": [[int(s), int(t)] for s, t in where]}
+
+
 def _result(kernel, obs, outcome, null, spec, threshold, shape, record, matrix):
     def shaped(a):
         return None if a is None else np.asarray(a, dtype=np.float64).reshape(shape)
@@ -309,7 +339,8 @@ def _result(kernel, obs, outcome, null, spec, threshold, shape, record, matrix):
         tails=spec.tails, fit=kernel.info(), cluster_rule=outcome.cluster_rule,
         resampling=record, rearrangements=matrix,
         tfce=spec.tfce if spec.correction == "tfce" else None, enhanced=outcome.enhanced,
-        scale=obs.scale, test_statistic=shaped(obs.test_statistic), df_map=shaped(obs.df_map))
+        scale=obs.scale, test_statistic=shaped(obs.test_statistic), df_map=shaped(obs.df_map),
+        statistic_info=dict(kernel.describe(), **_undefined_record(obs.statistic, shape)))
 
 
 __all__ = ["InferenceSpec", "Execution", "infer", "run_inference", "TfceOptions"]

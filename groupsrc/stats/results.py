@@ -93,6 +93,10 @@ class InferenceResult:
         What ``statistic`` holds (see :class:`~groupsrc.stats.models.ols.Observed`).
     test_statistic, df_map : (n_sources, n_times) or None
         With ``scale = "z"``: the t or F, and its per-feature denominator df.
+    statistic_info : dict
+        What the run record says about the statistic: the kernel's ``describe()``
+        (``statistic``, ``df_rule``, ``variance_groups``, ...) and
+        ``degenerate_features`` (features without variance: statistic NaN).
     """
 
     kind: str
@@ -121,6 +125,7 @@ class InferenceResult:
     scale: str = "statistic"
     test_statistic: np.ndarray | None = None
     df_map: np.ndarray | None = None
+    statistic_info: dict = field(default_factory=dict)
 
 
 @dataclass

@@ -28,7 +28,15 @@ rearranged, for the methods text), ``freedman_lane``, and
   feature chunks (:meth:`StatisticKernel.chunk_range`), so J threads can
   share one batch; the maxima and minima are then those of that part.  The
   arithmetic of resample ``i`` must not depend on ``lo``, ``hi``, ``part`` or
-  the process computing it (bit-for-bit reproducibility, see below).
+  the process computing it (bit-for-bit reproducibility, see
+  :mod:`.ols`);
+* ``describe() -> dict`` -- what the run record says about the statistic.
+
+Undefined features.  Where a feature has no variance to test against (the same
+value in every unit), ``observed`` gives a NaN statistic and p, and every
+resampled statistic there is 0 (never beyond a threshold);
+:func:`..inference.infer` scores the observed map with 0 there and leaves the
+corrected p NaN.
 """
 
 from __future__ import annotations
@@ -123,6 +131,13 @@ class StatisticKernel(ABC):
 
     @abstractmethod
     def info(self) -> FitInfo: ...
+
+    def describe(self) -> dict:
+        """What the run record says about the statistic (JSON-ready): ``statistic``
+        (``t`` or ``F`` pooled; ``welch_v`` / ``G`` with variance groups; ``z`` of a
+        mixed model), ``df_rule`` and ``variance_groups`` (None, or the column and its
+        levels' sizes); kernels add their own keys."""
+        return {"statistic": self.kind, "df_rule": "residual", "variance_groups": None}
 
     # -- per-thread work arrays (shared by every kernel) ----------------------
     _buffers: PerThread             # set by each kernel's __init__; not pickled

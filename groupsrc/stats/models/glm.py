@@ -18,8 +18,13 @@ Conventions
   the difference over the pooled sd.
 * Standardised effect for F: partial eta squared ``F q / (F q + df)``.
 
-Features whose residual sum of squares is zero (e.g. constant data) get a
-statistic of 0 rather than an undefined ratio.
+Degenerate features.  A feature whose residuals vanish -- the same value (or
+the same difference) in every participant, up to the float32 rounding of the
+data -- has no variance to test against: its t or F would be a ratio of
+rounding errors (once 2e16).  Where ``RSS <= DEGENERATE_RTOL^2 * sum(y^2)``
+(residual SD below a millionth of the data's root mean square; an all-zero
+feature included) the statistic is undefined: NaN, with ``degenerate`` True;
+the estimate is kept, the standard error is 0.
 
 Examples
 --------
@@ -40,6 +45,9 @@ import numpy as np
 _RANK_RTOL = 1e-10
 #: features processed per chunk in the float64 passes (~ n * chunk * 8 bytes)
 _CHUNK = 8192
+#: a feature whose residual SD is below this share of its root mean square value is
+#: degenerate (module docstring); float32 data carry about 6e-8 relative precision
+DEGENERATE_RTOL = 1e-6
 
 
 # ----------------------------------------------------------------------------
@@ -151,6 +159,8 @@ class TContrastResult:
     t: np.ndarray
     sigma: np.ndarray
     df: int
+    #: no residual variance (module docstring): t is NaN there
+    degenerate: np.ndarray | None = None
 
 
 @dataclass
@@ -161,6 +171,8 @@ class FContrastResult:
     df1: int
     df2: int
     sigma: np.ndarray
+    #: no residual variance (module docstring): F is NaN there
+    degenerate: np.ndarray | None = None
 
 
 def _as_features(Y, n):
@@ -172,7 +184,7 @@ def _as_features(Y, n):
 
 
 def _chunked_fit(Yf, basis: ContrastBasis, chunk=_CHUNK):
-    """Yield (slice, effect coordinates (q, f), rss (f,)) in float64."""
+    """Yield (slice, effect coordinates (q, f), rss (f,), degenerate (f,)) in float64."""
     Q = basis.q
     qe = basis.q_effect.shape[1]
     for a in range(0, Yf.shape[1], chunk):
@@ -181,7 +193,27 @@ def _chunked_fit(Yf, basis: ContrastBasis, chunk=_CHUNK):
         coef = Q.T @ y
         resid = y - Q @ coef
         rss = np.einsum("ij,ij->j", resid, resid)
-        yield sl, coef[:qe], rss
+        yield sl, coef[:qe], rss, degenerate(rss, np.einsum("ij,ij->j", y, y))
+
+
+def degenerate_mask(Y, X, contrast, chunk=_CHUNK, release=None) -> np.ndarray:
+    """The degenerate features of ``Y`` (n, F) under the full model (bool, (F,)): the
+    same decision as :func:`t_contrast` / :func:`f_contrast` make, from the same
+    float64 pass.  ``release(Y)`` is called after each chunk (memory-mapped data)."""
+    basis = contrast_basis(X, contrast)
+    out = np.empty(Y.shape[1], bool)
+    for a in range(0, Y.shape[1], chunk):
+        part = np.asarray(Y[:, a:a + chunk])
+        for sl, _, _, deg in _chunked_fit(part, basis, chunk):
+            out[a + sl.start:a + sl.stop] = deg
+        if release is not None:
+            release(Y)
+    return out
+
+
+def degenerate(rss, yy):
+    """Features without residual variance: ``rss <= DEGENERATE_RTOL^2 * yy`` (float64)."""
+    return rss <= (DEGENERATE_RTOL * DEGENERATE_RTOL) * yy
 
 
 def _safe_ratio(num, den):
@@ -222,14 +254,16 @@ def t_contrast(Y, X, contrast, *, chunk=_CHUNK) -> TContrastResult:
     est = np.empty(Yf.shape[1])
     sig = np.empty(Yf.shape[1])
     tt = np.empty(Yf.shape[1])
-    for sl, coef, rss in _chunked_fit(Yf, basis, chunk):
-        s = np.sqrt(rss / basis.df)
+    bad = np.empty(Yf.shape[1], bool)
+    for sl, coef, rss, deg in _chunked_fit(Yf, basis, chunk):
+        s = np.where(deg, 0.0, np.sqrt(rss / basis.df))
         est[sl] = basis.scale * coef[0]
         sig[sl] = s
-        tt[sl] = _safe_ratio(coef[0], s)
+        tt[sl] = np.where(deg, np.nan, _safe_ratio(coef[0], s))
+        bad[sl] = deg
     se = sig * basis.scale
     return TContrastResult(est.reshape(shape), se.reshape(shape), tt.reshape(shape),
-                           sig.reshape(shape), basis.df)
+                           sig.reshape(shape), basis.df, bad.reshape(shape))
 
 
 def f_contrast(Y, X, contrast, *, chunk=_CHUNK) -> FContrastResult:
@@ -248,12 +282,14 @@ def f_contrast(Y, X, contrast, *, chunk=_CHUNK) -> FContrastResult:
     Yf, shape = _as_features(Y, basis.q.shape[0])
     F = np.empty(Yf.shape[1])
     sig = np.empty(Yf.shape[1])
+    bad = np.empty(Yf.shape[1], bool)
     q = basis.df1
-    for sl, coef, rss in _chunked_fit(Yf, basis, chunk):
+    for sl, coef, rss, deg in _chunked_fit(Yf, basis, chunk):
         ss_eff = np.einsum("ij,ij->j", coef, coef)
-        F[sl] = _safe_ratio(ss_eff / q, rss / basis.df)
-        sig[sl] = np.sqrt(rss / basis.df)
-    return FContrastResult(F.reshape(shape), q, basis.df, sig.reshape(shape))
+        F[sl] = np.where(deg, np.nan, _safe_ratio(ss_eff / q, rss / basis.df))
+        sig[sl] = np.where(deg, 0.0, np.sqrt(rss / basis.df))
+        bad[sl] = deg
+    return FContrastResult(F.reshape(shape), q, basis.df, sig.reshape(shape), bad.reshape(shape))
 
 
 def hedges_j(df):
@@ -267,8 +303,11 @@ def hedges_j(df):
 
 
 def cohens_d(estimate, sigma, df, *, hedges=True):
-    """Standardised contrast ``estimate / sigma`` (optionally Hedges-corrected)."""
-    d = _safe_ratio(np.asarray(estimate, float), np.asarray(sigma, float))
+    """Standardised contrast ``estimate / sigma`` (optionally Hedges-corrected); NaN
+    where ``sigma`` is 0 (no variance: undefined)."""
+    sigma = np.asarray(sigma, float)
+    d = _safe_ratio(np.asarray(estimate, float), sigma)
+    d = np.where(sigma > 0, d, np.nan)
     return d * hedges_j(df) if hedges else d
 
 

@@ -265,6 +265,10 @@ class OLSKernel(StatisticKernel):
         else:
             R, Q = Yf, b.q
             rr = _sum_squares(R)
+        # degenerate features (no residual variance, glm module docstring): an infinite
+        # ||R||^2 makes every resampled statistic 0 there, never part of a cluster
+        self.degenerate = glm.degenerate_mask(Yf, self.X, self.C, release=_release)
+        rr[self.degenerate] = np.inf
         self.R, self.rr, self.Q = R, rr, Q.astype(np.float32)
         self.fc = min(FEATURE_CHUNK, self.n_features)      # travels with the kernel
 
