@@ -171,3 +171,24 @@ def test_the_z_floor_never_changes_a_cluster_null():
     slow = infer(Everywhere(Y.astype(np.float32), X, [1.0, -1.0], g), adj, spec)
     np.testing.assert_array_equal(fast.null.to_numpy(), slow.null.to_numpy())
     assert (fast.null["max_stat"] > 0).mean() > 0.5        # clusters were formed at all
+
+
+@pytest.mark.parametrize("sizes,sds,contrast", [
+    ([7, 12], [2.0, 1.0], [[0, 1.0, 0], [0, 0, 1.0]]),            # two groups, F (s = 2)
+    ([5, 6, 9], [1.0, 2.0, 0.5], [0, 1.0, 0, 0]),                # three groups, one row
+    ([5, 6, 9], [1.0, 2.0, 0.5], [[0, 1.0, 0, 0], [0, 0, 0, 1.0]])])   # three groups, F
+def test_every_path_of_the_compiled_statistic_matches_wls(sizes, sds, contrast):
+    """Two groups with several rows (:func:`_vg2_rows`), three groups (the general
+    tiles): statsmodels WLS (reference library), as in the covariate tests above."""
+    rng = np.random.default_rng(9)
+    g, Y = _groups(sizes, sds, seed=9)
+    age = rng.uniform(20, 60, g.size)
+    if len(sizes) == 2:
+        X = np.c_[np.ones(g.size), g, age]
+    else:
+        X = np.c_[np.ones(g.size), g == 1, g == 2, age].astype(float)
+    r = group_contrast(Y, X, contrast, g)
+    for j in range(Y.shape[1]):
+        v, nu, est, se = _wls_reference(Y[:, j], X, contrast, g)
+        np.testing.assert_allclose(r.statistic[j], v, rtol=1e-8)
+        np.testing.assert_allclose(r.nu[j], nu, rtol=1e-8)

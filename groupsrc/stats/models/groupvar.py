@@ -68,7 +68,7 @@ from scipy import special
 from . import glm
 from .base import FitInfo, Observed
 from .mixed.inference import hill_z, z_of_f, z_of_t
-from .ols import OLSKernel, _release, _residualise
+from .ols import OLSKernel, _release
 from ..engine.perthread import PerThread
 from ..resampling import sign_flips
 
