@@ -62,8 +62,8 @@ def test_run_records_and_writes_welch(tmp_path, capsys):
     assert rec["variance_groups"]["sizes"] == {"control": 8, "patient": 5}
     assert rec["scale"] == "z" and rec["degenerate_features"] == 0
     methods = (out / "methods.md").read_text()
-    assert "Welch's v" in methods and "8 control, 5 patient" in methods
-    assert "Welch BL (1951)" in methods
+    assert "Welch's v" in methods and "control (8) and patient (5)" in methods
+    assert "Welch BL (1947)" in methods
 
 
 def test_welch_at_a_source_without_covariates(tmp_path, capsys):
