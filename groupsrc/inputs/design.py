@@ -292,7 +292,12 @@ def _plan_contrast(spec, design: Design, problems: ProblemList, where) -> Contra
         w = weights_over(spec, cols, problems, where)
         if w is None:
             return None
-        kind, scheme = "t", ("sign-flip" if within else "permutation")
+        # a contrast that weighs the constant (the mean level, e.g. Intercept = 1) is not
+        # changed by permuting participants: it is tested by sign flips, like a mean
+        from .units import tests_level
+        kind = "t"
+        scheme = "sign-flip" if within or tests_level(design.X.to_numpy(), w, 1.0) \
+            else "permutation"
         desc = "raw weights " + ", ".join(f"{v:+g} {k}" for k, v in spec.weights.items())
     elif spec.compare:
         (fac, levels), = spec.compare.items()

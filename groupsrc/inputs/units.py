@@ -9,7 +9,10 @@ each is stored as::
     Y_k = (raw_k - offset) / scale          (float32)
 
 with ``offset`` the first decoded map itself (source by source and sample by sample)
-and ``scale`` the root mean square deviation of that map from its own mean (times a
+when its values ride on a level more than ``OFFSET_RATIO`` times their spread (a
+baseline), else 0 -- centring on a first map that is itself an outlier (one map saved in
+another unit, a billion billion times larger) would leave the others no digit -- and
+``scale`` the root mean square deviation of that map from its own mean (times a
 power of two when the stored values would otherwise be far from order one,
 :meth:`Standardizer.settle`).  Both
 follow the data: multiplying every map by ``c`` multiplies ``scale`` by ``c``, adding
@@ -37,6 +40,10 @@ import numpy as np
 LEVEL_ROWS = 2
 
 
+#: the first map's mean level over its spread above which maps are stored centred on it
+OFFSET_RATIO = 100.0
+
+
 class Standardizer:
     """Decoding-time centring and scaling: ``(raw - offset) / scale`` in float64, the
     offset and scale fixed by the first map it sees (module docstring)."""
@@ -50,8 +57,13 @@ class Standardizer:
         if self.offset is None:
             finite = np.isfinite(raw)
             # non-finite values are problems of their own map; never spread them
-            self.offset = np.where(finite, raw, 0.0)
-            self.scale = _spread(self.offset[finite]) if finite.any() else 1.0
+            first = np.where(finite, raw, 0.0)
+            self.scale = _spread(first[finite]) if finite.any() else 1.0
+            level = abs(float(first[finite].mean())) if finite.any() else 0.0
+            # centred only when the values ride on a level far above their spread (a
+            # baseline): centring on an outlying first map (one map in another unit)
+            # would wipe out every other map's digits
+            self.offset = first if level > OFFSET_RATIO * self.scale else np.zeros_like(first)
         return (raw - self.offset) / self.scale
 
     def settle(self, stored, n_maps, chunk=64) -> None:
