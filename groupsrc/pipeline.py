@@ -172,7 +172,8 @@ def _check_reduced_range(cohort, plans, settings, problems):
                          "sum to zero (such as 1 and -1)")
 
 
-def _check_attainable(settings, cohort, design, plans, problems, resamples=None):
+def _check_attainable(settings, cohort, design, plans, problems, resamples=None,
+                      participants_only=False):
     """A GLM contrast whose rearrangements cannot give a corrected p at or below alpha
     (too few participants, or too few resamples): refused, saying how far it falls
     short, instead of a run whose every p is above alpha."""
@@ -189,6 +190,8 @@ def _check_attainable(settings, cohort, design, plans, problems, resamples=None)
         p_min, count = smallest_p(plan, design, inf["resamples"], inf["tails"], blocks)
         if p_min > inf["alpha"]:
             short = ("more resamples" if inf["resamples"] < count else "more participants")
+            if participants_only and short == "more resamples":
+                continue      # said by the --resamples notice (options.py); the run goes on
             problems.add(f"{settings.path} contrast '{plan.name}'",
                          f"the smallest corrected p its {plan.scheme} rearrangements can give "
                          f"is {p_min:.3g} ({min(count, inf['resamples'])} distinct "
@@ -443,7 +446,7 @@ def _run_locked(settings, out, *, resamples, seed, workers, overwrite, progress,
     if resamples is not None:        # --resamples: the attainable p with that number
         problems = ProblemList()
         _check_attainable(settings, prep.cohort, prep.glm_design, prep.plans, problems,
-                          resamples)
+                          resamples, participants_only=True)
         if problems:
             raise InputError(problems)
     out = check_target(out, overwrite=overwrite, inputs=list(prep.cohort.inputs))
