@@ -334,6 +334,8 @@ def _print_mixed(prep):
     if s.get("glm_excluded"):
         print(f"  GLM contrasts: leave out {', '.join(s['glm_excluded'])} (no map of every "
               "condition; the mixed model uses their maps)")
+    for note in s.get("mixed_notes", []):
+        print(f"  note         : {note}")
 
 
 def cmd_demo(args, command) -> int:

@@ -23,7 +23,7 @@ from .inputs.cohort import Cohort, load_cohort, summary
 from .inputs.design import ID, Design, build_design, plan_contrast, reduction_matrix
 from .inputs.underlay import read_underlay
 from .inputs.mixed_design import (MixedModelDesign, build_mixed_design, incomplete_participants,
-                                  map_counts, plan_mixed_contrast)
+                                  map_counts, plan_mixed_contrast, rearrangement_checks)
 from .inputs.problems import InputError, ProblemList
 from .stats.results import AnalysisResult, ContrastResult
 from .inputs.settings import SURFACE_KEYS, Settings, check_neighbors, parse_settings
@@ -107,6 +107,13 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     if not problems:
         _check_reduced_range(cohort, plans, settings, problems)
         _check_attainable(settings, cohort, glm_design, plans, problems)
+    notes = []
+    if mixed is not None and not problems:
+        blocks = settings.inference.get("blocks")
+        notes = rearrangement_checks(
+            settings, mixed, plans, cohort.participants.loc[mixed.participants, blocks]
+            .astype(str).to_numpy() if blocks else None, problems,
+            lambda plan: f"{settings.path} contrast '{plan.name}'")
     if problems:
         raise InputError(problems)
     summ = summary(cohort, settings)
@@ -117,6 +124,8 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
         summ.update(map_counts(cohort.maps, design.participants, settings.model.get("within")))
         summ["mixed_columns"] = list(mixed.X.columns)
         summ["random_effects"] = list(mixed.z_names)
+        summ["random_slopes"] = list(mixed.slopes)
+        summ["mixed_notes"] = ([mixed.slopes_note] if mixed.slopes_note else []) + notes
         summ["glm_excluded"] = list(excluded)
     return Prepared(settings, cohort, design, plans, tindex, summ, mixed, glm_design, excluded,
                     underlay)
@@ -369,6 +378,7 @@ def _fit_mixed(prep, samples, timings, progress=None):
                "corr": {(prep.mixed.z_names[a], prep.mixed.z_names[b]): r.reshape(shape)
                         for (a, b), r in vc["corr"].items()},
                "columns": list(prep.mixed.X.columns), "random": list(prep.mixed.z_names),
+               "random_slopes": list(prep.mixed.slopes), "slopes_note": prep.mixed.slopes_note,
                "n_maps": int(Yf.shape[0]), "n_participants": len(prep.mixed.participants),
                "n_layouts": int(len(np.unique(prep.mixed.layout))),
                "design": prep.mixed.X, "maps": prep.cohort.maps}

@@ -10,6 +10,7 @@ import warnings
 
 import numpy as np
 
+from groupsrc.inputs.mixed_design import map_layout
 from groupsrc.stats.models.mixed.model import MixedDesign
 
 
@@ -20,13 +21,12 @@ def unbalanced_design(n_participants=16, seed=0, missing=(3,), max_sessions=3,
     X = [b (x) w, m] with b = [1, group indicators..., age], w = [1, condition]
     and, with ``map_covariate``, m = the session number (0, 1, ...)."""
     rng = np.random.default_rng(seed)
-    rows, B, layout_key = [], [], []
+    rows, B = [], []
     for i in range(n_participants):
         B.append([1.0] + [float(i % groups == j) for j in range(1, groups)]
                  + [rng.uniform(-1, 1)])
         ns = int(rng.integers(1, max_sessions + 1))
         conds = (0,) if i in missing else (0, 1)
-        layout_key.append((ns, conds))
         for s in range(ns):
             for c in conds:
                 rows.append((i, c, s))
@@ -39,8 +39,7 @@ def unbalanced_design(n_participants=16, seed=0, missing=(3,), max_sessions=3,
     if map_covariate:
         X = np.hstack([X, M])
     Z = np.c_[np.ones(len(g)), cond] if random_slope else np.ones((len(g), 1))
-    keys = {k: j for j, k in enumerate(dict.fromkeys(layout_key))}
-    layout = np.array([keys[k] for k in layout_key])
+    layout = map_layout(Z, g, n_participants)
     return MixedDesign(X, Z, g, between=B, within=W, map_cols=M, layout=layout)
 
 

@@ -34,7 +34,7 @@ import statsmodels.api as sm
 from groupsrc.stats.models import ols as kernels
 from groupsrc.stats.models.mixed import kernel as mixed_kernel
 from groupsrc.stats.models.ols import OLSKernel, StatisticKernel
-from groupsrc.stats.models.mixed.model import MixedCore, lambda_of
+from groupsrc.stats.models.mixed.model import MixedCore, psi_matrix
 from groupsrc.stats.models.mixed.fit import fit_features
 from groupsrc.stats.models.mixed.kernel import MixedKernel
 from groupsrc.stats.models.groupvar import GroupVarianceKernel
@@ -128,6 +128,20 @@ def mixed_between_permutations():
     return _mixed(design, np.array([0, 0, 1.0, 0.5, 0, 0, 0]), "permutation", 24)
 
 
+def mixed_between_continuous_map_covariate():
+    """Random intercept + a continuous map covariate (trials per map, every map its own
+    value) and a participant without condition 1: permutation blocks are the
+    participants with the same number of maps (the same covariance), not the same
+    covariate values, so the design's map rows move with the participants."""
+    d = unbalanced_design(12, seed=29, missing=(4,), max_sessions=2, map_covariate=True)
+    rng = np.random.default_rng(30)
+    X = np.asarray(d.X).copy()
+    X[:, -1] = rng.uniform(20, 60, X.shape[0])
+    design = type(d)(X, d.Z, d.groups, between=d.between, within=d.within,
+                     map_cols=X[:, -1:], layout=d.layout)
+    return _mixed(design, np.array([0, 0, 1.0, 0.5, 0, 0, 0]), "permutation", 31)
+
+
 def mixed_slopes_three_groups_f():
     """Random intercept + condition slope; three groups: F, permutations."""
     design = unbalanced_design(12, seed=26, missing=(), max_sessions=2, random_slope=True,
@@ -191,6 +205,8 @@ KERNELS = {"OLS one-sample": ols_one_sample,
            "OLS F, three groups + covariate (Freedman-Lane)": ols_three_groups_f_with_covariate,
            "mixed, within effect, sign flips": mixed_within_sign_flips,
            "mixed, between effect + map covariate, permutations": mixed_between_permutations,
+           "mixed, between effect, continuous map covariate, permutations":
+               mixed_between_continuous_map_covariate,
            "mixed, random slope, F, permutations": mixed_slopes_three_groups_f,
            "mixed, F over every fixed effect, sign flips": mixed_every_fixed_effect_f,
            "variance groups, Welch v": vg_two_groups,
@@ -220,8 +236,7 @@ class _MixedReference:
     def __init__(self, kernel, design, L):
         self.kernel, self.d, self.L = kernel, design, np.atleast_2d(L)
         core = kernel.core
-        Lam = lambda_of(kernel.null_fit().theta, core.q)
-        self.Psi = core.psi_raw(np.einsum("ijf,kjf->ikf", Lam, Lam))   # relative, raw Z
+        self.Psi = core.psi_raw(psi_matrix(kernel.null_fit().psi, core.q))  # relative, raw Z
 
     def _z(self, res, j):
         from scipy import stats
@@ -233,6 +248,17 @@ class _MixedReference:
         pad = np.zeros((self.L.shape[0], len(res.params) - self.L.shape[1]))
         Fv = float(np.squeeze(res.f_test(np.hstack([self.L, pad])).fvalue))
         return float(stats.norm.isf(stats.f.sf(Fv, self.L.shape[0], nu))), Fv
+
+    def _sorted_maps(self, i):
+        """Participant i's maps sorted by their random-effect, within and map-covariate
+        rows (then table order): equal covariance rows are matched when participants
+        trade places."""
+        d = self.d
+        idx = np.flatnonzero(np.asarray(d.groups) == i)
+        cols = [np.asarray(d.Z), np.asarray(d.within)] + (
+            [np.asarray(d.map_cols)] if d.map_cols is not None else [])
+        rows = np.round(np.hstack(cols)[idx], 10)
+        return idx[sorted(range(idx.size), key=lambda k: (tuple(rows[k]), idx[k]))]
 
     def _fixed(self, y, j):
         from statsmodels.regression.mixed_linear_model import MixedLM, MixedLMParams
@@ -303,9 +329,9 @@ class _MixedReference:
                 rz = half @ rw
             if flips:
                 ystar = ystar + row[g] * rz
-            else:                       # slot i takes participant row[i]'s maps, in order
+            else:                       # slot i takes participant row[i]'s maps, matched
                 for i in range(len(row)):
-                    ystar[g == i] += rz[g == row[i]]
+                    ystar[self._sorted_maps(i)] += rz[self._sorted_maps(row[i])]
             out.append(self._z(self._fixed(ystar, j), j)[0])
         return np.array(out)
 

@@ -4,6 +4,7 @@ traceback, inputs byte-identical; the project's rule for bad input)."""
 
 from __future__ import annotations
 
+import numpy as np
 import pandas as pd
 import pytest
 
@@ -173,3 +174,88 @@ def test_mixed_contrast_without_mixed_and_glm_slope_of_a_map_covariate(tmp_path,
         'model = "mixed"', 'model = "glm"').replace('slope = "age"', 'slope = "trials"'))
     assert_refused(analysis, capsys, ["slope: 'trials' is a map covariate",
                                       "remove model = \"glm\""], out=tmp_path / "out")
+
+
+# ----------------------------------------------------------------------------
+# random_slopes = "auto" (the default) and the rearrangements check decides
+# ----------------------------------------------------------------------------
+
+def test_auto_random_slope_where_sessions_repeat_a_condition(tmp_path, capsys):
+    """Two sessions of each condition: the condition effect's variance across participants
+    is identified, so the default model has a random condition slope (Barr et al. 2013,
+    J Mem Lang 68:255-278: the maximal structure the design justifies)."""
+    analysis = _unbalanced(tmp_path / "c")
+    _model(analysis, "mixed = true")
+    rc, text = run_check(analysis, capsys)
+    assert rc == 0, text
+    assert "  random       : Intercept, condition[T.rare] per participant" in text
+    assert "random slope of 'condition' (auto)" in text
+
+
+def test_no_auto_random_slope_with_one_map_per_condition(tmp_path, capsys):
+    analysis = make_cohort(tmp_path / "c")
+    _model(analysis, "mixed = true")
+    rc, text = run_check(analysis, capsys)
+    assert rc == 0, text
+    assert "  random       : Intercept per participant" in text
+    assert ("no random slope of 'condition' (auto): no participant has two maps of one "
+            "condition") in text
+    assert "random_slopes = []" in text                  # how to say it explicitly
+    # an explicit empty list is taken as it is, without the note
+    _model(analysis, "random_slopes = []")
+    rc, text = run_check(analysis, capsys)
+    assert rc == 0 and "(auto)" not in text, text
+
+
+def test_a_random_slopes_value_that_is_neither_auto_nor_a_list(tmp_path, capsys):
+    analysis = make_cohort(tmp_path / "c")
+    _model(analysis, 'mixed = true\nrandom_slopes = "yes"')
+    assert_refused(analysis, capsys, ["[model] random_slopes", "must be \"auto\" or a list"],
+                   out=tmp_path / "out")
+
+
+def test_a_cohort_too_small_to_reach_alpha_is_refused(tmp_path, capsys):
+    """2 vs 2 participants: 2^4 = 16 whole-participant sign flips at most, so no corrected
+    p can fall below 1/16 > 0.05 (common practice: the smallest permutation p is one over
+    the number of distinct rearrangements)."""
+    analysis = make_cohort(tmp_path / "c", n_per_group=2, sessions=["1", "2"])
+    _model(analysis, "mixed = true")
+    assert_refused(analysis, capsys, ["contrast 'rare_minus_frequent'", "16 distinct",
+                                      "0.0625", "above alpha = 0.05", "could never reject",
+                                      "contrast 'group_by_tone'"], out=tmp_path / "out")
+    # FDR needs no rearrangement
+    analysis.write_text(analysis.read_text().replace('correction = "cluster-mass"',
+                                                     'correction = "fdr"'))
+    rc, text = run_check(analysis, capsys)
+    assert rc == 0, text
+
+
+def test_check_says_when_sign_flips_replace_permutations(tmp_path, capsys):
+    """sub-03 lacks 'frequent' and sub-05 a session: with the random slope their maps
+    have other covariances than the rest, and the six others hold 3 + 3 of the groups:
+    C(6, 3) = 20 group relabellings, fewer than the 50 resamples asked for."""
+    analysis = _unbalanced(tmp_path / "c")
+    _model(analysis, "mixed = true")
+    rc, text = run_check(analysis, capsys)
+    assert rc == 0, text
+    assert ("note         : contrast 'group_by_tone': only 20 distinct relabelling(s) of the "
+            "tested columns") in text
+    assert "whole-participant sign flips are used" in text
+
+
+def test_a_continuous_map_covariate_does_not_split_the_permutation_blocks(tmp_path):
+    """Blocks are participants whose maps have the same random-effect rows: trials per map
+    (every map its own value) leave them as they are."""
+    from groupsrc.inputs.settings import parse_settings
+    from groupsrc.pipeline import prepare
+    analysis = _unbalanced(tmp_path / "c")
+    _model(analysis, "mixed = true\nrandom_slopes = []")
+    plain = prepare(parse_settings(analysis)).mixed.layout
+    _maps_column(tmp_path / "c", "trials", lambda m: [str(20 + 3 * i) for i in range(len(m))])
+    _model(analysis, 'map_covariates = ["trials"]')
+    with_trials = prepare(parse_settings(analysis)).mixed.layout
+    maps = pd.read_csv(tmp_path / "c" / "maps.tsv", sep="\t")             # pandas
+    sizes = maps.participant_id.value_counts().sort_index().to_numpy()
+    # intercept only: the blocks are the participants' numbers of maps
+    assert len(np.unique(with_trials)) == len(np.unique(sizes)) == len(np.unique(plain))
+    np.testing.assert_array_equal(with_trials, plain)

@@ -21,16 +21,14 @@ import pytest
 
 from groupsrc.stats.models.mixed import fit as mixed_fit
 from groupsrc.stats.models.mixed import inference as mf
-from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign, lower_index
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign, psi_entries
 
 from _mixed_data import simulate, statsmodels_reml, unbalanced_design
 
 
-def _theta_of(core, cov_re_relative):
-    """Our theta for a relative covariance Psi given in the coding of Z."""
-    Ps = core.R @ cov_re_relative @ core.R.T
-    Lam = np.linalg.cholesky(Ps)
-    return np.array([Lam[a, b] for a, b in lower_index(core.q)])[:, None]
+def _psi_of(core, cov_re_relative):
+    """Our psi for a relative covariance Psi given in the coding of Z."""
+    return psi_entries((core.R @ cov_re_relative @ core.R.T)[:, :, None])
 
 
 @pytest.mark.parametrize("slope", [False, True])
@@ -41,28 +39,36 @@ def test_criterion_equals_statsmodels_loglikelihood(slope, reml):
     y = simulate(design, 1, seed=3)[:, 0].astype(float)
     ref, _ = statsmodels_reml(y, design, reml=reml)
     core = MixedCore(design)
-    theta = _theta_of(core, np.asarray(ref.cov_re) / ref.scale)
-    ev = core.evaluate(theta, core.stats(y[:, None]), reml=reml)
+    psi = _psi_of(core, np.asarray(ref.cov_re) / ref.scale)
+    ev = core.evaluate(psi, core.stats(y[:, None]), reml=reml)
     np.testing.assert_allclose(ev.dev[0], -2 * ref.llf, rtol=1e-9)
     np.testing.assert_allclose(ev.beta[:, 0], ref.fe_params, rtol=1e-7, atol=1e-9)
     np.testing.assert_allclose(ev.r2[0] / core.m(reml), ref.scale, rtol=1e-7)
 
 
+@pytest.mark.parametrize("reml", [True, False])
 @pytest.mark.parametrize("slope", [False, True])
-def test_gradient_and_hessian_match_finite_differences(slope):
-    """Central differences of the criterion (common practice; h = 1e-5)."""
+def test_gradient_and_hessian_match_finite_differences(slope, reml):
+    """Central differences of the criterion (common practice; h = 1e-5), at positive
+    definite and at indefinite (but admissible) Psi."""
     design = unbalanced_design(10, seed=4, random_slope=slope)
     core = MixedCore(design)
-    st = core.stats(simulate(design, 3, seed=5).astype(float))
+    st = core.stats(simulate(design, 4, seed=5).astype(float))
     rng = np.random.default_rng(0)
-    theta = np.abs(rng.normal(1.0, 0.3, (core.npar, 3)))
-    ev = core.evaluate(theta, st, order=2)
+    q = core.q
+    A = rng.normal(0.0, 0.6, (q, q, 4))
+    Psi = np.einsum("ikf,jkf->ijf", A, A) + 0.2 * np.eye(q)[:, :, None]
+    Psi[:, :, 2:] = 0.1 * Psi[:, :, 2:] - 0.04 * np.eye(q)[:, :, None]   # indefinite
+    theta = psi_entries(Psi)
+    ev = core.evaluate(theta, st, reml=reml, order=2)
+    assert ev.ok.all()
+    assert np.linalg.eigvalsh(np.moveaxis(Psi, 2, 0))[2:, 0].max() < 0
     h = 1e-5
     for k in range(core.npar):
         up, dn = theta.copy(), theta.copy()
         up[k] += h
         dn[k] -= h
-        eu, ed = core.evaluate(up, st, order=1), core.evaluate(dn, st, order=1)
+        eu, ed = core.evaluate(up, st, reml, order=1), core.evaluate(dn, st, reml, order=1)
         np.testing.assert_allclose(ev.grad[k], (eu.dev - ed.dev) / (2 * h), rtol=1e-5, atol=1e-6)
         np.testing.assert_allclose(ev.hess[k], (eu.grad - ed.grad) / (2 * h), rtol=1e-5,
                                    atol=1e-5)
@@ -78,7 +84,7 @@ def _ours(design, Y, reml=True):
         L[j] = 1.0
         ses.append(mf.contrast_statistics(fit, Y, L).se)
     st = core.stats(Y.astype(float))
-    beta = core.evaluate(fit.theta, st, reml).beta
+    beta = core.evaluate(fit.psi, st, reml).beta
     return fit, vc, beta, np.array(ses)
 
 
@@ -105,20 +111,49 @@ def test_fit_matches_statsmodels_on_an_unbalanced_cohort(slope):
     assert checked >= 5, f"only {checked} interior fits to compare"
 
 
-def test_boundary_fit_is_kept_and_counted():
-    """No participant variance: lme4 keeps the singular fit (variance 0), whose fixed
-    effects are the least-squares ones (statsmodels OLS); the fit code says so."""
+def test_boundary_fits_are_counted_and_at_least_as_good_as_a_non_negative_fit():
+    """No participant variance: about half of the features estimate it below zero.
+    They are counted (code 1) and kept unconstrained: their criterion is no worse than
+    statsmodels MixedLM's (whose variance cannot go below zero, so it sits at zero
+    there, where its fixed effects are the least-squares ones, statsmodels OLS), and
+    strictly better where our estimate is negative."""
     import statsmodels.api as sm
     design = unbalanced_design(14, seed=8)
     rng = np.random.default_rng(9)
-    Y = rng.standard_normal((design.X.shape[0], 40)).astype(np.float32)
+    Y = rng.standard_normal((design.X.shape[0], 24)).astype(np.float32)
     fit, vc, beta, ses = _ours(design, Y)
-    at_zero = np.flatnonzero(fit.code == 1)
-    assert at_zero.size > 0 and fit.counts()["boundary (singular covariance)"] == at_zero.size
-    for j in at_zero[:5]:
-        ols = sm.OLS(Y[:, j].astype(float), design.X).fit()
-        np.testing.assert_allclose(beta[:, j], ols.params, rtol=1e-5, atol=1e-6)
-        assert vc["sd"][0, j] < 1e-3 * vc["sd_residual"][j]
+    below = np.flatnonzero(fit.code == 1)
+    assert below.size >= 6 and fit.counts()[mixed_fit.CODES[1]] == below.size
+    assert np.all(fit.psi[0, below] < mixed_fit.BOUNDARY_TOL)
+    for j in below[:6]:
+        ref, _ = statsmodels_reml(Y[:, j].astype(float), design)
+        assert fit.dev[j] <= -2 * ref.llf + 1e-6
+        if fit.psi[0, j] < -1e-3 and float(np.asarray(ref.cov_re)[0, 0]) < 1e-6 * ref.scale:
+            assert fit.dev[j] < -2 * ref.llf - 1e-6
+            ols = sm.OLS(Y[:, j].astype(float), design.X).fit()
+            np.testing.assert_allclose(ref.fe_params, ols.params, rtol=1e-4, atol=1e-5)
+        assert vc["sd"][0, j] == 0.0                  # no SD for a variance below zero
+
+
+def test_balanced_one_way_estimates_are_the_anova_estimates():
+    """Balanced one-way random-effects layout (N participants x k maps): the REML
+    estimates are the analysis-of-variance ones, sigma^2 = MSW and the participant
+    variance (MSB - MSW) / k, negative where MSB < MSW (Searle, Casella & McCulloch
+    1992, Variance Components, ch. 3-4; from memory) -- for every feature."""
+    rng = np.random.default_rng(14)
+    N, k, F = 9, 4, 60
+    g = np.repeat(np.arange(N), k)
+    Y = (0.4 * rng.standard_normal((N, F)))[g] + rng.standard_normal((N * k, F))
+    design = MixedDesign(np.ones((N * k, 1)), np.ones((N * k, 1)), g)
+    fit, vc, _, _ = _ours(design, Y)
+    assert np.all(fit.code <= 1) and np.any(fit.code == 1)
+    means = np.stack([Y[g == i].mean(axis=0) for i in range(N)])
+    msw = ((Y - means[g]) ** 2).sum(axis=0) / (N * (k - 1))
+    msb = k * ((means - means.mean(axis=0)) ** 2).sum(axis=0) / (N - 1)
+    np.testing.assert_allclose(vc["sd_residual"] ** 2, msw, rtol=1e-7)
+    var_b = fit.psi[0] * vc["sd_residual"] ** 2          # Z is all ones: no rescaling
+    np.testing.assert_allclose(var_b, (msb - msw) / k, rtol=1e-6, atol=1e-9)
+    np.testing.assert_array_equal(fit.code == 1, msb < msw)
 
 
 def test_constant_feature_has_its_own_code():

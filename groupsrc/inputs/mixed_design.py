@@ -44,7 +44,10 @@ class MixedModelDesign:
     map_cols: np.ndarray | None      # maps x map covariates
     map_names: list
     conditions: list
-    layout: np.ndarray               # a label per participant: equal map layouts share it
+    layout: np.ndarray               # a label per participant: equal covariance structures
+    #: the random slopes used (``random_slopes = "auto"`` resolved) and, for auto, why
+    slopes: list = None
+    slopes_note: str = ""
 
     def stats_design(self):
         from ..stats.models.mixed.model import MixedDesign
@@ -68,16 +71,56 @@ def within_coding(values, conditions, column):
     return np.column_stack(W), names
 
 
-def map_layout(W, M, Z, groups, n):
-    """A label per participant: participants whose sorted map rows (within,
-    covariates, random effects) are identical share a label."""
-    rows = np.hstack([W] + ([M] if M is not None else []) + [Z])
+def map_layout(Z, groups, n):
+    """A label per participant: participants with the same multiset of random-effect rows
+    share a label -- their maps have the same covariance ``I + Z_i Psi Z_i'`` (up to the
+    order of the maps), whatever their map covariates."""
     keys = []
     for i in range(n):
-        r = np.round(rows[groups == i], 10)
+        r = np.round(np.asarray(Z, float)[groups == i], 10)
         keys.append(tuple(map(tuple, r[np.lexsort(r.T[::-1])])))
     labels = {k: j for j, k in enumerate(dict.fromkeys(keys))}
     return np.array([labels[k] for k in keys])
+
+
+def auto_slope(W, groups, N, column) -> tuple:
+    """``random_slopes = "auto"``: (use a random slope of the within column?, why).
+
+    A participant's condition effect can vary by participant only where its variance
+    can be told apart from the residual variance: some participants must have repeated
+    maps of a condition (sessions).  Used when (1) the within column has at most
+    ``MAX_RANDOM`` levels (one random-effect column each, the intercept included);
+    (2) more participants have maps of every condition than the random-effect covariance
+    has parameters; (3) the maps beyond one per participant and condition (the residual
+    degrees of freedom once every participant's own condition means are fitted) are at
+    least as many as those parameters (Barr et al. 2013, J Mem Lang 68:255-278: the
+    maximal random-effects structure the design justifies)."""
+    from ..stats.models.mixed.model import MAX_RANDOM
+    q = W.shape[1]
+    if q < 2:
+        return False, ""
+    npar = q * (q + 1) // 2
+    if q > MAX_RANDOM:
+        return False, (f"no random slope of '{column}': its {q} conditions would need {q} "
+                       f"random effects per participant, at most {MAX_RANDOM} are supported "
+                       "(the tests of the condition effect rest on the whole-participant "
+                       "sign flips)")
+    ranks = np.array([np.linalg.matrix_rank(W[groups == i]) for i in range(N)])
+    full = int(np.sum(ranks == q))
+    repeated = int(len(groups) - ranks.sum())
+    if full > npar and repeated >= npar:
+        return True, (f"random slope of '{column}' (auto): {repeated} maps repeat a "
+                      f"participant's condition, so the condition effect's variance across "
+                      "participants is told apart from the residual variance")
+    why = ("no participant has two maps of one condition" if repeated == 0 else
+           f"only {repeated} map(s) repeat a participant's condition" if repeated < npar else
+           f"only {full} participant(s) have maps of every condition")
+    return False, (f"no random slope of '{column}' (auto): {why}, so a participant's own "
+                   f"condition effect cannot be told apart from the residual (needs at least "
+                   f"{npar} repeated maps and {npar + 1} participants with every condition); "
+                   "with one map per condition the random-intercept model gives the classical "
+                   "repeated-measures tests; write random_slopes = [] to choose this "
+                   "explicitly")
 
 
 def build_mixed_design(settings, design: Design, maps: pd.DataFrame, problems: ProblemList,
@@ -85,8 +128,10 @@ def build_mixed_design(settings, design: Design, maps: pd.DataFrame, problems: P
     """The map-level design of ``mixed = true``; None with problems added."""
     within_col = settings.model.get("within")
     covs = list(settings.model.get("map_covariates") or [])
-    slopes = [t for t in settings.model.get("random_slopes") or []   # unknown: reported
-              if t == within_col or t in covs]
+    chosen = settings.model.get("random_slopes", "auto")
+    auto = chosen == "auto"
+    slopes = [] if auto else [t for t in chosen or []          # unknown: reported
+                              if t == within_col or t in covs]
     index = {p: i for i, p in enumerate(design.participants)}
     pids = maps[ID].astype(str).to_numpy()
     groups = np.array([index.get(p, -1) for p in pids])
@@ -102,6 +147,10 @@ def build_mixed_design(settings, design: Design, maps: pd.DataFrame, problems: P
     names = [_crossed_name(b, w) for b in design.X.columns for w in wnames]
     if covs:
         X, names = np.hstack([X, M]), names + covs
+    note = ""
+    if auto and within_col:
+        use, note = auto_slope(W, groups, N, within_col)
+        slopes = [within_col] if use else []
     Z, znames = [np.ones(n)], ["Intercept"]
     for term in slopes:
         if term == within_col:
@@ -120,7 +169,8 @@ def build_mixed_design(settings, design: Design, maps: pd.DataFrame, problems: P
         X=pd.DataFrame(X, columns=names, index=[design.participants[g] for g in groups]),
         Z=Z, z_names=znames, groups=groups, participants=list(design.participants),
         between=B, within=W, within_names=wnames, map_cols=M, map_names=covs,
-        conditions=conditions, layout=map_layout(W, M, Z, groups, N))
+        conditions=conditions, layout=map_layout(Z, groups, N), slopes=list(slopes),
+        slopes_note=note)
 
 
 def _check_mixed(settings, X, names, Z, znames, slopes, within_col, covs, W, M, groups, N,
@@ -262,3 +312,32 @@ def map_counts(maps: pd.DataFrame, participants: list, within_col) -> dict:
                  if c not in have.get(p, set())]
     return {"maps_per_participant": per,
             "single_map": [p for p, k in per.items() if k == 1], "empty_cells": empty}
+
+
+def rearrangement_checks(settings, mdesign: MixedModelDesign, plans, blocks, problems,
+                         where_of) -> list:
+    """What the mixed contrasts' rearrangements will be (:mod:`..stats.models.mixed.exchange`),
+    decided from the design alone: a contrast whose distinct rearrangements cannot reach a
+    corrected p of alpha is a problem; notes say where sign flips replace permutations."""
+    from ..stats.models.mixed.exchange import plan as exchange_plan
+    inf = settings.inference
+    notes = []
+    if inf.get("correction") in ("fdr", "none"):
+        return notes
+    alpha = float(inf.get("alpha", 0.05))
+    design = mdesign.stats_design()
+    for plan in plans:
+        if plan.model != "mixed":
+            continue
+        ex = exchange_plan(design, plan.weights, plan.scheme, int(inf.get("resamples", 1000)),
+                           blocks)
+        if ex.p_min > alpha:
+            problems.add(where_of(plan), f"its {ex.distinct} distinct rearrangements "
+                         f"({ex.scheme.replace('-', ' ')}s of whole participants) can give a "
+                         f"corrected p of {ex.p_min:.3g} at the smallest, above alpha = {alpha:g}:"
+                         " it could never reject",
+                         "add participants (or, for a between contrast, participants of the "
+                         "smaller group), or use correction = \"fdr\" for parametric p-values")
+        elif ex.fallback:
+            notes.append(f"contrast '{plan.name}': {ex.fallback}")
+    return notes

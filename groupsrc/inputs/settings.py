@@ -63,6 +63,12 @@ def _names(v) -> bool:
 
 #: how the mixed model's variance components are estimated
 ESTIMATIONS = ("reml", "ml")
+#: random_slopes = "auto": a slope of the within column where the maps identify it
+AUTO = "auto"
+
+
+def _slopes(v) -> bool:
+    return v == AUTO if isinstance(v, str) else _names(v)
 #: the model a contrast is tested with
 MODELS = ("glm", "mixed")
 
@@ -164,10 +170,12 @@ SCHEMA = {
         "map_covariates": Key(list, [], "mixed model: numeric maps-table columns as map-level "
                               "fixed effects", _names, "must be a list of distinct column names",
                               'e.g. map_covariates = ["trials"]'),
-        "random_slopes": Key(list, [], "mixed model: within terms (the within column or map "
-                             "covariates) whose effect varies by participant", _names,
-                             "must be a list of distinct names",
-                             'e.g. random_slopes = ["condition"]'),
+        "random_slopes": Key((list, str), AUTO, "mixed model: within terms (the within column "
+                             "or map covariates) whose effect varies by participant; \"auto\" "
+                             "(default): the within column when the maps identify its "
+                             "variance (repeated maps of a condition), else none",
+                             _slopes, "must be \"auto\" or a list of distinct names",
+                             'e.g. random_slopes = ["condition"], or [] for none'),
         "estimation": Key(str, "reml", "mixed model: " + " | ".join(ESTIMATIONS),
                           choices=ESTIMATIONS),
     },
@@ -267,8 +275,10 @@ class Settings:
 
 
 def _type_name(t):
-    if isinstance(t, tuple):
+    if t == NUMBER:
         return "number"
+    if isinstance(t, tuple):
+        return " or ".join(_type_name(x) for x in t)
     return {str: "text", int: "integer", bool: "true/false", dict: "table",
             list: "list"}.get(t, t.__name__)
 
@@ -521,8 +531,10 @@ def _check_name(name, cwhere, names, problems):
 def _check_mixed_keys(model, where, problems):
     """The mixed model's keys: what needs ``mixed = true``, and what a slope may name."""
     covs = [x.strip() for x in model.get("map_covariates") or []]
-    slopes = [x.strip() for x in model.get("random_slopes") or []]
-    model["map_covariates"], model["random_slopes"] = covs, slopes
+    chosen = model.get("random_slopes", AUTO)
+    slopes = [] if chosen == AUTO else [x.strip() for x in chosen or []]
+    model["map_covariates"] = covs
+    model["random_slopes"] = AUTO if chosen == AUTO else slopes
     if not model.get("mixed"):
         why = ("the summary-statistic GLM averages each participant's maps of a condition "
                "into one before the model, so ")

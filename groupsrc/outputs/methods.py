@@ -323,7 +323,10 @@ def _mixed_text(summary, mixed, cite) -> str:
     mm = summary.get("mixed_model") or {}
     model = summary.get("settings", {}).get("model", {})
     covs = model.get("map_covariates") or []
-    slopes = model.get("random_slopes") or []
+    slopes = mm.get("random_slopes")               # as used ("auto" resolved)
+    if slopes is None:
+        slopes = model.get("random_slopes") if isinstance(model.get("random_slopes"), list) \
+            else []
     n = mm.get("n_features") or 0
     counts = mm.get("counts", {})
 
@@ -357,9 +360,13 @@ def _mixed_text(summary, mixed, cite) -> str:
         extra = [t.format(n=c[k]) for k, t in COUNT_TEXT.items() if c.get(k)]
         text += (f" {c['name']} tested {tested} ({c['kind']}{rng}"
                  + "".join(f"; {e}" for e in extra) + ").")
-    text += (f" Of the {n} fits, {share('converged')} converged inside the parameter space, "
-             f"{share('boundary (singular covariance)')} on its boundary (a variance "
-             "estimated as zero or a correlation of +-1; kept, as lme4 keeps them, with the "
-             f"estimates of that fit), {share('iteration limit')} stopped at the iteration "
-             f"limit and {share('no residual variance')} had no residual variance.")
+    text += (f" Of the {n} fits, {share('converged')} converged with a positive definite "
+             "participant covariance, "
+             f"{share('boundary (covariance not positive definite)')} with one that is not (a "
+             "variance estimated at or below zero: the variance components were not "
+             "constrained to be non-negative, so that a variance near zero or a negative "
+             "within-participant correlation does not change the error term, and balanced "
+             f"designs give the classical tests), {share('not converged')} did not converge "
+             f"from any of three starting values and {share('no residual variance')} had no "
+             "residual variance.")
     return text

@@ -9,9 +9,11 @@ sample:
                           slope column, ``sd_<column>`` (input units per unit of it)
 * ``corr_<a>__<b>``       correlation of two random effects (random slopes only)
 * ``icc``                 share of a map's variance between participants at the
-                          average map (0..1)
-* ``fit_code``            0 converged, 1 boundary (singular covariance), 2 iteration
-                          limit, 3 no residual variance
+                          average map (below 0 where the participant variance is
+                          estimated below zero: a negative within-participant correlation)
+* ``fit_code``            0 converged, 1 boundary (the participant covariance estimate
+                          not positive definite: a variance at or below zero), 2 not
+                          converged, 3 no residual variance
 * ``summary.json``        the model, the counts of every fit code, medians
 * ``design.tsv``          the fixed-effects design, one row per map
 
@@ -27,12 +29,11 @@ import numpy as np
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 
+from ..stats.models.mixed.fit import CODES as CODE_TEXT
 from .figures import amplitude_label, legend_below, new_figure, save
 from .files import write_json, write_tsv
 from .layout import FIGURES, MODEL_DIR, MODEL_SUMMARY, read_json
 
-CODE_TEXT = {0: "converged", 1: "boundary (singular covariance)", 2: "iteration limit",
-             3: "no residual variance"}
 
 
 def _stem(name: str) -> str:
@@ -46,7 +47,7 @@ def model_maps(model: dict) -> list:
         out.append((f"sd_{_stem(name)}", v, f"SD of the random {name}", False))
     for (a, b), v in model["corr"].items():
         out.append((f"corr_{_stem(a)}__{_stem(b)}", v, f"correlation {a} / {b}", True))
-    out.append(("icc", model["icc"], "intraclass corr", False))
+    out.append(("icc", model["icc"], "intraclass corr", True))   # below 0 where Psi is
     out.append(("fit_code", model["code"].astype(np.float32), "fit code", False))
     return out
 
@@ -74,7 +75,7 @@ def write_model(analysis, maps, folder: Path) -> None:
         "method": model["method"], "columns": model["columns"], "random": model["random"],
         "n_maps": model["n_maps"], "n_participants": model["n_participants"],
         "n_layouts": model["n_layouts"], "map_covariates": settings.get("map_covariates", []),
-        "random_slopes": settings.get("random_slopes", []),
+        "random_slopes": model.get("random_slopes", settings.get("random_slopes", [])),
         "counts": {CODE_TEXT[k]: int(np.sum(codes == k)) for k in CODE_TEXT},
         "n_features": int(codes.size),
         "median": {stem: float(np.median(np.asarray(v, float)[codes != 3]))
@@ -128,7 +129,7 @@ def model_figure(results: Path, maps, times, base: Path, unit=None) -> list:
         ax.set_xlabel("time (ms)")
         ax.set_ylabel(label)
         if j == 0:
-            ax.set_ylim(0, 1)
+            ax.set_ylim(min(0.0, float(np.nanmin(lo))) if np.isfinite(lo).any() else 0.0, 1)
     ax = fig.add_subplot(1, 3, 3)
     ax.plot(times, 100 * (code == 1).mean(axis=0), color="#D55E00", lw=1.3)
     ax.plot(times, 100 * (code >= 2).mean(axis=0), color="#000000", ls="--", lw=1.0)
@@ -138,7 +139,7 @@ def model_figure(results: Path, maps, times, base: Path, unit=None) -> list:
                Line2D([], [], color="#D55E00", lw=1.3),
                Line2D([], [], color="#000000", ls="--", lw=1.0)]
     legend_below(fig, handles, ["10-90% of sources", "median over sources",
-                                "boundary (singular) fits", "not converged / no variance"],
+                                "boundary fits", "not converged / no variance"],
                  ncol=2)
     fig.suptitle("Mixed model fit at every source and sample", fontsize=8.5)
     return save(fig, base)
@@ -155,5 +156,6 @@ def model_figures(results: Path, maps, summary, times) -> list:
                  unit=(summary.get("settings", {}).get("cohort") or {}).get("unit"))
     return [("Mixed model at every source: median (line) and 10-90% range (band) over sources "
              "of the intraclass correlation and of the residual SD at each sample, and the "
-             "share of fits on the boundary (a zero variance or a correlation of +-1, kept as "
-             "lme4 keeps them) or not converged.", base.with_suffix(".png"))]
+             "share of boundary fits (a participant variance estimated at or below zero, or with "
+             "random slopes a variance of zero or a correlation of +-1) or not converged.",
+             base.with_suffix(".png"))]

@@ -95,7 +95,8 @@ def _model_brief(model) -> dict | None:
         return None
     return {"method": model["method"], "counts": model["counts"],
             "n_features": int(np.asarray(model["code"]).size), "columns": model["columns"],
-            "random": model["random"], "n_maps": model["n_maps"],
+            "random": model["random"], "random_slopes": model.get("random_slopes"),
+            "n_maps": model["n_maps"],
             "n_participants": model["n_participants"], "n_layouts": model["n_layouts"]}
 
 

@@ -120,7 +120,7 @@ def bench_resample(X, W, B, g, cond, Y, resamples, repeats):
     adj = grid.adjacency("face")
     Z = np.ones((len(g), 1))
     core = MixedCore(MixedDesign(X, Z, g, between=B, within=W,
-                                 layout=map_layout(W, None, Z, g, B.shape[0])))
+                                 layout=map_layout(Z, g, B.shape[0])))
     fit = fit_features(core, Yf)
     N = B.shape[0]
     Wr = np.zeros((N, len(g)))

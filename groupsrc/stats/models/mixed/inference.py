@@ -7,9 +7,13 @@ Wald F (k rows).  Denominator degrees of freedom by Satterthwaite (1946,
 Biometrics Bulletin 2:110-114) as lmerTest computes them (Kuznetsova et al.
 2017, J Stat Softw 82(13)): ``nu = 2 Phi^2 / (gamma' A gamma)`` with ``Phi``
 the contrast variance, ``gamma`` its gradient in the variance parameters
-``(theta, sigma^2)`` and ``A = 2 H^{-1}`` from the Hessian ``H`` of the
-(non-profiled) -2 log-likelihood; on the boundary the directions in which
-``Psi`` does not move drop out (pseudo-inverse), as in lmerTest.  For F, the
+``(psi, sigma^2)`` and ``A = 2 H^{-1}`` from the Hessian ``H`` of the
+(non-profiled) -2 log-likelihood, at the unconstrained estimates of
+:mod:`.model` (so the df move smoothly through a participant variance of
+zero: where it is estimated below zero, the df stay near those of the
+participant stratum instead of jumping to the residual df ``n - p`` of a fit
+held at zero); where the Hessian is singular (a direction the data do not
+inform), that direction drops out (pseudo-inverse).  For F, the
 method of Fai & Cornelius (1996, J Stat Comput Simul 54:363-378) as lmerTest
 applies it: one Satterthwaite df per eigen-direction ``nu_j`` of ``L C L'``,
 ``E = sum_{nu_j > 2} nu_j / (nu_j - 2)``, ``nu = 2 E / (E - k)`` (the
@@ -49,10 +53,9 @@ def variance_components(fit: MixedFit, Y, chunk=FIT_CHUNK) -> dict:
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
         st = core.stats(Y[:, a:b])
-        ev = core.evaluate(fit.theta[:, a:b], st, fit.reml, order=0)
+        ev = core.evaluate(fit.psi[:, a:b], st, fit.reml, order=0)
         s2 = np.maximum(ev.r2, 0.0) / core.m(fit.reml)
-        Lam = ev.Lam
-        D = core.psi_raw(la.mm(Lam, la.T(Lam))) * s2
+        D = core.psi_raw(ev.Psi) * s2
         out["sd_residual"][a:b] = np.sqrt(s2)
         for j in range(q):
             out["sd"][j, a:b] = np.sqrt(np.maximum(D[j, j], 0.0))
@@ -155,7 +158,7 @@ class ContrastStats:
 
 
 def _full_hessian(ev, core, reml):
-    """-2 log-lik Hessian in (theta, sigma^2), non-profiled, at sigma^2 = r2 / m."""
+    """-2 log-lik Hessian in (psi, sigma^2), non-profiled, at sigma^2 = r2 / m."""
     m = core.m(reml)
     r2 = np.where(ev.ok, ev.r2, 1.0)
     s2 = r2 / m
@@ -183,7 +186,7 @@ def _satterthwaite(H, gamma, phi):
 
 
 def _gamma(ev, s2, l):
-    """Gradient of s2 l' C l in (theta, sigma^2) for rows l (p, F) -> (npar + 1, F)."""
+    """Gradient of s2 l' C l in (psi, sigma^2) for rows l (p, F) -> (npar + 1, F)."""
     C = ev.parts["C"]
     Cl = la.mv(C, l)
     rows = [s2 * (Cl * la.mv(O, Cl)).sum(axis=0) for O in ev.parts["Om"]]
@@ -220,10 +223,10 @@ def _z(stat, nu, k):
     return scored_z(stat, nu, t_switch(nu)) if k == 1 else z_of_f(stat, k, nu)
 
 
-def contrast_block(core, theta, Y, Lmat, reml, tails, zbar):
+def contrast_block(core, psi, Y, Lmat, reml, tails, zbar):
     """Observed inference of contrast rows ``Lmat`` (k, p) on the features ``Y`` (n, F)."""
     st = core.stats(Y)
-    ev = core.evaluate(theta, st, reml, order=2)
+    ev = core.evaluate(psi, st, reml, order=2)
     H, s2 = _full_hessian(ev, core, reml)
     k, F = Lmat.shape[0], st.n_features
     est, se, stat, nu = _test(ev, Lmat, s2, H)
@@ -232,8 +235,7 @@ def contrast_block(core, theta, Y, Lmat, reml, tails, zbar):
         nan = np.full(F, np.nan)
         return nan, nan, stat, nu, z, special.fdtrc(k, nu, np.maximum(stat, 0.0)), \
             stat * k / (stat * k + nu)
-    Lam = ev.Lam
-    psi_bar = np.einsum("i,ijf,j->f", zbar, core.psi_raw(la.mm(Lam, la.T(Lam))), zbar)
+    psi_bar = np.einsum("i,ijf,j->f", zbar, core.psi_raw(ev.Psi), zbar)
     total_sd = np.sqrt(s2 * (1.0 + psi_bar))
     if tails == "two":
         p = np.minimum(1.0, 2.0 * special.stdtr(nu, -np.abs(stat)))
@@ -244,19 +246,19 @@ def contrast_block(core, theta, Y, Lmat, reml, tails, zbar):
     return est, se, stat, nu, z, p, est / np.where(total_sd > 0, total_sd, np.inf)
 
 
-def score_block(core, core0, theta0, Y, Lmat, reml):
+def score_block(core, core0, psi0, Y, Lmat, reml):
     """The permutation score of a contrast: its t (or F) with the variance components
-    ``theta0`` of the null model (``core0``: the model restricted to L b = 0), as z
+    ``psi0`` of the null model (``core0``: the model restricted to L b = 0), as z
     through the Satterthwaite df that the null model's information gives.
 
-    The df are computed wholly at the null model's estimates (``theta0`` and its
-    residual variance ``s0^2``): they do not depend on the scale, only on ``theta0``
+    The df are computed wholly at the null model's estimates (``psi0`` and its
+    residual variance ``s0^2``): they do not depend on the scale, only on ``psi0``
     and the design, so a large effect (which inflates ``s0^2``) does not shrink
     them.  The t itself is studentized by the full model's residual variance at
-    ``theta0``, as every resample is."""
+    ``psi0``, as every resample is."""
     st = core.stats(Y)
-    ev = core.evaluate(theta0, st, reml, order=2)
-    ev0 = core0.evaluate(theta0, core0.stats(Y), reml, order=2)
+    ev = core.evaluate(psi0, st, reml, order=2)
+    ev0 = core0.evaluate(psi0, core0.stats(Y), reml, order=2)
     H0, s0 = _full_hessian(ev0, core0, reml)
     s2 = np.where(ev.ok, np.maximum(ev.r2, 1e-300), 1.0) / core.m(reml)
     _, _, stat, _ = _test(ev, Lmat, s2, H0)
@@ -272,7 +274,7 @@ def score_statistics(fit: MixedFit, fit0: MixedFit, Y, Lmat, chunk=FIT_CHUNK):
     z, stat, nu = np.zeros(F), np.zeros(F), np.ones(F)
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        z[a:b], stat[a:b], nu[a:b] = score_block(fit.core, fit0.core, fit0.theta[:, a:b],
+        z[a:b], stat[a:b], nu[a:b] = score_block(fit.core, fit0.core, fit0.psi[:, a:b],
                                                  Y[:, a:b], Lmat, fit.reml)
     bad = (fit.code == 3) | (fit0.code == 3) | ~np.isfinite(nu) | ~np.isfinite(z)
     z[bad], stat[bad], nu[bad] = 0.0, 0.0, 1.0
@@ -293,7 +295,7 @@ def contrast_statistics(fit: MixedFit, Y, Lmat, tails="two", chunk=FIT_CHUNK) ->
     out = {k: np.zeros(F) for k in ("est", "se", "stat", "nu", "z", "p", "eff")}
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        res = contrast_block(core, fit.theta[:, a:b], Y[:, a:b], Lmat, fit.reml, tails, zbar)
+        res = contrast_block(core, fit.psi[:, a:b], Y[:, a:b], Lmat, fit.reml, tails, zbar)
         for key, val in zip(("est", "se", "stat", "nu", "z", "p", "eff"), res):
             out[key][a:b] = val
     bad = fit.code == 3

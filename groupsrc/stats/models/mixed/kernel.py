@@ -18,12 +18,12 @@ Participants are the units that move, never single maps:
   for any random-effect structure and any number of maps);
 * **between-participant effects** (``compare``, a ``slope`` of a participants
   column, with or without ``within``): whole-participant permutations among
-  participants whose maps have the same layout (the same conditions,
-  sessions, map covariates and random-effect rows) and the same ``blocks``
-  label -- exchangeable because their residual vectors have the same
-  covariance.  When the layouts leave fewer distinct permutations than
-  ``min(resamples, 1000, 2^N)``, whole-participant sign flips are used instead
-  (``scheme_name`` says so, and the methods text).
+  participants whose maps have the same covariance layout (the same multiset of
+  random-effect rows) and the same ``blocks`` label -- exchangeable because their
+  residual vectors have the same covariance; counted and decided in
+  :mod:`.exchange` (relabellings of the tested columns).  When the layouts leave
+  fewer distinct relabellings than ``min(resamples, 1000, 2^N)``, whole-participant
+  sign flips are used instead (``scheme_name`` says so, and the methods text).
 
 Nuisance terms by Freedman-Lane (Freedman & Lane 1983; Winkler et al. 2014)
 in the model's own metric: ``r_z = y - X beta_z`` with ``beta_z`` the GLS fit
@@ -47,7 +47,7 @@ memory), while the observed statistic is computed from the data as they are
 and stands in for the identity flip.  ``H0_ii`` lives in the span of
 participant i's design, so this costs a few r x r products per participant
 and feature (r the number of distinct rows of a participant's design), once,
-in :meth:`MixedKernel.prepare` (:func:`_leverage_adjust`);
+in :meth:`MixedKernel.prepare` (:func:`.leverage.leverage_adjust`);
 the resampling loop is unchanged.  Whole-participant permutations move the
 residuals as they are: for a between-participant effect the nuisance terms
 live in the same (participant) stratum as the effect, and the re-estimated
@@ -55,15 +55,15 @@ residual variance compensates as in a GLM -- adjusting them made the test
 conservative (family-wise error about 2% at alpha 0.05 on the same cohorts).
 
 What is re-estimated per resample, and what is held fixed.  Held fixed per
-feature: the variance components ``theta0`` of the *null model* (the model
+feature: the variance components ``psi0`` of the *null model* (the model
 restricted to ``L beta = 0``, fitted by REML once at every feature, see
 :meth:`MixedKernel.null_fit`), so the GLS weighting ``Vbar^{-1}``, and the
-Satterthwaite df computed at that fit (they depend on ``theta0`` and the
+Satterthwaite df computed at that fit (they depend on ``psi0`` and the
 design only).  Re-estimated per resample -- and for the observed data, which
 are scored the same way: the fixed effects by GLS, the residual variance
-``sigma^2`` of the full model at ``theta0``, and so the t or F and its z.  Why
+``sigma^2`` of the full model at ``psi0``, and so the t or F and its z.  Why
 the test stays valid: the rearrangements leave the null distribution of the
-Freedman-Lane data unchanged, and ``theta0`` is estimated from the
+Freedman-Lane data unchanged, and ``psi0`` is estimated from the
 restricted model, in which the tested effect plays no part, so it describes
 the observed data and every rearrangement alike (to the approximation
 Freedman-Lane itself makes); a fixed weighting only decides which linear
@@ -80,7 +80,7 @@ observed statistic (computed, or set to it with leverage-adjusted flips).  Estim
 the maps come from the full model's REML fit (:func:`.contrast_statistics`);
 the z that forms clusters and maxima is the scored one.
 
-Cost.  With ``theta`` fixed, block-diagonal whitening commutes with
+Cost.  With ``psi`` fixed, block-diagonal whitening commutes with
 whole-participant sign flips and permutations, so per feature the data
 reduce once to ``v_i = L_A^{-1} X_i' Vbar_i^{-1} r_z,i`` (``r*_i`` for sign
 flips; p numbers per
@@ -109,10 +109,10 @@ from ...engine.perthread import PerThread
 from .model import MixedCore, MixedDesign
 from .fit import MixedFit, fit_features
 from .inference import contrast_statistics, score_statistics, scored_z, t_switch, z_of_f
-from ...resampling import Rearrangements, count_distinct_permutations, permutations, sign_flips
-
-#: fewest distinct whole-participant permutations before sign flips are used instead
-MIN_PERMUTATIONS = 1000
+from . import exchange
+from .leverage import ParticipantSpans, leverage_adjust
+from .moves import MapMoves, homogeneous
+from ...resampling import Rearrangements, permutations, sign_flips
 
 
 def _null_basis(Lmat):
@@ -190,38 +190,66 @@ class MixedKernel(StatisticKernel):
         method = "linear mixed model (" + ("REML" if self.fit.reml else "ML") + ")"
         return FitInfo(method, float(self.df[-1]), int(p), int(p - self.L.shape[0]))
 
+    def describe(self) -> dict:
+        """What the run record says about this contrast's statistic and resampling (the
+        methods text is written from it)."""
+        fit, fit0 = self.fit, self.null_fit()
+        flips = self.mode == "sign-flip"
+        adjusted = flips and self.freedman_lane and self.adjust_leverage
+        plan = getattr(self, "_plan", None)
+        return {
+            "statistic": "z",
+            "z_map": "score z: the t or F of the full model with the variance components "
+                     "of the model without the tested effect, through Satterthwaite df of "
+                     "that fit; the full model's own z is written beside it (z_full_model)",
+            "df_rule": "Satterthwaite at unconstrained REML estimates" + (
+                "; F: Fai-Cornelius" if self.kind == "F" else "")
+            if fit.reml else "Satterthwaite at unconstrained ML estimates",
+            "variance_groups": None,
+            "boundary_features": int(np.sum(fit.code == 1)),
+            "boundary_features_null_model": int(np.sum(fit0.code == 1)),
+            "not_converged_features": int(np.sum(fit.code == 2)),
+            "random_effects": list(self.core.design.z_names) or None,
+            "rearrangement": "whole-participant " + ("sign flips" if flips else
+                                                     "permutations within covariance layouts"),
+            "rearrangement_exact": not adjusted and not self.freedman_lane,
+            "rearrangement_note": (
+                "leverage-adjusted sign flips of the restricted residuals: an approximate "
+                "test in the manner of a restricted wild bootstrap, not an exact one"
+                if adjusted else "Freedman-Lane: approximate, exact without nuisance terms"
+                if self.freedman_lane else "exact"),
+            "fallback": plan.fallback if plan is not None else "",
+            "distinct_rearrangements": plan.distinct if plan is not None else None,
+        }
+
     @property
     def scheme_name(self):
         names = {"sign-flip": "whole-participant sign flips",
-                 "permutation": "whole-participant permutations within map layouts"}
+                 "permutation": "whole-participant permutations within covariance layouts"}
         text = names[self.mode]
         if self.mode != self.requested:
-            text += " (too few participants share a map layout to permute)"
+            text += " (too few participants share a covariance layout to permute)"
         if self.freedman_lane and self.adjust_leverage and self.mode == "sign-flip":
             return text + " / Freedman-Lane, leverage-adjusted residuals"
         return text + (" / Freedman-Lane" if self.freedman_lane else "")
 
     # -- rearrangements -------------------------------------------------------
-    def _blocks(self, blocks):
-        layout = self.core.design.layout
-        layout = np.zeros(self.core.N, int) if layout is None else np.asarray(layout)
-        if blocks is None:
-            return layout.astype(str)
-        return np.char.add(np.char.add(layout.astype(str), "|"), np.asarray(blocks).astype(str))
+    def rearrangement_plan(self, n_resamples, blocks=None) -> exchange.Plan:
+        """What :meth:`rearrangements` will draw, decided from the design alone."""
+        return exchange.plan(self.core.design, self.L, self.requested, n_resamples, blocks)
 
     def rearrangements(self, n_resamples, seed, blocks=None) -> Rearrangements:
         N = self.core.N
-        self.mode = self.requested
-        if self.requested == "permutation":
+        plan = self.rearrangement_plan(n_resamples, blocks)
+        self._plan = plan
+        self.mode = plan.scheme
+        if plan.scheme == "permutation":
             d = self.core.design
-            if d.between is None or d.within is None:
-                raise ValueError("whole-participant permutations need the design layout "
-                                 "(between, within, map_cols)")
-            bl = self._blocks(blocks)
-            count = count_distinct_permutations(labels=d.between, blocks=bl)
-            if count >= min(int(n_resamples), MIN_PERMUTATIONS, 2 ** min(N, 62)):
-                return permutations(N, int(n_resamples), seed, labels=d.between, blocks=bl)
-            self.mode = "sign-flip"
+            labels = exchange.tested_labels(d.between, self.L, np.asarray(d.within).shape[1])
+            layout = d.layout if d.layout is not None else np.zeros(N, int)
+            self._exchange_blocks = exchange.blocks_of(layout, blocks)
+            return permutations(N, int(n_resamples), seed, labels=labels,
+                                blocks=self._exchange_blocks)
         return sign_flips(N, int(n_resamples), seed)
 
     # -- preparation ----------------------------------------------------------
@@ -239,14 +267,18 @@ class MixedKernel(StatisticKernel):
         self._identity = (np.flatnonzero((rearr.matrix == 1).all(axis=1)) if self.adjusted
                           else np.zeros(0, int))
         self.live = np.zeros(nch * self.fc, bool)
+        self.moves = None
         if perm:
             d = core.design
             self.pb, self.pw = d.between.shape[1], d.within.shape[1]
             self.pm = 0 if d.map_cols is None else d.map_cols.shape[1]
-            width = self.pw
+            blocks = getattr(self, "_exchange_blocks", None)
+            if blocks is None or not homogeneous(d, blocks):
+                self.moves = MapMoves(core)
+            rows, width = (N, self.pw) if self.moves is None else (self.moves.width, 1)
         else:
-            width = p
-        self.data = np.zeros((nch, N, width * self.fc), np.float32)
+            rows, width = N, p
+        self.data = np.zeros((nch, rows, width * self.fc), np.float32)
         self.a = np.zeros((k, p, nch * self.fc), np.float32)
         self.rr = np.zeros(nch * self.fc, np.float32)
         self.nu = np.ones(nch * self.fc)
@@ -270,7 +302,7 @@ class MixedKernel(StatisticKernel):
         self.Sx = sparse.csr_matrix((X.ravel(), (rows, cols)), shape=(N * p, n))
         self.XX = np.zeros((N, p, p))
         np.add.at(self.XX, g, X[:, :, None] * X[:, None, :])
-        self.spans = _ParticipantSpans(core) if self.adjusted else None
+        self.spans = ParticipantSpans(core) if self.adjusted else None
         if perm:
             d = core.design
             Lw = np.hstack([d.within] + ([d.map_cols] if self.pm else []))
@@ -290,7 +322,7 @@ class MixedKernel(StatisticKernel):
         Yc = np.asarray(self.Y[:, a:b], np.float64)
         st = core.stats(Yc)
         fit0 = self.null_fit()
-        ev = core.evaluate(fit0.theta[:, a:b], st, self.fit.reml, order=0)
+        ev = core.evaluate(fit0.psi[:, a:b], st, self.fit.reml, order=0)
         live = ev.ok & (self.fit.code[a:b] != 3) & (fit0.code[a:b] != 3) \
             & np.isfinite(self.nu[a:b]) & (self.nu[a:b] > 0)
         LA = np.where(live, ev.LA, np.eye(p)[:, :, None])
@@ -312,7 +344,7 @@ class MixedKernel(StatisticKernel):
         g1 = la.solve_lower(LA[:, :, None, :], h).sum(axis=1)
         rr = np.where(live, np.maximum(ev.r2, 0.0), 1.0) + (g1 * g1).sum(axis=0)
         if self.adjusted:
-            h, extra = _leverage_adjust(h, Nz, Lz, self.spans, Ki)
+            h, extra = leverage_adjust(h, Nz, Lz, self.spans, Ki)
             rr = rr + np.where(live, extra, 0.0)
         v = la.solve_lower(LA[:, :, None, :], h)                          # (p, N, f)
         # effect directions in the whitened coordinates
@@ -329,6 +361,13 @@ class MixedKernel(StatisticKernel):
             blk[:, :, :f] = v.transpose(1, 0, 2)
             self.data[c] = blk.reshape(N, p * fc)
             return
+        self.LA[:, :, a:a + f] = LA
+        if self.moves is not None:                   # map rows: r_z and K_i Z_i' r_z,i
+            blk = np.zeros((self.moves.width, fc), np.float32)
+            blk[:core.n, :f] = np.where(live, Yc - core.X @ beta_z, 0.0)
+            blk[core.n:, :f] = np.where(live, w, 0.0).reshape(q * N, f)
+            self.data[c] = blk
+            return
         Lwy = np.asarray(self.SL @ Yc).reshape(N, self.pl, f).transpose(1, 0, 2)
         LXb = (self.LX.reshape(N * self.pl, p) @ beta_z).reshape(N, self.pl, f).transpose(1, 0, 2)
         ell = Lwy - LXb - np.einsum("aik,aif->kif", self.HL, w)          # (pl, N, f)
@@ -337,7 +376,6 @@ class MixedKernel(StatisticKernel):
         blk[:, :, :f] = ell[:self.pw].transpose(1, 0, 2)
         self.data[c] = blk.reshape(N, self.pw * fc)
         self.hm[:, a:a + f] = ell[self.pw:].sum(axis=1)
-        self.LA[:, :, a:a + f] = LA
 
     # -- resampling -----------------------------------------------------------
     def _block_rows(self, k):
@@ -350,6 +388,8 @@ class MixedKernel(StatisticKernel):
             G = np.zeros((RES_BLOCK, N), np.float32)
             G[:hi - lo] = rows
             return G
+        if self.moves is not None:
+            return self.moves.rows(rows, RES_BLOCK)
         B = self.core.design.between.astype(np.float32)
         inv = np.argsort(rows, axis=1)                                  # slot j -> data of j
         G = np.zeros((RES_BLOCK, self.pb, N), np.float32)
@@ -363,6 +403,10 @@ class MixedKernel(StatisticKernel):
         if self.rearr.kind == "sign-flip":
             P = prod.reshape(RES_BLOCK, p, fc)[rows, :, :f]
             return np.transpose(P, (1, 0, 2))
+        if self.moves is not None:
+            P = prod.reshape(RES_BLOCK, p, fc)[rows, :, :f]
+            return la.solve_lower(self.LA[:, :, None, a:b],
+                                  np.transpose(P, (1, 0, 2))).astype(np.float32)
         P = prod.reshape(RES_BLOCK, self.pb, self.pw, fc)[rows, :, :, :f]
         h = np.empty((p, R, f), np.float32)
         h[:self.pb * self.pw] = np.transpose(P.reshape(R, self.pb * self.pw, f), (1, 0, 2))
@@ -410,69 +454,6 @@ class MixedKernel(StatisticKernel):
                         np.maximum(mx[seg], z.max(axis=1), out=mx[seg])
                         np.minimum(mn[seg], z.min(axis=1), out=mn[seg])
         return out, mx, mn
-
-
-class _ParticipantSpans:
-    """Design-only parts of the leverage adjustment (once per kernel).
-
-    Participant i's design ``X_i = Q_i R_i`` (thin SVD: ``Q_i`` orthonormal, n_i x r_i;
-    ``R_i`` r_i x p), padded to the largest rank r with zero rows; ``ZQ_i = Z_i' Q_i``
-    (the model's scaled random-effect columns).  r is the number of distinct rows of
-    a participant's design (2 for two conditions), usually far below p."""
-
-    def __init__(self, core):
-        X, Z, g = core.X, core.Z, core.groups
-        parts = []
-        for i in range(core.N):
-            U, sv, Vt = np.linalg.svd(X[g == i], full_matrices=False)
-            keep = sv > 1e-10 * sv.max(initial=0.0)
-            parts.append((U[:, keep], sv[keep, None] * Vt[keep], Z[g == i]))
-        r = max(1, max(Q.shape[1] for Q, _, _ in parts))
-        self.R = np.zeros((core.N, r, core.p))
-        self.RRinv = np.ones((core.N, r))
-        self.ZQ = np.zeros((core.q, core.N, r))
-        for i, (Q, R, Zi) in enumerate(parts):
-            k = Q.shape[1]
-            self.R[i, :k] = R
-            self.RRinv[i, :k] = 1.0 / (R * R).sum(axis=1)       # R_i R_i' is diagonal
-            self.ZQ[:, i, :k] = Zi.T @ Q
-
-
-def _leverage_adjust(h, Nz, Lz, spans, Ki, cap=1.0 - 1e-3):
-    """Leverage-adjusted participant scores for sign flips (see the module docstring).
-
-    ``h`` (p, N, f) holds ``X_i' Vbar_i^-1 r_z,i``.  Returns ``X_i' Vbar_i^-1 r*_i``,
-    with ``r*_i`` participant i's restricted residual scaled by ``(I - H0_ii)^(-1/2)``
-    in the whitened metric, and per feature the growth ``||r*||^2 - ||r_z||^2`` of
-    its whitened norm.
-
-    ``H0_ii = U U'`` with ``U = Vbar_i^(-1/2) X_i C``, ``C = Nz Lz^-T`` (so ``C C' =
-    Nz A0^-1 Nz'``, ``Lz`` the Cholesky factor of the null model's ``A0``).  With
-    ``X_i = Q_i R_i`` (:class:`_ParticipantSpans`), ``S_i = Q_i' Vbar_i^-1 Q_i =
-    L_S L_S'`` and the orthonormal basis ``Y = Vbar_i^(-1/2) Q_i L_S^-T`` of the
-    whitened span: ``H0_ii = Y E Y'`` with ``E = T T'``, ``T = L_S' R_i C`` (r x r,
-    ``E = W diag(lam) W'``).  So ``(I - H0_ii)^(-1/2) = I + Y W diag(psi) W' Y'``,
-    ``psi = (1 - lam)^(-1/2) - 1``; ``Y' r~_i = y = L_S^-1 (R_i R_i')^-1 R_i h_i``;
-    ``X~_i' Y = R_i' L_S``; hence ``h*_i = h_i + R_i' L_S W diag(psi) W' y`` and the
-    norm grows by ``sum_a (W'y)_a^2 (1 / (1 - lam_a) - 1)``.  Leverages are capped at
-    ``cap`` (a participant that alone fixes a nuisance direction has no residual
-    there to scale)."""
-    p, N, f = h.shape
-    p0 = Nz.shape[1]
-    Ct = la.solve_lower(Lz, np.broadcast_to(Nz.T[:, :, None], (p0, p, f)))   # C' (p0, p, f)
-    R, ZQ = spans.R, spans.ZQ
-    r = R.shape[1]
-    S = la.eye_like(r, (1, 1)) - np.einsum("aij,abif,bik->jkif", ZQ, Ki, ZQ)  # (r, r, N, f)
-    LS, _ = la.chol(S)
-    P = np.einsum("ijk,akf->jaif", R, Ct)                                      # R_i C
-    T = np.einsum("kjif,kaif->jaif", LS, P)                                    # L_S' R_i C
-    lam, W = np.linalg.eigh(np.einsum("jaif,kaif->ifjk", T, T))                # (N, f, r)
-    lam = np.clip(lam, 0.0, cap)
-    y = la.solve_lower(LS, spans.RRinv.T[:, :, None] * np.einsum("ijk,kif->jif", R, h))
-    d = np.einsum("ifab,aif->ifb", W, y)                                       # W' y
-    extra = (d * d * (1.0 / (1.0 - lam) - 1.0)).sum(axis=(0, 2))
-    back = np.einsum("ifab,ifb->aif", W, d * (1.0 / np.sqrt(1.0 - lam) - 1.0))
-    return h + np.einsum("ijk,jlif,lif->kif", R, LS, back), extra
 
 
 def _orthonormal_columns(A):

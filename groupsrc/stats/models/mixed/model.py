@@ -13,19 +13,33 @@ Notation (the same letters in the code):
 
 * ``n`` maps, ``p`` fixed-effect columns (``X``), ``q`` random-effect columns
   (``Z``: the intercept, then one column per random slope), ``N`` participants;
-* ``Psi = Lambda Lambda'`` the random-effect covariance relative to ``sigma^2``,
-  ``Lambda`` lower triangular with a non-negative diagonal; ``theta`` its
-  lower-triangular entries row by row ((0,0), (1,0), (1,1), ...), the
-  parameterization lme4 uses (Bates et al. 2015, J Stat Softw 67(1)).
-  ``D = sigma^2 Psi`` is the random-effect covariance in data units;
+* ``Psi`` the random-effect covariance relative to ``sigma^2``, any symmetric
+  matrix for which every ``Vbar_i`` is positive definite (below: *unconstrained*);
+  ``psi`` its lower-triangular entries row by row ((0,0), (1,0), (1,1), ...), the
+  variance parameters the fit works in.  ``D = sigma^2 Psi`` is the random-effect
+  covariance in data units;
 * ``A = X' Vbar^{-1} X``, ``C = A^{-1}``, ``beta_hat = C X' Vbar^{-1} y`` (GLS),
   ``r2 = (y - X beta_hat)' Vbar^{-1} (y - X beta_hat)``;
 * ``m = n - p`` (REML) or ``m = n`` (ML); ``sigma_hat^2 = r2 / m``.
 
+Unconstrained covariance.  ``Psi`` is not required to be positive
+semi-definite, only ``Vbar_i`` positive definite (the model of the maps'
+covariance must be a covariance; a negative participant variance is a
+negative within-participant correlation).  In a balanced design the REML
+estimates are then the classical analysis-of-variance estimates, and the
+contrast tests below are the classical ones (paired t, two-sample t of the
+participant means, one-way F), whatever the data: a variance estimated
+below zero does not switch the test to another stratum's error term and
+degrees of freedom, as a fit held at zero does (Searle, Casella & McCulloch
+1992, Variance Components, ch. 4; Molenberghs & Verbeke 2011, Stat Modelling
+11:389-408; both cited from memory).  Features whose ``Psi`` is not positive
+definite are the fits that a non-negative fit (lme4, statsmodels) would put
+on the boundary; they are counted and marked (fit code 1, :mod:`.fit`).
+
 Profiled criterion (``-2`` log-likelihood with ``sigma^2`` profiled out)::
 
-    REML:  d(theta) = log|Vbar| + log|A| + m (1 + log(2 pi r2 / m))
-    ML:    d(theta) = log|Vbar| + n (1 + log(2 pi r2 / n))
+    REML:  d(psi) = log|Vbar| + log|A| + m (1 + log(2 pi r2 / m))
+    ML:    d(psi) = log|Vbar| + n (1 + log(2 pi r2 / n))
 
 the definitions of lme4 and statsmodels' ``MixedLM`` (whose tests quote the
 lme4 values on the dietox data that ``tests/test_mixed_dietox.py`` matches).
@@ -35,10 +49,12 @@ One decomposition, then O(N) per feature
 The design is shared by every feature.  It is reduced once to per-participant
 cross-products ``G_i = Z_i'Z_i`` (q x q), ``H_i = Z_i'X_i`` (q x p) and
 ``X'X``; a feature enters only through ``X'y`` (p), ``u_i = Z_i'y_i`` (q per
-participant) and ``y'y``.  With the Woodbury identity
-``Vbar_i^{-1} = I - Z_i K_i Z_i'``, ``K_i = Lambda (I + Lambda' G_i Lambda)^{-1} Lambda'``::
+participant) and ``y'y``.  With ``S_i = G_i^{1/2}`` (symmetric,
+design only), ``M_i = I + S_i Psi S_i`` (positive definite exactly when ``Vbar_i``
+is), ``Gt_i = Z_i'Vbar_i^{-1}Z_i = S_i M_i^{-1} S_i`` and the Woodbury identity
+``Vbar_i^{-1} = I - Z_i K_i Z_i'``, ``K_i = Psi - Psi Gt_i Psi``::
 
-    log|Vbar| = sum_i log|I + Lambda' G_i Lambda|
+    log|Vbar| = sum_i log|M_i|
     A   = X'X - sum_i H_i' K_i H_i          X'Vbar^{-1}y = X'y - sum_i H_i' K_i u_i
     y'Vbar^{-1}y = y'y - sum_i u_i' K_i u_i
 
@@ -47,7 +63,7 @@ whatever the number of maps.  The sums over participants of design tensors
 times per-feature coefficients are matrix products (``DH @ K``), and every
 other step is element-wise over all features at once (:mod:`.linalg`).
 
-Derivatives (analytic).  With ``Gt_i = Z_i'Vbar_i^{-1}Z_i``, ``Ht_i =
+Derivatives (analytic).  With ``Ht_i =
 Z_i'Vbar_i^{-1}X_i``, ``P_i = Ht_i C Ht_i'``, ``g_i = Z_i'Vbar_i^{-1}(y_i - X_i
 beta_hat)`` and, for a direction ``E`` of ``Psi``, ``Omega_E = sum_i Ht_i' E
 Ht_i`` and ``phi_E = sum_i Ht_i' E g_i``::
@@ -58,15 +74,17 @@ Ht_i`` and ``phi_E = sum_i Ht_i' E g_i``::
                 + (2 m / r2) (sum_i g_i' E Gt_i F g_i - phi_E' C phi_F)
 
 (ML: without the ``P`` and ``Omega`` terms, which come from ``log|A|``).  The
-derivatives in ``theta`` follow by the chain rule through ``Psi = Lambda
-Lambda'`` (the directions ``E_k = dPsi/dtheta_k`` and the constant second
-derivatives of ``Psi``).  ``tests/test_mixed_core.py`` checks them against
+parameters ``psi`` are entries of ``Psi`` itself, so their directions ``E_k =
+dPsi/dpsi_k`` are constant (``e_a e_a'`` for a diagonal entry, ``e_a e_b' + e_b
+e_a'`` for an off-diagonal one) and the criterion's second derivatives are those
+above.  ``tests/test_mixed_core.py`` checks them against
 finite differences and the criterion against statsmodels.
 
 Conditioning.  ``Z`` is used internally as ``Z R^{-1}`` with ``R'R = Z'Z /
 n``; for an unstructured ``Psi`` this is a reparameterization (``Psi =
 R^{-1} Psi_scaled R^{-T}``) that leaves the fit unchanged and makes the
-optimizer's units comparable whatever the slope covariate's scale.
+optimizer's units comparable whatever the slope covariate's scale.  The start
+values, the Newton iteration and the fit codes are in :mod:`.fit`.
 """
 
 from __future__ import annotations
@@ -83,29 +101,29 @@ MAX_RANDOM = 3
 
 
 def lower_index(q):
-    """Positions of ``theta`` in ``Lambda``: (0,0), (1,0), (1,1), (2,0), ..."""
+    """Positions of ``psi`` in ``Psi``: (0,0), (1,0), (1,1), (2,0), ..."""
     return [(a, b) for a in range(q) for b in range(a + 1)]
 
 
-def lambda_of(theta, q):
-    """``Lambda`` (q, q, F) from ``theta`` (npar, F)."""
-    Lam = np.zeros((q, q) + theta.shape[1:])
+def psi_matrix(psi, q):
+    """The symmetric ``Psi`` (q, q, F) from its lower-triangular entries ``psi`` (npar, F)."""
+    Psi = np.zeros((q, q) + psi.shape[1:])
     for k, (a, b) in enumerate(lower_index(q)):
-        Lam[a, b] = theta[k]
-    return Lam
+        Psi[a, b] = psi[k]
+        Psi[b, a] = psi[k]
+    return Psi
 
 
-def canonical_theta(theta, q):
-    """Flip the sign of every column of ``Lambda`` whose diagonal is negative
-    (``Psi = Lambda Lambda'`` is unchanged), so the diagonal is non-negative."""
-    theta = np.array(theta, dtype=float)
-    idx = lower_index(q)
-    for j in range(q):
-        neg = theta[idx.index((j, j))] < 0
-        for k, (a, b) in enumerate(idx):
-            if b == j:
-                theta[k] = np.where(neg, -theta[k], theta[k])
-    return theta
+def psi_entries(Psi):
+    """The entries ``psi`` (npar, F) of symmetric matrices ``Psi`` (q, q, F)."""
+    return np.stack([Psi[a, b] for a, b in lower_index(Psi.shape[0])])
+
+
+def symmetric_sqrt(G):
+    """``G^{1/2}`` of symmetric positive semi-definite matrices (q, q, C)."""
+    w, V = np.linalg.eigh(np.moveaxis(G, 2, 0))
+    w = np.clip(w, 0.0, None)
+    return np.moveaxis(np.einsum("cij,cj,ckj->cik", V, np.sqrt(w), V), 0, 2)
 
 
 @dataclass(frozen=True)
@@ -168,13 +186,13 @@ class Stats:
 
 @dataclass
 class Evaluation:
-    """The criterion at ``theta`` and what its derivatives and the inference reuse."""
+    """The criterion at ``psi`` and what its derivatives and the inference reuse."""
 
     dev: np.ndarray
     r2: np.ndarray
     beta: np.ndarray
     LA: np.ndarray
-    Lam: np.ndarray
+    Psi: np.ndarray
     ok: np.ndarray
     Kc: np.ndarray | None = None
     b: np.ndarray | None = None
@@ -188,7 +206,7 @@ class MixedCore:
 
     Participants whose ``G_i = Z_i'Z_i`` are equal (the same random-effect
     layout, e.g. the same conditions and sessions) share every quantity that
-    depends on ``G_i`` and ``theta`` only (``K``, ``Vbar`` determinants,
+    depends on ``G_i`` and ``psi`` only (``K``, ``Vbar`` determinants,
     ``Gt``); those are computed once per *class* of equal ``G_i``, and the
     design sums over participants are pre-summed per class.
     """
@@ -219,6 +237,7 @@ class MixedCore:
         self.cls = cls.reshape(-1)                                   # participant -> class
         self.n_classes = first.size
         self.G, self.Gc = G, G[:, :, first]                          # (q, q, N), (q, q, Cn)
+        self.Sc = symmetric_sqrt(self.Gc)                            # G_c^{1/2}
         self.count = np.bincount(self.cls, minlength=self.n_classes).astype(float)
         self.member = sparse.csr_matrix((np.ones(N), (self.cls, np.arange(N))),
                                         shape=(self.n_classes, N))   # class x participant
@@ -255,18 +274,21 @@ class MixedCore:
         return out.reshape(shape[:-2] + (self.n_classes, shape[-1]))
 
     # -- the criterion ------------------------------------------------------------
-    def evaluate(self, theta, st: Stats, reml=True, order=0) -> Evaluation:
-        """Profiled -2 log-likelihood at ``theta`` (npar, F); ``order`` 1 adds the
-        gradient, 2 the Hessian (both in ``theta``)."""
+    def evaluate(self, psi, st: Stats, reml=True, order=0) -> Evaluation:
+        """Profiled -2 log-likelihood at ``psi`` (npar, F); ``order`` 1 adds the
+        gradient, 2 the Hessian (both in ``psi``).  Where some ``Vbar_i`` is not
+        positive definite the criterion is infinite (``ok`` False)."""
         q, N, p, Cn = self.q, self.N, self.p, self.n_classes
-        F = theta.shape[1]
-        Lam = lambda_of(theta, q)
-        Lb = Lam[:, :, None, :]
-        Gb = self.Gc[..., None]                                        # (q, q, Cn, 1)
-        Ms = la.mm(la.T(Lb), la.mm(Gb, Lb)) + la.eye_like(q, (1, 1))
-        Lm, _ = la.chol(Ms)
+        F = psi.shape[1]
+        Psi = psi_matrix(psi, q)
+        Pb = Psi[:, :, None, :]
+        Sb = self.Sc[..., None]                                        # (q, q, Cn, 1)
+        Gb = self.Gc[..., None]
+        Ms = la.mm(Sb, la.mm(Pb, Sb)) + la.eye_like(q, (1, 1))
+        Lm, okc = la.chol(Ms)
         logdetV = self.count @ la.chol_logdet(Lm)
-        Kc = la.mm(Lb, la.mm(la.chol_inv(Lm), la.T(Lb)))              # (q, q, Cn, F)
+        Gtc = la.mm(Sb, la.mm(la.chol_inv(Lm), Sb))                   # Z'Vbar^-1 Z per class
+        Kc = Pb - la.mm(Pb, la.mm(Gtc, Pb))                            # (q, q, Cn, F)
         A = self.XtX.reshape(p * p, 1) - self.DHc @ Kc.reshape(q * q * Cn, F)
         A = A.reshape(p, p, F)
         u = st.u
@@ -274,6 +296,7 @@ class MixedCore:
         b = st.Xty - self.Hmat @ Ku.reshape(q * N, F)
         c = st.yy - (u * Ku).sum(axis=(0, 1))
         LA, ok = la.chol(A)
+        ok &= okc.all(axis=0)
         beta = la.chol_solve(LA, b)
         r2 = c - (b * beta).sum(axis=0)
         ok &= r2 > 0
@@ -282,33 +305,19 @@ class MixedCore:
         dev = logdetV + m * (1.0 + np.log(2.0 * np.pi * r2s / m))
         if reml:
             dev = dev + la.chol_logdet(LA)
-        ev = Evaluation(dev=np.where(ok, dev, np.inf), r2=r2, beta=beta, LA=LA, Lam=Lam, ok=ok,
+        ev = Evaluation(dev=np.where(ok, dev, np.inf), r2=r2, beta=beta, LA=LA, Psi=Psi, ok=ok,
                         Kc=Kc, b=b)
         if order:
             self._derivatives(ev, Kc, Gb, u, reml, order)
         return ev
 
-    def directions(self, Lam):
-        """dPsi/dtheta_k = E_k Lambda' + Lambda E_k' for each k: list of (q, q, F)."""
+    def directions(self):
+        """dPsi/dpsi_k (constant): ``e_a e_a'`` or ``e_a e_b' + e_b e_a'``, each (q, q, 1)."""
         out = []
         for a, b in lower_index(self.q):
-            D = np.zeros(Lam.shape)
-            D[a] += Lam[:, b]          # (E_k Lambda')[a, j] = Lambda[j, b]
-            D[:, a] += Lam[:, b]       # (Lambda E_k')[j, a] = Lambda[j, b]
+            D = np.zeros((self.q, self.q, 1))
+            D[a, b] = D[b, a] = 1.0
             out.append(D)
-        return out
-
-    def second_directions(self):
-        """d2Psi/dtheta_k dtheta_l = E_k E_l' + E_l E_k' (constant) for every (k, l)."""
-        idx = lower_index(self.q)
-        out = {}
-        for k, (a, b) in enumerate(idx):
-            for l, (c, d) in enumerate(idx):
-                S = np.zeros((self.q, self.q, 1))
-                if b == d:
-                    S[a, c] += 1.0
-                    S[c, a] += 1.0
-                out[k, l] = S
         return out
 
     def _derivatives(self, ev, Kc, Gb, u, reml, order):
@@ -330,7 +339,7 @@ class MixedCore:
             P0 = (self.DHc.T @ C.reshape(p * p, F)).reshape(q, q, Cn, F)   # sum_{i in c} H_i C H_i'
             P = la.mm(J, la.mm(P0, la.T(J)))
             Gm = Gm - P.sum(axis=2)
-        Ds = self.directions(ev.Lam)
+        Ds = self.directions()
         npar = len(Ds)
         ev.grad = np.stack([la.trace_prod(Gm, D) for D in Ds])
         ev.parts.update(C=C, g=g, Gt=Gt, J=J, P=P, Gm=Gm, Ds=Ds, m=m)
@@ -349,7 +358,6 @@ class MixedCore:
         Cphi = [la.mv(C, f) for f in phi]
         GtD = [la.mm(Gt, D) for D in Db]
         PD = [la.mm(P, D) for D in Db] if reml else []
-        second = self.second_directions()
         hess = np.empty((npar, npar, F))
         for k in range(npar):
             for l in range(k, npar):
@@ -361,7 +369,6 @@ class MixedCore:
                     h = h - la.trace_prod(CO[l], CO[k])
                 h = h - (m / r2 ** 2) * s[k] * s[l]
                 h = h + (2.0 * m / r2) * (gEGtF - (phi[k] * Cphi[l]).sum(axis=0))
-                h = h + la.trace_prod(Gm, second[k, l])
                 hess[k, l] = hess[l, k] = h
         ev.hess = hess
-        ev.parts.update(Om=Om, phi=phi, s=s, Cphi=Cphi, CO=CO, second=second)
+        ev.parts.update(Om=Om, phi=phi, s=s, Cphi=Cphi, CO=CO)
