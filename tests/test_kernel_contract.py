@@ -34,7 +34,7 @@ import statsmodels.api as sm
 from groupsrc.stats.models import ols as kernels
 from groupsrc.stats.models.mixed import kernel as mixed_kernel
 from groupsrc.stats.models.ols import OLSKernel, StatisticKernel
-from groupsrc.stats.models.mixed.model import MixedCore, psi_matrix
+from groupsrc.stats.models.mixed.model import MixedCore
 from groupsrc.stats.models.mixed.fit import fit_features
 from groupsrc.stats.models.mixed.kernel import MixedKernel
 from groupsrc.stats.models.groupvar import GroupVarianceKernel
@@ -236,7 +236,7 @@ class _MixedReference:
     def __init__(self, kernel, design, L):
         self.kernel, self.d, self.L = kernel, design, np.atleast_2d(L)
         core = kernel.core
-        self.Psi = core.psi_raw(psi_matrix(kernel.null_fit().psi, core.q))  # relative, raw Z
+        self.Psi = core.psi_raw(core.psi_of(kernel.null_fit().theta))   # relative, raw Z
 
     def _z(self, res, j):
         from scipy import stats

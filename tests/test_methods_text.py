@@ -101,8 +101,9 @@ def _common(record, md):
     assert list(sec)[:5] == ["Data", "Model", "Inference", "Effect sizes", "Short version"]
     # every contrast named with its scheme and its number of rearrangements (run.json)
     for c in record["contrasts"]:
-        assert f"{c['name']}: {c['scheme']}, {c['resamples']} random rearrangements" \
-            in sec["Inference"], c["name"]
+        how = ("all distinct rearrangements" if c.get("exact") else
+               f"{c['resamples']} random rearrangements")
+        assert f"{c['name']}: {c['scheme']}, {how}" in sec["Inference"], c["name"]
     # family-wise error control per contrast is said
     assert "within each contrast" in sec["Inference"]
     # references numbered in the order of first citation, each cited

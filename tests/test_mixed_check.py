@@ -216,13 +216,15 @@ def test_a_random_slopes_value_that_is_neither_auto_nor_a_list(tmp_path, capsys)
 
 def test_a_cohort_too_small_to_reach_alpha_is_refused(tmp_path, capsys):
     """2 vs 2 participants: 2^4 = 16 whole-participant sign flips at most, so no corrected
-    p can fall below 1/16 > 0.05 (common practice: the smallest permutation p is one over
-    the number of distinct rearrangements)."""
+    p can fall below 1/16 > 0.05, two-sided 2/16 (all signs reversed mirror the observed
+    statistic) (common practice: the smallest permutation p is one over the number of
+    distinct rearrangements)."""
     analysis = make_cohort(tmp_path / "c", n_per_group=2, sessions=["1", "2"])
     _model(analysis, "mixed = true")
     assert_refused(analysis, capsys, ["contrast 'rare_minus_frequent'", "16 distinct",
-                                      "0.0625", "above alpha = 0.05", "could never reject",
-                                      "contrast 'group_by_tone'"], out=tmp_path / "out")
+                                      "0.125", "above alpha = 0.05", "could never reject",
+                                      "contrast 'group_by_tone'", "more participants"],
+                   out=tmp_path / "out")
     # FDR needs no rearrangement
     analysis.write_text(analysis.read_text().replace('correction = "cluster-mass"',
                                                      'correction = "fdr"'))

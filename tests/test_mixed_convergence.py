@@ -3,14 +3,15 @@ and the checks that keep a fit from being called converged when it is not.
 
 Reference: statsmodels MixedLM (reference library), fitted tightly by several
 optimizers with the best kept (``_mixed_data.statsmodels_reml``).  MixedLM keeps the
-random-effect covariance positive semi-definite; groupsrc does not (an unconstrained
-covariance, groupsrc/stats/models/mixed/model.py), so:
+random-effect covariance positive semi-definite, as groupsrc does with random slopes
+(lme4's parameterization, groupsrc/stats/models/mixed/model.py), so:
 
-* everywhere, groupsrc's criterion is no worse than MixedLM's (MixedLM maximizes
-  over a subset of groupsrc's parameter space): ``dev <= -2 llf + 1e-6``; a fit that
-  stopped at a local optimum fails this;
-* where groupsrc's covariance is positive definite and MixedLM's is too (both
-  interior), the two are the same optimum: criterion, fixed effects and covariance.
+* everywhere, groupsrc's criterion is no worse than MixedLM's beyond
+  ``DEV_TOL`` = 1e-3 (a fit creeping to the boundary is accepted within about 5e-4 of
+  its limit, groupsrc/stats/models/mixed/fit.py); a fit that stopped at a local
+  optimum (issue 21 saw one 0.30 worse) fails this;
+* where both covariances are positive definite (interior fits), the two are the same
+  optimum: criterion, fixed effects and covariance.
 """
 
 from __future__ import annotations
@@ -19,9 +20,11 @@ import numpy as np
 import pytest
 
 from groupsrc.stats.models.mixed import fit as mixed_fit
-from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign, psi_matrix
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign
 
 from _mixed_data import statsmodels_reml, unbalanced_design
+
+DEV_TOL = 1e-3
 
 
 def _three_random_effects(n=24, n_features=24, seed=31, sds=(1.4, 0.9, 0.7)):
@@ -43,13 +46,13 @@ def _against_statsmodels(n_features, sds):
     core = MixedCore(design)
     fit = mixed_fit.fit_features(core, Y)
     assert not np.any(fit.code == 2), fit.counts()
-    Psi = core.psi_raw(psi_matrix(fit.psi, core.q))
+    Psi = core.psi_raw(core.psi_of(fit.theta))
     st = core.stats(Y.astype(float))
-    beta = core.evaluate(fit.psi, st).beta
+    beta = core.evaluate(fit.theta, st).beta
     interior = 0
     for j in range(Y.shape[1]):
         ref, _ = statsmodels_reml(Y[:, j].astype(float), design)
-        assert fit.dev[j] <= -2 * ref.llf + 1e-6, (j, fit.dev[j], -2 * ref.llf)
+        assert fit.dev[j] <= -2 * ref.llf + DEV_TOL, (j, fit.dev[j], -2 * ref.llf)
         cov = np.asarray(ref.cov_re) / ref.scale
         if fit.code[j] == 0 and np.linalg.eigvalsh(cov).min() > 1e-3 * np.abs(cov).max():
             interior += 1
@@ -114,7 +117,7 @@ def test_converged_check_accepts_the_optimum_and_refuses_a_nearby_point():
     core = MixedCore(design)
     fit = mixed_fit.fit_features(core, Y)
     st = core.stats(Y)
-    ok, _ = mixed_fit.converged(core, st, fit.psi)
+    ok, _, _ = mixed_fit.converged(core, st, fit.theta)
     assert ok.all()
-    moved, _ = mixed_fit.converged(core, st, fit.psi + 1e-2)
+    moved, _, _ = mixed_fit.converged(core, st, fit.theta + 1e-2)
     assert not moved.any()

@@ -21,14 +21,14 @@ import pytest
 
 from groupsrc.stats.models.mixed import fit as mixed_fit
 from groupsrc.stats.models.mixed import inference as mf
-from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign, psi_entries
+from groupsrc.stats.models.mixed.model import MixedCore, MixedDesign
 
 from _mixed_data import simulate, statsmodels_reml, unbalanced_design
 
 
-def _psi_of(core, cov_re_relative):
-    """Our psi for a relative covariance Psi given in the coding of Z."""
-    return psi_entries((core.R @ cov_re_relative @ core.R.T)[:, :, None])
+def _theta_of(core, cov_re_relative):
+    """Our theta for a relative covariance Psi given in the coding of Z."""
+    return core.theta_of((core.R @ cov_re_relative @ core.R.T)[:, :, None])
 
 
 @pytest.mark.parametrize("slope", [False, True])
@@ -39,8 +39,8 @@ def test_criterion_equals_statsmodels_loglikelihood(slope, reml):
     y = simulate(design, 1, seed=3)[:, 0].astype(float)
     ref, _ = statsmodels_reml(y, design, reml=reml)
     core = MixedCore(design)
-    psi = _psi_of(core, np.asarray(ref.cov_re) / ref.scale)
-    ev = core.evaluate(psi, core.stats(y[:, None]), reml=reml)
+    theta = _theta_of(core, np.asarray(ref.cov_re) / ref.scale)
+    ev = core.evaluate(theta, core.stats(y[:, None]), reml=reml)
     np.testing.assert_allclose(ev.dev[0], -2 * ref.llf, rtol=1e-9)
     np.testing.assert_allclose(ev.beta[:, 0], ref.fe_params, rtol=1e-7, atol=1e-9)
     np.testing.assert_allclose(ev.r2[0] / core.m(reml), ref.scale, rtol=1e-7)
@@ -49,20 +49,18 @@ def test_criterion_equals_statsmodels_loglikelihood(slope, reml):
 @pytest.mark.parametrize("reml", [True, False])
 @pytest.mark.parametrize("slope", [False, True])
 def test_gradient_and_hessian_match_finite_differences(slope, reml):
-    """Central differences of the criterion (common practice; h = 1e-5), at positive
-    definite and at indefinite (but admissible) Psi."""
+    """Central differences of the criterion (common practice; h = 1e-5); a random
+    intercept's variance also below zero (but admissible), lme4's Lambda with entries of
+    either sign."""
     design = unbalanced_design(10, seed=4, random_slope=slope)
     core = MixedCore(design)
     st = core.stats(simulate(design, 4, seed=5).astype(float))
     rng = np.random.default_rng(0)
-    q = core.q
-    A = rng.normal(0.0, 0.6, (q, q, 4))
-    Psi = np.einsum("ikf,jkf->ijf", A, A) + 0.2 * np.eye(q)[:, :, None]
-    Psi[:, :, 2:] = 0.1 * Psi[:, :, 2:] - 0.04 * np.eye(q)[:, :, None]   # indefinite
-    theta = psi_entries(Psi)
+    theta = rng.normal(0.6, 0.5, (core.npar, 4))
+    if core.unconstrained:
+        theta[0, 2:] = [-0.04, -0.1]                 # negative, every Vbar_i positive definite
     ev = core.evaluate(theta, st, reml=reml, order=2)
     assert ev.ok.all()
-    assert np.linalg.eigvalsh(np.moveaxis(Psi, 2, 0))[2:, 0].max() < 0
     h = 1e-5
     for k in range(core.npar):
         up, dn = theta.copy(), theta.copy()
@@ -84,7 +82,7 @@ def _ours(design, Y, reml=True):
         L[j] = 1.0
         ses.append(mf.contrast_statistics(fit, Y, L).se)
     st = core.stats(Y.astype(float))
-    beta = core.evaluate(fit.psi, st, reml).beta
+    beta = core.evaluate(fit.theta, st, reml).beta
     return fit, vc, beta, np.array(ses)
 
 
@@ -124,11 +122,11 @@ def test_boundary_fits_are_counted_and_at_least_as_good_as_a_non_negative_fit():
     fit, vc, beta, ses = _ours(design, Y)
     below = np.flatnonzero(fit.code == 1)
     assert below.size >= 6 and fit.counts()[mixed_fit.CODES[1]] == below.size
-    assert np.all(fit.psi[0, below] < mixed_fit.BOUNDARY_TOL)
+    assert np.all(fit.theta[0, below] < mixed_fit.BOUNDARY_TOL)
     for j in below[:6]:
         ref, _ = statsmodels_reml(Y[:, j].astype(float), design)
         assert fit.dev[j] <= -2 * ref.llf + 1e-6
-        if fit.psi[0, j] < -1e-3 and float(np.asarray(ref.cov_re)[0, 0]) < 1e-6 * ref.scale:
+        if fit.theta[0, j] < -1e-3 and float(np.asarray(ref.cov_re)[0, 0]) < 1e-6 * ref.scale:
             assert fit.dev[j] < -2 * ref.llf - 1e-6
             ols = sm.OLS(Y[:, j].astype(float), design.X).fit()
             np.testing.assert_allclose(ref.fe_params, ols.params, rtol=1e-4, atol=1e-5)
@@ -151,7 +149,7 @@ def test_balanced_one_way_estimates_are_the_anova_estimates():
     msw = ((Y - means[g]) ** 2).sum(axis=0) / (N * (k - 1))
     msb = k * ((means - means.mean(axis=0)) ** 2).sum(axis=0) / (N - 1)
     np.testing.assert_allclose(vc["sd_residual"] ** 2, msw, rtol=1e-7)
-    var_b = fit.psi[0] * vc["sd_residual"] ** 2          # Z is all ones: no rescaling
+    var_b = fit.theta[0] * vc["sd_residual"] ** 2          # Z is all ones: no rescaling
     np.testing.assert_allclose(var_b, (msb - msw) / k, rtol=1e-6, atol=1e-9)
     np.testing.assert_array_equal(fit.code == 1, msb < msw)
 

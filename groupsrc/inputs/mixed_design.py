@@ -330,14 +330,15 @@ def rearrangement_checks(settings, mdesign: MixedModelDesign, plans, blocks, pro
         if plan.model != "mixed":
             continue
         ex = exchange_plan(design, plan.weights, plan.scheme, int(inf.get("resamples", 1000)),
-                           blocks)
+                           blocks, tails=inf.get("tails", "two"))
         if ex.p_min > alpha:
+            short = ("more resamples" if int(inf.get("resamples", 1000)) < ex.distinct
+                     else "more participants")
             problems.add(where_of(plan), f"its {ex.distinct} distinct rearrangements "
                          f"({ex.scheme.replace('-', ' ')}s of whole participants) can give a "
                          f"corrected p of {ex.p_min:.3g} at the smallest, above alpha = {alpha:g}:"
                          " it could never reject",
-                         "add participants (or, for a between contrast, participants of the "
-                         "smaller group), or use correction = \"fdr\" for parametric p-values")
+                         f"it needs {short}, or correction = \"fdr\" for parametric p-values")
         elif ex.fallback:
             notes.append(f"contrast '{plan.name}': {ex.fallback}")
     return notes

@@ -19,8 +19,11 @@ are the relabellings of ``B U`` within blocks: the product over blocks of multin
 coefficients (``resampling.count_distinct_permutations``), not the permutations of
 whole between rows (a continuous age would make every one distinct and the count
 meaningless: 2 vs 2 participants have 6 group relabellings, not 24).  The smallest
-corrected p a test can reach is one over the number of distinct rearrangements; a
-design where it exceeds alpha cannot reject and is refused by ``check``.
+corrected p a test can reach is one over the number of rearrangements used (the
+distinct ones, or the resamples asked for when fewer), two over it for a two-sided
+test whose rearrangements include the observed statistic's mirror (sign flips: all
+signs reversed; a two-level tested column with equal groups in one block: the groups
+swapped); a design where it exceeds alpha cannot reject and is refused by ``check``.
 
 Sign flips replace permutations when the blocks leave fewer distinct relabellings
 than ``min(resamples, MIN_PERMUTATIONS, 2^N)`` (whole-participant sign flips need
@@ -80,26 +83,36 @@ def blocks_of(layout, blocks=None):
     return np.char.add(np.char.add(layout, "|"), np.asarray(blocks).astype(str))
 
 
-def plan(design, L, requested, n_resamples, blocks=None, variance_groups=False) -> Plan:
+def _p_min(distinct, n_resamples, mirror):
+    m = min(int(n_resamples), int(distinct))
+    return (2.0 if mirror and m == distinct else 1.0) / m
+
+
+def plan(design, L, requested, n_resamples, blocks=None, variance_groups=False,
+         tails="two") -> Plan:
     """The rearrangements of contrast ``L`` on a :class:`~.model.MixedDesign`."""
     N = design.n_participants
     flips = min(2 ** min(N, 62), 2 ** 62)
+    two = tails == "two" and np.atleast_2d(L).shape[0] == 1
     if requested == "sign-flip":
-        return Plan("sign-flip", flips, 1.0 / flips)
+        return Plan("sign-flip", flips, _p_min(flips, n_resamples, two))
     if variance_groups:
-        return Plan("sign-flip", flips, 1.0 / flips,
+        return Plan("sign-flip", flips, _p_min(flips, n_resamples, two),
                     "variance groups: participants of different variance are not "
                     "exchangeable, so whole-participant sign flips are used")
     if design.between is None or design.within is None:
         raise ValueError("whole-participant permutations need the design layout "
                          "(between, within)")
     layout = design.layout if design.layout is not None else np.zeros(N, int)
-    count = count_distinct_permutations(
-        labels=tested_labels(design.between, L, np.asarray(design.within).shape[1]),
-        blocks=blocks_of(layout, blocks))
+    labels = tested_labels(design.between, L, np.asarray(design.within).shape[1])
+    blk = blocks_of(layout, blocks)
+    count = count_distinct_permutations(labels=labels, blocks=blk)
     if count >= min(int(n_resamples), MIN_PERMUTATIONS, flips):
-        return Plan("permutation", count, 1.0 / count)
-    return Plan("sign-flip", flips, 1.0 / flips,
+        values, sizes = np.unique(labels, axis=0, return_counts=True)
+        mirror = (two and len(np.unique(blk)) == 1 and len(values) == 2
+                  and sizes[0] == sizes[1])
+        return Plan("permutation", count, _p_min(count, n_resamples, mirror))
+    return Plan("sign-flip", flips, _p_min(flips, n_resamples, two),
                 f"only {count} distinct relabelling(s) of the tested columns among "
                 "participants whose maps have the same covariance layout (the same "
                 "random-effect rows), fewer than min(resamples, "

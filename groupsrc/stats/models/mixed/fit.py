@@ -2,9 +2,9 @@
 
 Optimizer
 ---------
-Newton's method on the profiled criterion of :mod:`.model` in ``psi`` (the
-entries of the unconstrained ``Psi``), for all features at once, with the
-exact gradient and Hessian:
+Newton's method on the profiled criterion of :mod:`.model` in its parameters
+``theta`` (the unconstrained intercept variance, or lme4's ``Lambda``), for all
+features at once, with the exact gradient and Hessian:
 
 * start: a moment estimate per feature -- per-participant least-squares
   random effects from the ordinary least-squares residuals, their spread
@@ -15,30 +15,35 @@ exact gradient and Hessian:
   until the criterion does not increase (at most 30 times); a step that leaves
   the parameter space (some ``Vbar_i`` not positive definite) has an infinite
   criterion and is halved too;
-* a feature stops when its Newton step moves no entry of ``psi`` by more
-  than ``1e-6 (1 + max |psi|)`` (that step is taken: convergence is
+* a feature stops when its Newton step moves no entry of ``theta`` by more
+  than ``1e-6 (1 + max |theta|)`` (that step is taken: convergence is
   quadratic, so what remains is of the order of its square), or when no
   halving improves it; features that stop leave the working set, so late
   iterations cost little.
 
 Convergence is then *checked* (:func:`converged`), not assumed: at the final
-``psi`` the Hessian must be positive definite and the Newton decrement
+``theta`` the Hessian must be positive definite and the Newton decrement
 ``g'H^{-1}g`` (the criterion's predicted remaining decrease) below
 ``DECREMENT_TOL``, or, where the criterion is flat in some direction, every
-gradient entry small (``GRAD_TOL``).  A feature that fails the check, or stops
-at the iteration limit, is fitted again from other starting values
-(``RESTARTS``: the least-squares point ``Psi = 0`` and a large ``Psi``), and the
-best converged fit is kept (lowest criterion).
+gradient entry small (``GRAD_TOL``).  With random slopes, a fit creeping towards
+the boundary of lme4's parameter space (a diagonal entry of ``Lambda`` going to
+zero, where the Hessian turns singular and Newton's method converges only linearly)
+is accepted once that diagonal is below ``CREEP_DIAG`` and the gradient below
+``CREEP_GRAD``, and counted as a boundary fit.  A feature that fails the
+check, or stops at the iteration limit, is fitted again from other starting values
+(``RESTARTS``: a small and a large ``Psi``), and the best converged fit is kept
+(lowest criterion).
 
 Fit codes (per feature)
 -----------------------
-0 converged, ``Psi`` positive definite; 1 converged with ``Psi`` not positive
-definite -- a variance estimated at or below zero, or a correlation at or
-beyond +-1 (smallest eigenvalue of the scaled ``Psi`` below ``BOUNDARY_TOL``):
-the fits that a non-negative fit would put on the boundary of its parameter
-space; kept unconstrained (:mod:`.model`), with their fixed effects, standard
-errors and degrees of freedom, and counted; 2 not converged after the restarts
-(the best iterate is used and counted); 3 no residual variance (e.g. a
+0 converged, ``Psi`` positive definite; 1 a boundary fit: a random intercept's
+variance estimated at or below zero (below ``BOUNDARY_TOL`` relative to the
+residual variance; kept unconstrained, :mod:`.model`), or with random slopes a
+diagonal entry of ``Lambda`` below 1e-4, lme4's default tolerance
+(``isSingular``; a variance of zero or a correlation of +-1, kept as lme4 keeps
+it) -- kept with their fixed effects and standard errors, their degrees of
+freedom floored (:mod:`.inference`), and counted; 2 not converged after the
+restarts (the best iterate is used and counted); 3 no residual variance (e.g. a
 constant feature): statistic 0, p 1.
 """
 
@@ -50,7 +55,7 @@ import numpy as np
 
 from . import linalg as la
 from ...engine.blas import one_blas_thread
-from .model import MixedCore, Stats, psi_entries, psi_matrix
+from .model import MixedCore, Stats, canonical_theta, lower_index
 
 #: features per block of the fit (arrays of N x block float64 stay in cache)
 FIT_CHUNK = 4096
@@ -58,16 +63,23 @@ MAX_ITER = 100
 STEP_TOL = 1e-6
 #: convergence check: the Newton decrement g'H^-1 g (deviance units) at most this ...
 DECREMENT_TOL = 1e-8
-#: ... or, where H is not positive definite, every |gradient| * (1 + max|psi|) at most this
+#: ... or, where H is not positive definite, every |gradient| * (1 + max|theta|) at most this
 GRAD_TOL = 1e-6
-#: smallest eigenvalue of the scaled Psi below which a fit counts as a boundary fit (the
-#: square of lme4's 1e-4 tolerance on the Cholesky factor's diagonal)
+#: a random intercept's relative variance below this is a boundary fit (the square of
+#: lme4's tolerance); with random slopes a diagonal of Lambda below LAMBDA_TOL
 BOUNDARY_TOL = 1e-8
+LAMBDA_TOL = 1e-4
+#: a fit of a model with random slopes whose smallest diagonal of Lambda is below
+#: CREEP_DIAG and whose gradient (as for GRAD_TOL) is below CREEP_GRAD is at the boundary:
+#: Newton's method converges only linearly there, and the criterion is within about
+#: CREEP_DIAG * CREEP_GRAD of its limit
+CREEP_DIAG = 1e-2
+CREEP_GRAD = 5e-2
 #: smallest starting eigenvalue of Psi (scaled random-effect units)
 START_FLOOR = 0.1
-#: scaled Psi of the restarts: multiples of the identity (0: the least-squares point)
-RESTARTS = (0.0, 10.0)
-CODES = {0: "converged", 1: "boundary (covariance not positive definite)",
+#: scaled Psi of the restarts: multiples of the identity
+RESTARTS = (0.01, 10.0)
+CODES = {0: "converged", 1: "boundary (variance at or below zero)",
          2: "not converged", 3: "no residual variance"}
 
 
@@ -75,8 +87,8 @@ CODES = {0: "converged", 1: "boundary (covariance not positive definite)",
 # starting values
 # ----------------------------------------------------------------------------
 
-def start_psi(core: MixedCore, st: Stats):
-    """Moment-based starting ``psi`` (npar, F) and the degenerate mask (no residual)."""
+def start_theta(core: MixedCore, st: Stats):
+    """Moment-based starting ``theta`` (npar, F) and the degenerate mask (no residual)."""
     q, N = core.q, core.N
     beta0 = np.linalg.solve(core.XtX, st.Xty)
     rss = st.yy - (beta0 * st.Xty).sum(axis=0)
@@ -99,7 +111,7 @@ def start_psi(core: MixedCore, st: Stats):
     w, V = np.linalg.eigh(0.5 * (Psi + np.swapaxes(Psi, 1, 2)))
     w = np.clip(w, START_FLOOR ** 2, 1e6)
     Psi = np.einsum("fij,fj,fkj->ikf", V, w, V)
-    return psi_entries(Psi), degenerate
+    return core.theta_of(Psi), degenerate
 
 
 # ----------------------------------------------------------------------------
@@ -120,31 +132,35 @@ def _newton_step(H, g):
     return -la.chol_solve(L, g), ok
 
 
-def optimize(core: MixedCore, st: Stats, psi0, reml=True, max_iter=MAX_ITER):
-    """Minimize the profiled criterion for every feature: (psi, dev, iterations, stopped).
+def _canonical(core, theta):
+    return theta if core.unconstrained else canonical_theta(theta, core.q)
+
+
+def optimize(core: MixedCore, st: Stats, theta0, reml=True, max_iter=MAX_ITER):
+    """Minimize the profiled criterion for every feature: (theta, dev, iterations, stopped).
 
     A feature whose Newton step (positive definite Hessian) is below ``STEP_TOL`` takes
     that last step without another evaluation: Newton's method converges
     quadratically, so the step left after it is of the order of its square."""
-    psi = psi0.copy()
-    F = psi.shape[1]
+    theta = theta0.copy()
+    F = theta.shape[1]
     iters = np.zeros(F, np.int32)
     conv = np.zeros(F, bool)
     dev = np.full(F, np.inf)
     act = np.arange(F)
-    ev = core.evaluate(psi, st, reml, order=2)
+    ev = core.evaluate(theta, st, reml, order=2)
     dev[:] = ev.dev
     grad, hess = ev.grad, ev.hess
     for _ in range(max_iter):
         if act.size == 0:
             break
-        th = psi[:, act]
+        th = theta[:, act]
         step, newton = _newton_step(hess, grad)
         scale = 1.0 + np.abs(th).max(axis=0)
         big = np.abs(step).max(axis=0)
         final = newton & (big <= STEP_TOL * scale)
         if final.any():
-            psi[:, act[final]] = th[:, final] + step[:, final]
+            theta[:, act[final]] = _canonical(core, th[:, final] + step[:, final])
             iters[act[final]] += 1
             conv[act[final]] = True
             live = ~final
@@ -155,7 +171,7 @@ def optimize(core: MixedCore, st: Stats, psi0, reml=True, max_iter=MAX_ITER):
                 break
         sta = st.take(act)
         step *= np.minimum(1.0, 4.0 * scale / np.maximum(big, 1e-300))
-        new = th + step
+        new = _canonical(core, th + step)
         trial = core.evaluate(new, sta, reml, order=2)
         good = trial.dev <= dev[act]
         alpha = np.ones(act.size)
@@ -167,7 +183,7 @@ def optimize(core: MixedCore, st: Stats, psi0, reml=True, max_iter=MAX_ITER):
             if bad.size == 0:
                 break
             alpha[bad] *= 0.5
-            cand = th[:, bad] + alpha[bad] * step[:, bad]
+            cand = _canonical(core, th[:, bad] + alpha[bad] * step[:, bad])
             e2 = core.evaluate(cand, sta.take(bad), reml, order=0)
             ok = e2.dev <= dev[act[bad]]
             new[:, bad[ok]] = cand[:, ok]
@@ -176,7 +192,7 @@ def optimize(core: MixedCore, st: Stats, psi0, reml=True, max_iter=MAX_ITER):
         moved = np.abs(new - th).max(axis=0)
         iters[act] += 1
         stuck = ~good                                  # no (halved) step improved: at the optimum
-        psi[:, act[good]] = new[:, good]
+        theta[:, act[good]] = new[:, good]
         # accepted full steps carry fresh derivatives; halved ones need them recomputed
         full_ok = good & (alpha == 1.0)
         dev[act[full_ok]] = trial.dev[full_ok]
@@ -191,30 +207,38 @@ def optimize(core: MixedCore, st: Stats, psi0, reml=True, max_iter=MAX_ITER):
         act_keep = act[keep]
         if halved.any():
             hk = np.flatnonzero(halved[keep])
-            e3 = core.evaluate(psi[:, act_keep[hk]], st.take(act_keep[hk]), reml, order=2)
+            e3 = core.evaluate(theta[:, act_keep[hk]], st.take(act_keep[hk]), reml, order=2)
             grad[:, hk], hess[:, :, hk] = e3.grad, e3.hess
             dev[act_keep[hk]] = e3.dev
         act = act_keep
-    return psi, dev, iters, conv
+    return theta, dev, iters, conv
 
 
-def converged(core: MixedCore, st: Stats, psi, reml=True):
-    """Per feature: the convergence check at ``psi`` (module docstring) and the criterion."""
-    ev = core.evaluate(psi, st, reml, order=2)
+def converged(core: MixedCore, st: Stats, theta, reml=True):
+    """Per feature: the convergence check at ``theta`` (module docstring), the criterion,
+    and where only the boundary rule accepted the fit."""
+    ev = core.evaluate(theta, st, reml, order=2)
     g, H = ev.grad, ev.hess
     L, pd = la.chol(H)
     dec = (g * la.chol_solve(L, g)).sum(axis=0)
-    scale = 1.0 + np.abs(psi).max(axis=0)
-    flat = (np.abs(g) * scale).max(axis=0) <= GRAD_TOL
+    scale = 1.0 + np.abs(theta).max(axis=0)
+    grad = (np.abs(g) * scale).max(axis=0)
+    flat = grad <= GRAD_TOL
+    if not core.unconstrained:          # creeping to lme4's boundary (module docstring)
+        flat = flat.copy()
+        diag = np.stack([theta[lower_index(core.q).index((j, j))] for j in range(core.q)])
+        flat |= (np.abs(diag).min(axis=0) < CREEP_DIAG) & (grad <= CREEP_GRAD)
+    strict = ev.ok & np.isfinite(ev.dev) & ((pd & (dec <= DECREMENT_TOL)) | (grad <= GRAD_TOL))
     ok = ev.ok & np.isfinite(ev.dev) & ((pd & (dec <= DECREMENT_TOL)) | flat)
-    return ok, ev.dev
+    return ok, ev.dev, ok & ~strict
 
 
-def _boundary(psi, q):
-    """Fits whose scaled Psi is not positive definite (smallest eigenvalue below the
-    tolerance)."""
-    Psi = np.moveaxis(psi_matrix(psi, q), 2, 0)
-    return np.linalg.eigvalsh(Psi)[:, 0] < BOUNDARY_TOL
+def _boundary(core, theta):
+    """Boundary fits (module docstring)."""
+    if core.unconstrained:
+        return theta[0] < BOUNDARY_TOL
+    diag = np.stack([theta[lower_index(core.q).index((j, j))] for j in range(core.q)])
+    return (diag < LAMBDA_TOL).any(axis=0)
 
 
 @dataclass
@@ -223,42 +247,42 @@ class MixedFit:
 
     core: MixedCore
     reml: bool
-    psi: np.ndarray              # (npar, F) entries of the scaled Psi
+    theta: np.ndarray            # (npar, F) variance parameters (MixedCore.psi_of)
     dev: np.ndarray              # (F,) -2 log-likelihood (REML or ML)
     code: np.ndarray             # (F,) int8 fit code (CODES)
     iterations: np.ndarray       # (F,) Newton iterations (every start)
 
     @property
     def n_features(self):
-        return self.psi.shape[1]
+        return self.theta.shape[1]
 
     def counts(self) -> dict:
         return {CODES[k]: int(np.sum(self.code == k)) for k in CODES}
 
 
 def fit_block(core, Y, reml=True, max_iter=MAX_ITER):
-    """Fit the features ``Y`` (n, F): (psi, dev, code, iterations)."""
+    """Fit the features ``Y`` (n, F): (theta, dev, code, iterations)."""
     st = core.stats(Y)
-    psi0, degenerate = start_psi(core, st)
+    theta0, degenerate = start_theta(core, st)
     F = st.n_features
-    psi = np.zeros_like(psi0)
+    theta = np.zeros_like(theta0)
     dev = np.full(F, np.nan)
     iters = np.zeros(F, np.int32)
     code = np.full(F, 3, np.int8)
     live = np.flatnonzero(~degenerate)
     if live.size:
         sl = st.take(live)
-        th, dv, it, _ = optimize(core, sl, psi0[:, live], reml, max_iter)
-        ok, dv = converged(core, sl, th, reml)
+        th, dv, it, _ = optimize(core, sl, theta0[:, live], reml, max_iter)
+        ok, dv, creep = converged(core, sl, th, reml)
         for scale in RESTARTS:
             again = np.flatnonzero(~ok)
             if again.size == 0:
                 break
-            start = np.repeat(psi_entries(scale * np.eye(core.q)[:, :, None]), again.size,
+            start = np.repeat(core.theta_of(scale * np.eye(core.q)[:, :, None]), again.size,
                               axis=1)
             s2 = sl.take(again)
             th2, _, it2, _ = optimize(core, s2, start, reml, max_iter)
-            ok2, dv2 = converged(core, s2, th2, reml)
+            ok2, dv2, creep2 = converged(core, s2, th2, reml)
             it[again] += it2
             # keep the restart where it converged and is no worse, or where neither
             # converged and it is better
@@ -266,9 +290,10 @@ def fit_block(core, Y, reml=True, max_iter=MAX_ITER):
                                                                   & (dv2 < dv[again]))
             idx = again[better]
             th[:, idx], dv[idx], ok[idx] = th2[:, better], dv2[better], ok2[better]
-        psi[:, live], dev[live], iters[live] = th, dv, it
-        code[live] = np.where(~ok, 2, np.where(_boundary(th, core.q), 1, 0))
-    return psi, dev, code, iters
+            creep[idx] = creep2[better]
+        theta[:, live], dev[live], iters[live] = th, dv, it
+        code[live] = np.where(~ok, 2, np.where(_boundary(core, th) | creep, 1, 0))
+    return theta, dev, code, iters
 
 
 def fit_features(core: MixedCore, Y, reml=True, chunk=FIT_CHUNK, max_iter=MAX_ITER,
@@ -283,13 +308,13 @@ def fit_features(core: MixedCore, Y, reml=True, chunk=FIT_CHUNK, max_iter=MAX_IT
 
 def _fit_features(core, Y, reml, chunk, max_iter, progress):
     F = Y.shape[1]
-    psi = np.zeros((core.npar, F))
+    theta = np.zeros((core.npar, F))
     dev = np.full(F, np.nan)
     code = np.zeros(F, np.int8)
     iters = np.zeros(F, np.int32)
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        psi[:, a:b], dev[a:b], code[a:b], iters[a:b] = fit_block(core, Y[:, a:b], reml, max_iter)
+        theta[:, a:b], dev[a:b], code[a:b], iters[a:b] = fit_block(core, Y[:, a:b], reml, max_iter)
         if progress is not None:
             progress(b, F)
-    return MixedFit(core, reml, psi, dev, code, iters)
+    return MixedFit(core, reml, theta, dev, code, iters)

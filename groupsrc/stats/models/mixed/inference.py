@@ -8,12 +8,13 @@ Biometrics Bulletin 2:110-114) as lmerTest computes them (Kuznetsova et al.
 2017, J Stat Softw 82(13)): ``nu = 2 Phi^2 / (gamma' A gamma)`` with ``Phi``
 the contrast variance, ``gamma`` its gradient in the variance parameters
 ``(psi, sigma^2)`` and ``A = 2 H^{-1}`` from the Hessian ``H`` of the
-(non-profiled) -2 log-likelihood, at the unconstrained estimates of
-:mod:`.model` (so the df move smoothly through a participant variance of
-zero: where it is estimated below zero, the df stay near those of the
-participant stratum instead of jumping to the residual df ``n - p`` of a fit
-held at zero); where the Hessian is singular (a direction the data do not
-inform), that direction drops out (pseudo-inverse).  For F, the
+(non-profiled) -2 log-likelihood.  With a random intercept only, the variance is
+estimated unconstrained (:mod:`.model`), so the df move smoothly through a
+participant variance of zero instead of jumping to the residual df ``n - p`` of a
+fit held at zero.  With random slopes (lme4's parameterization) the directions of
+``Psi`` that sit on the boundary drop out (pseudo-inverse), as in lmerTest, and the
+df of a boundary fit are floored: at most the participant-stratum ("containment")
+df, ``N`` minus the rank of the participant-level columns (:func:`containment_df`).  For F, the
 method of Fai & Cornelius (1996, J Stat Comput Simul 54:363-378) as lmerTest
 applies it: one Satterthwaite df per eigen-direction ``nu_j`` of ``L C L'``,
 ``E = sum_{nu_j > 2} nu_j / (nu_j - 2)``, ``nu = 2 E / (E - k)`` (the
@@ -53,7 +54,7 @@ def variance_components(fit: MixedFit, Y, chunk=FIT_CHUNK) -> dict:
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
         st = core.stats(Y[:, a:b])
-        ev = core.evaluate(fit.psi[:, a:b], st, fit.reml, order=0)
+        ev = core.evaluate(fit.theta[:, a:b], st, fit.reml, order=0)
         s2 = np.maximum(ev.r2, 0.0) / core.m(fit.reml)
         D = core.psi_raw(ev.Psi) * s2
         out["sd_residual"][a:b] = np.sqrt(s2)
@@ -112,6 +113,22 @@ def scored_z(t, nu, switch):
     with np.errstate(invalid="ignore"):          # nu < 1/2: replaced just below
         z = hill_z(t, nu)
     big = np.flatnonzero((np.abs(t) >= switch) | (nu < HILL_MIN_DF))
+    if big.size:
+        z[big] = z_of_t(t[big], nu[big])
+    return z.reshape(shape)
+
+
+def z_fast(t, nu):
+    """:func:`scored_z` for df that change with every value (a resample's own df): Hill's
+    transformation, the exact tail where its value is beyond ``Z_SWITCH - 0.1`` (Hill is
+    within 1.3e-4 there, so every |z| >= 3 is exact) or the df are below ``HILL_MIN_DF``."""
+    t = np.asarray(t, float)
+    shape = t.shape
+    t = t.reshape(-1)
+    nu = np.broadcast_to(nu, shape).reshape(-1)
+    with np.errstate(invalid="ignore"):
+        z = hill_z(t, nu)
+    big = np.flatnonzero(~(np.abs(z) < Z_SWITCH - 0.1) | (nu < HILL_MIN_DF))
     if big.size:
         z[big] = z_of_t(t[big], nu[big])
     return z.reshape(shape)
@@ -223,13 +240,15 @@ def _z(stat, nu, k):
     return scored_z(stat, nu, t_switch(nu)) if k == 1 else z_of_f(stat, k, nu)
 
 
-def contrast_block(core, psi, Y, Lmat, reml, tails, zbar):
-    """Observed inference of contrast rows ``Lmat`` (k, p) on the features ``Y`` (n, F)."""
+def contrast_block(core, psi, Y, Lmat, reml, tails, zbar, cap=np.inf):
+    """Observed inference of contrast rows ``Lmat`` (k, p) on the features ``Y`` (n, F);
+    the df at most ``cap`` (per feature: the floor of boundary fits)."""
     st = core.stats(Y)
     ev = core.evaluate(psi, st, reml, order=2)
     H, s2 = _full_hessian(ev, core, reml)
     k, F = Lmat.shape[0], st.n_features
     est, se, stat, nu = _test(ev, Lmat, s2, H)
+    nu = np.minimum(nu, cap)
     z = _z(stat, nu, k)
     if k > 1:
         nan = np.full(F, np.nan)
@@ -246,7 +265,7 @@ def contrast_block(core, psi, Y, Lmat, reml, tails, zbar):
     return est, se, stat, nu, z, p, est / np.where(total_sd > 0, total_sd, np.inf)
 
 
-def score_block(core, core0, psi0, Y, Lmat, reml):
+def score_block(core, core0, psi0, Y, Lmat, reml, cap=np.inf):
     """The permutation score of a contrast: its t (or F) with the variance components
     ``psi0`` of the null model (``core0``: the model restricted to L b = 0), as z
     through the Satterthwaite df that the null model's information gives.
@@ -263,7 +282,45 @@ def score_block(core, core0, psi0, Y, Lmat, reml):
     s2 = np.where(ev.ok, np.maximum(ev.r2, 1e-300), 1.0) / core.m(reml)
     _, _, stat, _ = _test(ev, Lmat, s2, H0)
     _, _, _, nu = _test(ev, Lmat, s0, H0)
+    nu = np.minimum(nu, cap)
     return _z(stat, nu, Lmat.shape[0]), stat, nu
+
+
+def containment_df(design, Lmat):
+    """The participant-stratum ("containment") df of a contrast: ``N - rank`` of the
+    fixed-effect columns that are constant within every participant -- the df of the
+    participants' own effects, which a contrast contained in a participant-level
+    random effect (the intercept, or a random slope) is tested against; None for a
+    contrast that weighs only map covariates without a random slope (the residual
+    stratum)."""
+    X, Z, g = np.asarray(design.X, float), np.asarray(design.Z, float), np.asarray(design.groups)
+    N = int(g.max()) + 1
+    const = [j for j in range(X.shape[1])
+             if np.allclose(np.bincount(g, X[:, j] ** 2, N) * np.bincount(g, minlength=N),
+                            np.bincount(g, X[:, j], N) ** 2, rtol=1e-9, atol=1e-12)]
+    rank = np.linalg.matrix_rank(X[:, const]) if const else 0
+    if design.map_cols is not None:
+        pm = np.asarray(design.map_cols).shape[1]
+        cols = np.flatnonzero(np.abs(np.atleast_2d(Lmat)).sum(axis=0) > 0)
+        random = [j for j in range(X.shape[1] - pm, X.shape[1])
+                  if any(np.allclose(X[:, j], Z[:, c]) for c in range(Z.shape[1]))]
+        if cols.size and np.all(cols >= X.shape[1] - pm) and not set(cols) & set(random):
+            return None
+    return float(max(N - rank, 1))
+
+
+def boundary_cap(fit: MixedFit, Lmat, design=None):
+    """Per feature, the largest df a contrast may have (inf, or the containment df at a
+    boundary fit of a model with random slopes: there the directions of ``Psi`` that
+    sit at zero drop out of the Satterthwaite df, which would otherwise jump towards the
+    residual df ``n - p``)."""
+    F = fit.n_features
+    if fit.core.unconstrained:
+        return np.full(F, np.inf)
+    floor = containment_df(design if design is not None else fit.core.design, Lmat)
+    if floor is None:
+        return np.full(F, np.inf)
+    return np.where(fit.code == 1, floor, np.inf)
 
 
 def score_statistics(fit: MixedFit, fit0: MixedFit, Y, Lmat, chunk=FIT_CHUNK):
@@ -272,10 +329,11 @@ def score_statistics(fit: MixedFit, fit0: MixedFit, Y, Lmat, chunk=FIT_CHUNK):
     Lmat = np.atleast_2d(np.asarray(Lmat, float))
     F = fit.n_features
     z, stat, nu = np.zeros(F), np.zeros(F), np.ones(F)
+    cap = boundary_cap(fit0, Lmat, fit.core.design)
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        z[a:b], stat[a:b], nu[a:b] = score_block(fit.core, fit0.core, fit0.psi[:, a:b],
-                                                 Y[:, a:b], Lmat, fit.reml)
+        z[a:b], stat[a:b], nu[a:b] = score_block(fit.core, fit0.core, fit0.theta[:, a:b],
+                                                 Y[:, a:b], Lmat, fit.reml, cap[a:b])
     bad = (fit.code == 3) | (fit0.code == 3) | ~np.isfinite(nu) | ~np.isfinite(z)
     z[bad], stat[bad], nu[bad] = 0.0, 0.0, 1.0
     return z, stat, nu
@@ -293,9 +351,11 @@ def contrast_statistics(fit: MixedFit, Y, Lmat, tails="two", chunk=FIT_CHUNK) ->
     F = fit.n_features
     zbar = np.asarray(core.design.Z, float).mean(axis=0)
     out = {k: np.zeros(F) for k in ("est", "se", "stat", "nu", "z", "p", "eff")}
+    cap = boundary_cap(fit, Lmat)
     for a in range(0, F, chunk):
         b = min(F, a + chunk)
-        res = contrast_block(core, fit.psi[:, a:b], Y[:, a:b], Lmat, fit.reml, tails, zbar)
+        res = contrast_block(core, fit.theta[:, a:b], Y[:, a:b], Lmat, fit.reml, tails, zbar,
+                             cap[a:b])
         for key, val in zip(("est", "se", "stat", "nu", "z", "p", "eff"), res):
             out[key][a:b] = val
     bad = fit.code == 3

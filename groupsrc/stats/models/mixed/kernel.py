@@ -108,10 +108,12 @@ from ...engine.blas import one_blas_thread
 from ...engine.perthread import PerThread
 from .model import MixedCore, MixedDesign
 from .fit import MixedFit, fit_features
-from .inference import contrast_statistics, score_statistics, scored_z, t_switch, z_of_f
+from .inference import (contrast_statistics, score_statistics, scored_z, t_switch, z_fast,
+                        z_of_f)
 from . import exchange
 from .leverage import ParticipantSpans, leverage_adjust
 from .moves import MapMoves, homogeneous
+from . import robust
 from ...resampling import Rearrangements, permutations, sign_flips
 
 
@@ -132,14 +134,18 @@ class MixedKernel(StatisticKernel):
     contrast : weights over the design's columns.
     scheme : "sign-flip" (within-participant effect) or "permutation"
         (between-participant effect); see the module docstring.
+    variance_groups : None, or ``{"column": name, "labels": (N,) labels}``: the CR2
+        cluster-robust statistic with whole-participant sign flips (:mod:`.robust`).
     """
 
     #: flip leverage-adjusted restricted residuals (module docstring); False only to
     #: study the plain scheme
     adjust_leverage = True
 
-    def __init__(self, fit: MixedFit, Y, contrast, *, scheme="sign-flip"):
+    def __init__(self, fit: MixedFit, Y, contrast, *, scheme="sign-flip", variance_groups=None):
         self.fit, self.Y = fit, Y
+        self.vg = variance_groups
+        self.robust = variance_groups is not None
         self.core = fit.core
         self.L = np.atleast_2d(np.asarray(contrast, float))
         self.kind = "t" if self.L.shape[0] == 1 else "F"
@@ -170,7 +176,10 @@ class MixedKernel(StatisticKernel):
         docstring); estimate, SE, t or F (``test_statistic``), its Satterthwaite df
         (``df_map``) and p: the full REML fit."""
         cs = contrast_statistics(self.fit, self.Y, self.L, tails)
-        z0, _, nu0 = score_statistics(self.fit, self.null_fit(), self.Y, self.L)
+        if self.robust:
+            cs, z0, nu0 = self._robust_observed(cs, tails)
+        else:
+            z0, _, nu0 = score_statistics(self.fit, self.null_fit(), self.Y, self.L)
         self._nu = nu0
         self._z0 = np.asarray(z0, np.float32)
         med = round(float(np.median(cs.df[np.isfinite(cs.df)])), 3) \
@@ -178,6 +187,40 @@ class MixedKernel(StatisticKernel):
         self.df = (med,) if self.kind == "t" else (cs.k, med)
         return Observed(self.kind, self.df, z0, cs.estimate, cs.se, cs.std_effect, cs.p,
                         scale="z", test_statistic=cs.statistic, df_map=cs.df)
+
+    def _robust_design(self):
+        if getattr(self, "_rd", None) is None:
+            self._rd = robust.Design(self.core, np.asarray(self.vg["labels"]).astype(str))
+        return self._rd
+
+    def _robust_observed(self, cs, tails):
+        """With variance groups: estimate, CR2 standard error, t or F and Bell-McCaffrey df
+        of the full model's fit (written maps, parametric p), and the score z of the CR2
+        statistic at the null model's variance components (clusters and maxima)."""
+        rd, k = self._robust_design(), self.L.shape[0]
+        est, se, stat, nu, live = robust.robust_statistics(rd, self.fit.theta, self.Y, self.L,
+                                                           self.fit.reml)
+        bad = (self.fit.code == 3) | ~live
+        stat[bad], nu[bad] = 0.0, 1.0
+        if k == 1:
+            p = (np.minimum(1.0, 2.0 * special.stdtr(nu, -np.abs(stat))) if tails == "two"
+                 else special.stdtr(nu, -stat) if tails == "greater" else special.stdtr(nu, stat))
+            cs.se, cs.statistic = se, stat
+        else:
+            p = special.fdtrc(k, nu, np.maximum(stat, 0.0))
+            cs.statistic = stat
+            cs.std_effect = stat * k / (stat * k + nu)
+        p[bad] = 1.0
+        cs.p, cs.df = p, nu
+        cs.z = scored_z(stat, nu, t_switch(nu)) if k == 1 else z_of_f(stat, k, nu)
+        fit0 = self.null_fit()
+        _, _, stat0, nu0, live0 = robust.robust_statistics(rd, fit0.theta, self.Y, self.L,
+                                                           self.fit.reml)
+        bad0 = (self.fit.code == 3) | (fit0.code == 3) | ~live0
+        stat0[bad0], nu0[bad0] = 0.0, 1.0
+        z0 = z_fast(stat0, nu0) if k == 1 else z_of_f(stat0, k, nu0)
+        z0[bad0] = 0.0
+        return cs, z0, nu0
 
     def threshold(self, forming_p, tails):
         """The cluster-forming threshold on the z scale (the same for every feature)."""
@@ -197,15 +240,24 @@ class MixedKernel(StatisticKernel):
         flips = self.mode == "sign-flip"
         adjusted = flips and self.freedman_lane and self.adjust_leverage
         plan = getattr(self, "_plan", None)
+        vg = None
+        if self.robust:
+            labels, counts = np.unique(np.asarray(self.vg["labels"]).astype(str),
+                                       return_counts=True)
+            vg = {"column": self.vg.get("column"),
+                  "sizes": {str(a): int(b) for a, b in zip(labels, counts)},
+                  "reason": self.vg.get("reason", ""),
+                  "method": "cr2"}
         return {
             "statistic": "z",
-            "z_map": "score z: the t or F of the full model with the variance components "
-                     "of the model without the tested effect, through Satterthwaite df of "
-                     "that fit; the full model's own z is written beside it (z_full_model)",
-            "df_rule": "Satterthwaite at unconstrained REML estimates" + (
-                "; F: Fai-Cornelius" if self.kind == "F" else "")
-            if fit.reml else "Satterthwaite at unconstrained ML estimates",
-            "variance_groups": None,
+            "z_map": ("score z: the CR2 cluster-robust t or F of the full model at the "
+                      "variance components of the model without the tested effect, through "
+                      "Bell-McCaffrey df" if self.robust else
+                      "score z: the t or F of the full model with the variance components "
+                      "of the model without the tested effect, through Satterthwaite df of "
+                      "that fit") + "; the full model's own z is written beside it",
+            "df_rule": ("bell_mccaffrey" if self.robust else "satterthwaite_unconstrained"),
+            "variance_groups": vg,
             "boundary_features": int(np.sum(fit.code == 1)),
             "boundary_features_null_model": int(np.sum(fit0.code == 1)),
             "not_converged_features": int(np.sum(fit.code == 2)),
@@ -236,7 +288,8 @@ class MixedKernel(StatisticKernel):
     # -- rearrangements -------------------------------------------------------
     def rearrangement_plan(self, n_resamples, blocks=None) -> exchange.Plan:
         """What :meth:`rearrangements` will draw, decided from the design alone."""
-        return exchange.plan(self.core.design, self.L, self.requested, n_resamples, blocks)
+        return exchange.plan(self.core.design, self.L, self.requested, n_resamples, blocks,
+                             variance_groups=self.robust)
 
     def rearrangements(self, n_resamples, seed, blocks=None) -> Rearrangements:
         N = self.core.N
@@ -263,9 +316,10 @@ class MixedKernel(StatisticKernel):
         k, p, N = self.L.shape[0], core.p, core.N
         perm = rearr.kind == "permutation"
         self.adjusted = bool(self.adjust_leverage and not perm and self.freedman_lane)
-        # with adjusted flips the identity row is the observed statistic itself
-        self._identity = (np.flatnonzero((rearr.matrix == 1).all(axis=1)) if self.adjusted
-                          else np.zeros(0, int))
+        # with adjusted flips (and with variance groups, which flip full-model residuals)
+        # the identity row is the observed statistic itself
+        self._identity = (np.flatnonzero((rearr.matrix == 1).all(axis=1))
+                          if self.adjusted or self.robust else np.zeros(0, int))
         self.live = np.zeros(nch * self.fc, bool)
         self.moves = None
         if perm:
@@ -277,8 +331,10 @@ class MixedKernel(StatisticKernel):
                 self.moves = MapMoves(core)
             rows, width = (N, self.pw) if self.moves is None else (self.moves.width, 1)
         else:
-            rows, width = N, p
+            rows, width = N, (self._robust_design().G * p + k * p * k if self.robust else p)
+        self.width = width
         self.data = np.zeros((nch, rows, width * self.fc), np.float32)
+        self.flip_parts = []
         self.a = np.zeros((k, p, nch * self.fc), np.float32)
         self.rr = np.zeros(nch * self.fc, np.float32)
         self.nu = np.ones(nch * self.fc)
@@ -322,7 +378,7 @@ class MixedKernel(StatisticKernel):
         Yc = np.asarray(self.Y[:, a:b], np.float64)
         st = core.stats(Yc)
         fit0 = self.null_fit()
-        ev = core.evaluate(fit0.psi[:, a:b], st, self.fit.reml, order=0)
+        ev = core.evaluate(fit0.theta[:, a:b], st, self.fit.reml, order=0)
         live = ev.ok & (self.fit.code[a:b] != 3) & (fit0.code[a:b] != 3) \
             & np.isfinite(self.nu[a:b]) & (self.nu[a:b] > 0)
         LA = np.where(live, ev.LA, np.eye(p)[:, :, None])
@@ -355,11 +411,19 @@ class MixedKernel(StatisticKernel):
         self.live[a:b] = live
         self.a[:, :, a:a + f] = np.transpose(At, (1, 0, 2))
         self.rr[a:a + f] = rr
+        if self.robust:                      # v and the CR2 parts (robust.flip_data)
+            out = robust.robust_block(self._robust_design(), fit0.theta[:, a:b], Yc, L,
+                                      self.fit.reml)
+            v, fp = robust.flip_data(self._robust_design(), out, L.shape[0])
+            live = live & out["live"]
+            self.live[a:b] = live
+            self.flip_parts.append(fp)
+            self.a[:, :, a:a + f] = np.where(live, np.transpose(out["a"], (1, 0, 2)), 0.0)
         if not perm:
             v = np.where(live, v, 0.0)
-            blk = np.zeros((N, p, fc), np.float32)
+            blk = np.zeros((N, self.width, fc), np.float32)
             blk[:, :, :f] = v.transpose(1, 0, 2)
-            self.data[c] = blk.reshape(N, p * fc)
+            self.data[c] = blk.reshape(N, self.width * fc)
             return
         self.LA[:, :, a:a + f] = LA
         if self.moves is not None:                   # map rows: r_z and K_i Z_i' r_z,i
@@ -401,7 +465,12 @@ class MixedKernel(StatisticKernel):
         R, f, fc = rows.stop - rows.start, b - a, self.fc
         p = self.core.p
         if self.rearr.kind == "sign-flip":
-            P = prod.reshape(RES_BLOCK, p, fc)[rows, :, :f]
+            P = prod.reshape(RES_BLOCK, self.width, fc)[rows, :, :f]
+            if self.robust:                  # gg and T of robust.flip_statistic, float64
+                k, G = self.L.shape[0], self._robust_design().G
+                T = P[:, G * p:].reshape(R, k, p, k, f).transpose(1, 2, 3, 0, 4)
+                gg = P[:, :G * p].reshape(R, G, p, f).transpose(1, 2, 0, 3)
+                return gg.astype(np.float64), T.astype(np.float64)
             return np.transpose(P, (1, 0, 2))
         if self.moves is not None:
             P = prod.reshape(RES_BLOCK, p, fc)[rows, :, :f]
@@ -415,7 +484,18 @@ class MixedKernel(StatisticKernel):
         return la.solve_lower(self.LA[:, :, None, a:b], h).astype(np.float32)
 
     def _statistic(self, g, a, b):
-        """z (R, f) from g (p, R, f): t or F at the fixed variance components, then z."""
+        """z (R, f) from g (p, R, f): t or F at the fixed variance components, then z
+        (with variance groups ``g`` is the pair (g, T) of :func:`.robust.flip_statistic`)."""
+        if self.robust:                      # each resample's own CR2 statistic and df
+            gg, T = g
+            fp = self.flip_parts[a // self.fc]
+            st, nu = robust.flip_statistic(gg, T, np.transpose(self.a[:, :, a:b], (1, 0, 2))
+                                           .astype(np.float64), fp)
+            live = self.live[a:b]
+            st, nu = np.where(live, st, 0.0), np.where(live, nu, 1.0)
+            if self.kind == "t":
+                return z_fast(st, nu).astype(np.float32)
+            return z_of_f(st, self.L.shape[0], nu).astype(np.float32)
         m = np.float32(self.core.m(self.fit.reml))
         ss = (g * g).sum(axis=0)
         rss = np.maximum(self.rr[None, a:b] - ss, np.float32(1e-30))

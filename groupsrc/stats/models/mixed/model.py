@@ -13,33 +13,40 @@ Notation (the same letters in the code):
 
 * ``n`` maps, ``p`` fixed-effect columns (``X``), ``q`` random-effect columns
   (``Z``: the intercept, then one column per random slope), ``N`` participants;
-* ``Psi`` the random-effect covariance relative to ``sigma^2``, any symmetric
-  matrix for which every ``Vbar_i`` is positive definite (below: *unconstrained*);
-  ``psi`` its lower-triangular entries row by row ((0,0), (1,0), (1,1), ...), the
-  variance parameters the fit works in.  ``D = sigma^2 Psi`` is the random-effect
-  covariance in data units;
+* ``Psi`` the random-effect covariance relative to ``sigma^2``; ``theta`` the
+  variance parameters the fit works in (below); ``D = sigma^2 Psi`` is the
+  random-effect covariance in data units;
 * ``A = X' Vbar^{-1} X``, ``C = A^{-1}``, ``beta_hat = C X' Vbar^{-1} y`` (GLS),
   ``r2 = (y - X beta_hat)' Vbar^{-1} (y - X beta_hat)``;
 * ``m = n - p`` (REML) or ``m = n`` (ML); ``sigma_hat^2 = r2 / m``.
 
-Unconstrained covariance.  ``Psi`` is not required to be positive
-semi-definite, only ``Vbar_i`` positive definite (the model of the maps'
-covariance must be a covariance; a negative participant variance is a
-negative within-participant correlation).  In a balanced design the REML
-estimates are then the classical analysis-of-variance estimates, and the
-contrast tests below are the classical ones (paired t, two-sample t of the
-participant means, one-way F), whatever the data: a variance estimated
-below zero does not switch the test to another stratum's error term and
-degrees of freedom, as a fit held at zero does (Searle, Casella & McCulloch
-1992, Variance Components, ch. 4; Molenberghs & Verbeke 2011, Stat Modelling
-11:389-408; both cited from memory).  Features whose ``Psi`` is not positive
-definite are the fits that a non-negative fit (lme4, statsmodels) would put
-on the boundary; they are counted and marked (fit code 1, :mod:`.fit`).
+Parameters ``theta`` (:meth:`MixedCore.psi_of`)
+-----------------------------------------------
+* **A random intercept only** (``q = 1``, compound symmetry): ``theta = psi``, the
+  participant variance relative to ``sigma^2``, *unconstrained*: any ``psi > -1 /
+  max n_i`` (every ``Vbar_i`` positive definite).  A negative participant variance is a
+  negative within-participant correlation.  In a balanced design the REML estimates
+  are then the classical analysis-of-variance estimates and the contrast tests the
+  classical ones (paired t, two-sample t of the participant means, one-way F),
+  whatever the data: a variance estimated below zero does not switch the test to
+  another stratum's error term and degrees of freedom, as a fit held at zero does
+  (Searle, Casella & McCulloch 1992, Variance Components, ch. 3-4; Molenberghs &
+  Verbeke 2011, Stat Modelling 11:389-408; both cited from memory).
+* **Random slopes** (``q >= 2``): ``Psi = Lambda Lambda'`` positive semi-definite,
+  ``Lambda`` lower triangular with a non-negative diagonal and ``theta`` its entries
+  row by row ((0,0), (1,0), (1,1), ...), lme4's parameterization (Bates et al. 2015, J
+  Stat Softw 67(1)).  Unconstrained here, the criterion stays finite as a
+  participant's covariance turns singular along a direction the fixed effects can fit
+  (``log|Vbar|`` and ``log|A|`` cancel), and with two or three random effects per
+  participant the fits drift there (DEVELOPERS.md, "The mixed model").  A negative
+  correlation between conditions is a positive semi-definite ``Psi`` in this model.
+  Fits on the boundary (a variance of zero, a correlation of +-1) are counted, and
+  their degrees of freedom floored (:mod:`.inference`).
 
 Profiled criterion (``-2`` log-likelihood with ``sigma^2`` profiled out)::
 
-    REML:  d(psi) = log|Vbar| + log|A| + m (1 + log(2 pi r2 / m))
-    ML:    d(psi) = log|Vbar| + n (1 + log(2 pi r2 / n))
+    REML:  d(theta) = log|Vbar| + log|A| + m (1 + log(2 pi r2 / m))
+    ML:    d(theta) = log|Vbar| + n (1 + log(2 pi r2 / n))
 
 the definitions of lme4 and statsmodels' ``MixedLM`` (whose tests quote the
 lme4 values on the dietox data that ``tests/test_mixed_dietox.py`` matches).
@@ -74,10 +81,10 @@ Ht_i`` and ``phi_E = sum_i Ht_i' E g_i``::
                 + (2 m / r2) (sum_i g_i' E Gt_i F g_i - phi_E' C phi_F)
 
 (ML: without the ``P`` and ``Omega`` terms, which come from ``log|A|``).  The
-parameters ``psi`` are entries of ``Psi`` itself, so their directions ``E_k =
-dPsi/dpsi_k`` are constant (``e_a e_a'`` for a diagonal entry, ``e_a e_b' + e_b
-e_a'`` for an off-diagonal one) and the criterion's second derivatives are those
-above.  ``tests/test_mixed_core.py`` checks them against
+derivatives in ``theta`` follow by the chain rule through ``Psi(theta)``: for the
+intercept's ``psi`` the direction is constant; for ``Lambda`` the directions ``E_k =
+dPsi/dtheta_k = e_a e_b' Lambda' + Lambda e_b e_a'`` and the constant second
+derivatives of ``Psi``.  ``tests/test_mixed_core.py`` checks them against
 finite differences and the criterion against statsmodels.
 
 Conditioning.  ``Z`` is used internally as ``Z R^{-1}`` with ``R'R = Z'Z /
@@ -101,7 +108,7 @@ MAX_RANDOM = 3
 
 
 def lower_index(q):
-    """Positions of ``psi`` in ``Psi``: (0,0), (1,0), (1,1), (2,0), ..."""
+    """Positions of ``theta`` in ``Psi`` or ``Lambda``: (0,0), (1,0), (1,1), (2,0), ..."""
     return [(a, b) for a in range(q) for b in range(a + 1)]
 
 
@@ -112,6 +119,27 @@ def psi_matrix(psi, q):
         Psi[a, b] = psi[k]
         Psi[b, a] = psi[k]
     return Psi
+
+
+def lambda_of(theta, q):
+    """``Lambda`` (q, q, F) from ``theta`` (npar, F)."""
+    Lam = np.zeros((q, q) + theta.shape[1:])
+    for k, (a, b) in enumerate(lower_index(q)):
+        Lam[a, b] = theta[k]
+    return Lam
+
+
+def canonical_theta(theta, q):
+    """Flip the sign of every column of ``Lambda`` whose diagonal is negative
+    (``Psi = Lambda Lambda'`` is unchanged), so the diagonal is non-negative."""
+    theta = np.array(theta, dtype=float)
+    idx = lower_index(q)
+    for j in range(q):
+        neg = theta[idx.index((j, j))] < 0
+        for k, (a, b) in enumerate(idx):
+            if b == j:
+                theta[k] = np.where(neg, -theta[k], theta[k])
+    return theta
 
 
 def psi_entries(Psi):
@@ -186,7 +214,7 @@ class Stats:
 
 @dataclass
 class Evaluation:
-    """The criterion at ``psi`` and what its derivatives and the inference reuse."""
+    """The criterion at ``theta`` and what its derivatives and the inference reuse."""
 
     dev: np.ndarray
     r2: np.ndarray
@@ -194,6 +222,7 @@ class Evaluation:
     LA: np.ndarray
     Psi: np.ndarray
     ok: np.ndarray
+    theta: np.ndarray | None = None
     Kc: np.ndarray | None = None
     b: np.ndarray | None = None
     grad: np.ndarray | None = None
@@ -206,7 +235,7 @@ class MixedCore:
 
     Participants whose ``G_i = Z_i'Z_i`` are equal (the same random-effect
     layout, e.g. the same conditions and sessions) share every quantity that
-    depends on ``G_i`` and ``psi`` only (``K``, ``Vbar`` determinants,
+    depends on ``G_i`` and ``theta`` only (``K``, ``Vbar`` determinants,
     ``Gt``); those are computed once per *class* of equal ``G_i``, and the
     design sums over participants are pre-summed per class.
     """
@@ -220,6 +249,8 @@ class MixedCore:
         self.q = Zraw.shape[1]
         self.N = design.n_participants
         self.npar = self.q * (self.q + 1) // 2
+        #: a random intercept only: its variance unconstrained; else lme4's Lambda
+        self.unconstrained = self.q == 1
         self.sizes = np.bincount(g, minlength=self.N)
         R = np.linalg.cholesky(Zraw.T @ Zraw / self.n).T          # upper, R'R = Z'Z / n
         self.R, self.Rinv = R, np.linalg.inv(R)
@@ -274,13 +305,27 @@ class MixedCore:
         return out.reshape(shape[:-2] + (self.n_classes, shape[-1]))
 
     # -- the criterion ------------------------------------------------------------
-    def evaluate(self, psi, st: Stats, reml=True, order=0) -> Evaluation:
-        """Profiled -2 log-likelihood at ``psi`` (npar, F); ``order`` 1 adds the
-        gradient, 2 the Hessian (both in ``psi``).  Where some ``Vbar_i`` is not
+    def psi_of(self, theta):
+        """``Psi`` (q, q, F) (scaled ``Z``) from the parameters ``theta`` (npar, F)."""
+        if self.unconstrained:
+            return psi_matrix(theta, self.q)
+        Lam = lambda_of(theta, self.q)
+        return la.mm(Lam, la.T(Lam))
+
+    def theta_of(self, Psi):
+        """The parameters of a positive definite ``Psi`` (q, q, F)."""
+        if self.unconstrained:
+            return psi_entries(Psi)
+        Lam = np.moveaxis(np.linalg.cholesky(np.moveaxis(Psi, 2, 0)), 0, 2)
+        return psi_entries(Lam)                 # the lower triangle's entries
+
+    def evaluate(self, theta, st: Stats, reml=True, order=0) -> Evaluation:
+        """Profiled -2 log-likelihood at ``theta`` (npar, F); ``order`` 1 adds the
+        gradient, 2 the Hessian (both in ``theta``).  Where some ``Vbar_i`` is not
         positive definite the criterion is infinite (``ok`` False)."""
         q, N, p, Cn = self.q, self.N, self.p, self.n_classes
-        F = psi.shape[1]
-        Psi = psi_matrix(psi, q)
+        F = theta.shape[1]
+        Psi = self.psi_of(theta)
         Pb = Psi[:, :, None, :]
         Sb = self.Sc[..., None]                                        # (q, q, Cn, 1)
         Gb = self.Gc[..., None]
@@ -306,18 +351,36 @@ class MixedCore:
         if reml:
             dev = dev + la.chol_logdet(LA)
         ev = Evaluation(dev=np.where(ok, dev, np.inf), r2=r2, beta=beta, LA=LA, Psi=Psi, ok=ok,
-                        Kc=Kc, b=b)
+                        Kc=Kc, b=b, theta=theta)
         if order:
             self._derivatives(ev, Kc, Gb, u, reml, order)
         return ev
 
-    def directions(self):
-        """dPsi/dpsi_k (constant): ``e_a e_a'`` or ``e_a e_b' + e_b e_a'``, each (q, q, 1)."""
+    def directions(self, theta):
+        """dPsi/dtheta_k: the constant ``e_0 e_0'`` (intercept only), or ``E_k Lambda' +
+        Lambda E_k'`` (``E_k = e_a e_b'``), each (q, q, F) or (q, q, 1)."""
+        if self.unconstrained:
+            return [np.ones((1, 1, 1))]
+        Lam = lambda_of(theta, self.q)
         out = []
         for a, b in lower_index(self.q):
-            D = np.zeros((self.q, self.q, 1))
-            D[a, b] = D[b, a] = 1.0
+            D = np.zeros(Lam.shape)
+            D[a] += Lam[:, b]          # (E_k Lambda')[a, j] = Lambda[j, b]
+            D[:, a] += Lam[:, b]       # (Lambda E_k')[j, a] = Lambda[j, b]
             out.append(D)
+        return out
+
+    def second_directions(self):
+        """d2Psi/dtheta_k dtheta_l = E_k E_l' + E_l E_k' (constant; Lambda only)."""
+        idx = lower_index(self.q)
+        out = {}
+        for k, (a, b) in enumerate(idx):
+            for l, (c, d) in enumerate(idx):
+                S = np.zeros((self.q, self.q, 1))
+                if b == d:
+                    S[a, c] += 1.0
+                    S[c, a] += 1.0
+                out[k, l] = S
         return out
 
     def _derivatives(self, ev, Kc, Gb, u, reml, order):
@@ -339,7 +402,7 @@ class MixedCore:
             P0 = (self.DHc.T @ C.reshape(p * p, F)).reshape(q, q, Cn, F)   # sum_{i in c} H_i C H_i'
             P = la.mm(J, la.mm(P0, la.T(J)))
             Gm = Gm - P.sum(axis=2)
-        Ds = self.directions()
+        Ds = self.directions(ev.theta)
         npar = len(Ds)
         ev.grad = np.stack([la.trace_prod(Gm, D) for D in Ds])
         ev.parts.update(C=C, g=g, Gt=Gt, J=J, P=P, Gm=Gm, Ds=Ds, m=m)
@@ -358,6 +421,7 @@ class MixedCore:
         Cphi = [la.mv(C, f) for f in phi]
         GtD = [la.mm(Gt, D) for D in Db]
         PD = [la.mm(P, D) for D in Db] if reml else []
+        second = None if self.unconstrained else self.second_directions()
         hess = np.empty((npar, npar, F))
         for k in range(npar):
             for l in range(k, npar):
@@ -369,6 +433,8 @@ class MixedCore:
                     h = h - la.trace_prod(CO[l], CO[k])
                 h = h - (m / r2 ** 2) * s[k] * s[l]
                 h = h + (2.0 * m / r2) * (gEGtF - (phi[k] * Cphi[l]).sum(axis=0))
+                if second is not None:
+                    h = h + la.trace_prod(Gm, second[k, l])
                 hess[k, l] = hess[l, k] = h
         ev.hess = hess
         ev.parts.update(Om=Om, phi=phi, s=s, Cphi=Cphi, CO=CO)
