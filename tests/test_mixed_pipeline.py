@@ -310,3 +310,17 @@ def test_followup_refuses_inputs_changed_since_the_run(results, tmp_path, capsys
     rc = main(["followup", str(res), "--mask", str(copy / "mask.nii.gz")])
     text = capsys.readouterr().err
     assert rc == 1 and maps.path[3] in text and "changed since the run" in text
+
+
+def test_the_full_models_own_z_is_written_beside_the_score_z(results):
+    """z_full_model: the written t through the written df, as the z of equal one-sided
+    tail probability (scipy.stats t and normal tails)."""
+    _, out = results
+    folder = out / "rare_minus_frequent"
+    t, df = _img(folder / "test_statistic.nii.gz"), _img(folder / "df.nii.gz")
+    zf = _img(folder / "z_full_model.nii.gz")
+    mask = _img(out / "source_mask.nii.gz") > 0
+    tt, dd = t[mask].astype(float), df[mask].astype(float)
+    ref = np.sign(tt) * stats.norm.isf(stats.t.sf(np.abs(tt), dd))
+    np.testing.assert_allclose(zf[mask], ref, rtol=1e-4, atol=1e-4)
+    assert not np.allclose(zf[mask], _img(folder / "statistic.nii.gz")[mask])   # not the score

@@ -179,7 +179,9 @@ def inference_paragraph(summary, contrasts, cite) -> str:
     if resampled and correction not in ("fdr", "none"):
         desc = []
         for c in resampled:
-            how = ("all distinct rearrangements (an exact test)" if c.get("exact") else
+            how = ("all distinct rearrangements" + (
+                " (an exact test)" if c.get("rearrangement_exact", c.get("model") != "mixed")
+                else "") if c.get("exact") else
                    f"{c['n_resamples']} random rearrangements including the observed one")
             desc.append(f"{c['name']}: {c['scheme']}, {how}")
         seed = inf.get("seed", summary.get("seed"))
@@ -346,11 +348,16 @@ def _mixed_text(summary, mixed, cite) -> str:
             + ". Every map was used, whatever the number of maps or conditions a participant "
             "had. The standard errors are those of the fixed effects given the variance "
             "estimates; t tests used Satterthwaite degrees of freedom "
-            f"{cite('satterthwaite')} computed as lmerTest does {cite('lmertest')}")
+            f"{cite('satterthwaite')} from the Hessian of the REML criterion "
+            f"{cite('lmertest')}")
     if any(c["kind"] == "F" for c in mixed):
         text += f", F tests the method of Fai and Cornelius {cite('fai')}"
     text += (". Because the df differ by source and sample, maps, clusters and maxima use "
-             "the z of equal p (each t or F converted through its own df).")
+             "a z of equal p: the score z, the full model's t or F with the variance "
+             "components of the model without the tested effect, converted through that "
+             "fit's Satterthwaite df (the same statistic as every rearrangement's, below); "
+             "the full model's own z, its t or F through its own df, is written beside it "
+             "(z_full_model).")
     for c in mixed:
         spec = _spec(summary, c)
         _, tested = MEANING[contrast_kind(spec, c["kind"])](spec, c)
@@ -360,13 +367,16 @@ def _mixed_text(summary, mixed, cite) -> str:
         extra = [t.format(n=c[k]) for k, t in COUNT_TEXT.items() if c.get(k)]
         text += (f" {c['name']} tested {tested} ({c['kind']}{rng}"
                  + "".join(f"; {e}" for e in extra) + ").")
-    text += (f" Of the {n} fits, {share('converged')} converged with a positive definite "
-             "participant covariance, "
-             f"{share('boundary (covariance not positive definite)')} with one that is not (a "
-             "variance estimated at or below zero: the variance components were not "
-             "constrained to be non-negative, so that a variance near zero or a negative "
-             "within-participant correlation does not change the error term, and balanced "
-             f"designs give the classical tests), {share('not converged')} did not converge "
-             f"from any of three starting values and {share('no residual variance')} had no "
-             "residual variance.")
+    text += (f" Of the {n} fits, {share('converged')} converged inside the parameter space, "
+             f"{share('boundary (variance at or below zero)')} on its boundary"
+             + (" (a variance of zero or a correlation of +-1, kept with the estimates of that "
+                "fit; their degrees of freedom were capped at the participant-level df, N minus "
+                "the rank of the participant-level design, instead of moving towards the "
+                "residual df)" if slopes else
+                " (a participant variance estimated at or below zero: it was not constrained "
+                "to be non-negative, so that a variance near zero or a negative "
+                "within-participant correlation keeps the classical error term, and balanced "
+                "designs give the classical tests)")
+             + f", {share('not converged')} did not converge from any of three starting "
+             f"values and {share('no residual variance')} had no residual variance.")
     return text

@@ -168,6 +168,12 @@ DF_RULE_TEXT = {
                             "use the z of equal p"),
     "satterthwaite": ("its degrees of freedom at each source and sample by Satterthwaite's "
                       "rule {satterthwaite}"),
+    "satterthwaite_unconstrained": None,        # the mixed model's paragraph says it
+    "bell_mccaffrey": ("a cluster-robust (CR2) standard error with participants as clusters "
+                       "and its Bell-McCaffrey degrees of freedom, the working covariance "
+                       "scaled per variance group; whole-participant sign flips of the "
+                       "CR2-adjusted residuals, each rearrangement converted through its own "
+                       "degrees of freedom"),
     "floored": ("its degrees of freedom floored where a fit lay on the boundary"),
 }
 
@@ -178,6 +184,9 @@ def variance_groups_text(vg) -> str | None:
     sizes = vg.get("sizes") or {}
     parts = join(f"{k} ({v})" for k, v in sizes.items())
     why = f"; {vg['reason']}" if vg.get("reason") else ""
+    if vg.get("method") == "cr2":                  # the mixed model
+        return (f"the variance groups of {vg.get('column', '?')} ({parts}) were allowed "
+                f"their own variances through a cluster-robust statistic{why}")
     return (f"residual variances were estimated separately in the variance groups of "
             f"{vg.get('column', '?')}: {parts}{why}")
 
@@ -187,8 +196,9 @@ COUNT_TEXT = {
     "degenerate_features": ("{n} source x sample points had no variance to test against "
                             "(every value equal); their statistic is undefined (NaN), they "
                             "join no cluster and have no p-value"),
-    "boundary_features": ("{n} source x sample points had a fit on the boundary of the "
-                          "parameter space (a variance estimated as zero)"),
+    "boundary_features": ("{n} source x sample points had a boundary fit (a participant "
+                          "variance estimated at or below zero, or with random slopes a "
+                          "variance of zero or a correlation of +-1)"),
 }
 
 
@@ -295,4 +305,5 @@ MIXED_ADJUSTED = (
     "model's covariance, multiplied by (I - H_ii)^(-1/2), where H_ii is that participant's "
     "block of the hat matrix of the model without the tested effect {leverage}. The observed "
     "statistic is computed from the data as they are and counts as the identity "
-    "rearrangement. ")
+    "rearrangement. These flips make the test approximate, in the manner of a restricted "
+    "wild bootstrap, not exact. ")

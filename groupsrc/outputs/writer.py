@@ -120,6 +120,12 @@ def write_maps(c: ContrastResult, maps, folder: Path, reported) -> None:
         maps.estimate(folder, "test_statistic", inf.test_statistic, c.name, f"{named} value",
                       signed=inf.kind == "t")
         maps.estimate(folder, "df", inf.df_map, c.name, "df Satterthwait", signed=False)
+        # the full model's own z (its t or F through its own df), beside the score z
+        from ..stats.models.mixed.inference import z_of_f, z_of_t
+        t, d = np.asarray(inf.test_statistic, float), np.asarray(inf.df_map, float)
+        z = z_of_t(t, d) if inf.kind == "t" else z_of_f(t, inf.df[0], d)
+        maps.estimate(folder, "z_full_model", np.where(np.isfinite(z), z, 0.0), c.name,
+                      "z full model", signed=inf.kind == "t")
     maps.p_values(folder, "p_uncorrected", inf.p_uncorrected, c.name, "uncorrected")
     if inf.p_corrected is not None:
         maps.p_values(folder, "p_corrected", inf.p_corrected, c.name, "corrected")
