@@ -10,7 +10,7 @@ maps are ``sd_ratio`` times as variable (all three parts).  With ``negative`` th
 condition-1 maps get minus ``negative`` times the intercept (a negative
 within-participant correlation when ``negative > 0``: the participant effect moves the
 two conditions apart).  Fields are smooth in space (6x6x6 box, face neighbours) and
-time (10 samples), or independent features with ``smooth = False``.  No effect
+time (10 samples), or ``INDEPENDENT`` independent features with ``smooth = False``.  No effect
 anywhere: every contrast's null hypothesis holds.
 
 The random effects of the model follow groupsrc's default (``random_slopes =
@@ -60,9 +60,13 @@ def design(rng, sizes=(8, 8), max_sessions=3, missing=(), slopes="auto"):
     return d, grp[g] == small
 
 
+#: independent features per data set (smooth = False): enough for the point-wise rate
+INDEPENDENT = 600
+
+
 def noise(rng, n, smooth):
     if not smooth:
-        return rng.standard_normal((n, int(np.prod(SHAPE)) * T))
+        return rng.standard_normal((n, INDEPENDENT))
     vol = ndimage.gaussian_filter(rng.standard_normal((n,) + SHAPE + (T,)),
                                   (0, 1.0, 1.0, 1.0, 1.2))
     sd = vol.std()

@@ -200,6 +200,13 @@ def inference_paragraph(summary, contrasts, cite) -> str:
             first = dict(multilevel=cite("multilevel"), freedman=cite("freedman"))  # reading order
             moved = (MIXED_ADJUSTED.format(leverage=cite("leverage")) if adjusted
                      else "The observed data are one of the rearrangements. ")
+            if any("CR2" in c.get("scheme", "") for c in mixed):
+                moved += ("With variance groups, the sign flips move each participant's "
+                          "residual vector of the full model, multiplied by (I - H_ii)^(-1/2) "
+                          "(the CR2 adjustment), on the fitted values of the model without the "
+                          "tested effect; every rearrangement's CR2 statistic is converted "
+                          "through its own Bell-McCaffrey df, and the observed statistic "
+                          "counts as the identity: an approximate test (a wild bootstrap). ")
             out.append(MIXED_RESAMPLING.format(moved=moved, **first))
     if correction in ("cluster-mass", "cluster-extent"):
         thr = [f"{c['name']} {'z' if c.get('scale') == 'z' else c['kind']} = "

@@ -14,6 +14,10 @@ run (the machine may be shared).
    ``--reference`` features of the same data; for a random intercept and for a
    random intercept + condition slope.  Also groupsrc's fit plus one contrast's
    statistics (estimate, SE, Satterthwaite df, z) per feature.
+3. The statistics of issue 21 against the ones they stand beside: the CR2 statistic with
+   variance groups (sign flips, each resample studentized through its own df) against the
+   model-based score, and whole-participant permutations through the map-rows path (a
+   continuous map covariate) against the between-rows path.
 2. One permutation-corrected resample: the mixed kernel against the GLM kernel on
    the same 20,000 features (2,000 sources of a box grid x 10 samples; the GLM on
    each participant's condition difference, or condition average, as the
@@ -158,6 +162,47 @@ def bench_resample(X, W, B, g, cond, Y, resamples, repeats):
               f"{mf / gf:5.1f}x   (aim 10x, floor 30x)")
 
 
+def bench_new_statistics(X, W, B, g, cond, Y, resamples, repeats):
+    """The statistics issue 21 added, per resample against the one they stand beside."""
+    print("\n3. new statistics (median per resample, products + statistic)")
+    F = Y.shape[1]
+    Z = np.ones((len(g), 1))
+    N = B.shape[0]
+    core = MixedCore(MixedDesign(X, Z, g, between=B, within=W,
+                                 layout=map_layout(Z, g, N)))
+    fit = fit_features(core, Y)
+    out = np.empty((resamples, F), np.float32)
+    groups = {"column": "group", "labels": B[:, 1].astype(int)}
+    for name, L, scheme in (("within", [0, 1.0, 0, 0.5, 0, 0], "sign-flip"),
+                            ("between", [0, 0, 1.0, 0.5, 0, 0], "permutation")):
+        times = {}
+        for label, vg in (("model-based", None), ("CR2 (variance groups)", groups)):
+            k = MixedKernel(fit, Y, L, scheme=scheme, variance_groups=vg)
+            k.observed("two")
+            k.prepare(k.rearrangements(resamples + 1, 3))
+            times[label] = (median_time(lambda: k.resampled(1, resamples + 1, out), repeats)
+                            / resamples, k.scheme_name)
+        (a, an), (b, bn) = times.values()
+        print(f"  {name:8s} model-based [{an}]: {a * 1e3:6.2f} ms | CR2 [{bn}]: "
+              f"{b * 1e3:6.2f} ms -> {b / a:4.1f}x")
+    # permutations: a continuous map covariate takes the map-rows path
+    rng = np.random.default_rng(7)
+    trials = rng.uniform(20, 60, len(g))[:, None]
+    times = {}
+    for label, XX, M, L in (("between rows", X, None, [0, 0, 1.0, 0.5, 0, 0]),
+                            ("map rows", np.c_[X, trials], trials, [0, 0, 1.0, 0.5, 0, 0, 0])):
+        d = MixedDesign(XX, Z, g, between=B, within=W, map_cols=M, layout=map_layout(Z, g, N))
+        k = MixedKernel(fit_features(MixedCore(d), Y), Y, L, scheme="permutation")
+        k.observed("two")
+        k.prepare(k.rearrangements(resamples + 1, 3))
+        times[label] = (median_time(lambda: k.resampled(1, resamples + 1, out), repeats)
+                        / resamples, k.moves is not None)
+    (a, used_a), (b, used_b) = times.values()
+    print(f"  between, permutations: no map covariate (map-rows path: {used_a}) "
+          f"{a * 1e3:6.2f} ms | a continuous map covariate (map-rows path: {used_b}) "
+          f"{b * 1e3:6.2f} ms -> {b / a:4.1f}x")
+
+
 def main():
     ap = argparse.ArgumentParser()
     ap.add_argument("--features", type=int, default=20000)
@@ -171,6 +216,7 @@ def main():
           f"{dict(zip(*np.unique(sessions // 2, return_counts=True)))}), {a.features} features")
     bench_fit(X, W, g, cond, Y, a.reference, a.repeats)
     bench_resample(X, W, B, g, cond, Y, a.resamples, a.repeats)
+    bench_new_statistics(X, W, B, g, cond, Y, a.resamples, a.repeats)
 
 
 if __name__ == "__main__":

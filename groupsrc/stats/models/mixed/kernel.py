@@ -264,8 +264,12 @@ class MixedKernel(StatisticKernel):
             "random_effects": list(self.core.design.z_names) or None,
             "rearrangement": "whole-participant " + ("sign flips" if flips else
                                                      "permutations within covariance layouts"),
-            "rearrangement_exact": not adjusted and not self.freedman_lane,
+            "rearrangement_exact": not (adjusted or self.robust or self.freedman_lane),
             "rearrangement_note": (
+                "sign flips of the full model's CR2-adjusted residuals on the fitted values "
+                "of the model without the tested effect, each rearrangement studentized "
+                "through its own df: an approximate test (a wild bootstrap), not an exact one"
+                if self.robust else
                 "leverage-adjusted sign flips of the restricted residuals: an approximate "
                 "test in the manner of a restricted wild bootstrap, not an exact one"
                 if adjusted else "Freedman-Lane: approximate, exact without nuisance terms"
@@ -279,6 +283,8 @@ class MixedKernel(StatisticKernel):
         names = {"sign-flip": "whole-participant sign flips",
                  "permutation": "whole-participant permutations within covariance layouts"}
         text = names[self.mode]
+        if self.robust:
+            return text + " of CR2-adjusted residuals (variance groups)"
         if self.mode != self.requested:
             text += " (too few participants share a covariance layout to permute)"
         if self.freedman_lane and self.adjust_leverage and self.mode == "sign-flip":
