@@ -90,7 +90,8 @@ def prepare(settings: Settings, *, progress=None, prior=None) -> Prepared:
     for spec in settings.contrasts:
         cwhere = f"{settings.path} contrast '{spec.name}'"
         if _model_of(spec, settings) == "mixed":
-            plan = plan_mixed_contrast(spec, design, mixed, problems, cwhere) \
+            plan = plan_mixed_contrast(spec, design, mixed, problems, cwhere,
+                                       settings.inference.get("variance_groups")) \
                 if mixed is not None else None
         else:
             plan = plan_contrast(spec, glm_design, problems, cwhere,
@@ -393,7 +394,11 @@ def _mixed_contrast(prep, plan, fitted, samples, spec, execution, adjacency, inf
     from .stats.models.reduction import reduce_maps
     cohort, md = prep.cohort, prep.mixed
     within_col = prep.settings.model.get("within")
-    kernel = MixedKernel(fitted["fit"], fitted["Y"], plan.weights, scheme=plan.scheme)
+    groups = (None if plan.groups is None else
+              {"column": plan.groups.column, "labels": plan.groups.labels,
+               "reason": plan.groups.reason})
+    kernel = MixedKernel(fitted["fit"], fitted["Y"], plan.weights, scheme=plan.scheme,
+                         variance_groups=groups)
     result = _in_units(infer(kernel, adjacency, _with_blocks(spec, cohort, md.participants, inf),
                              execution), cohort.units)
     # descriptive per-participant measure (cluster time courses): participants whose

@@ -105,3 +105,45 @@ def test_a_degenerate_source_in_a_two_group_comparison():
     assert np.isnan(res.statistic[0]).all()
     assert np.isfinite(res.null["max_stat"]).all() and res.null["max_stat"].max() < 1e3
     assert (res.p_corrected[5:8, 1:4] <= 0.05).any()
+
+
+@pytest.mark.parametrize("groups", [False, True], ids=["model-based", "variance-groups"])
+@pytest.mark.parametrize("correction", ["cluster-mass", "max-stat"])
+def test_a_constant_condition_difference_in_the_mixed_model(groups, correction):
+    """The mixed model: at source 0 every participant's two conditions differ by the
+    same amount while participants differ (a random intercept, no residual within
+    participants).  Its residual variance is zero and the t of the condition effect is
+    not finite (scipy's reference above); the source is undefined (fit code 3), counted,
+    and never part of a cluster or a maximum."""
+    import sys
+    from pathlib import Path
+    sys.path.insert(0, str(Path(__file__).parent))
+    import _mixed_cohorts as mc
+    from groupsrc.stats.inference import InferenceSpec, infer
+    from groupsrc.stats.models.mixed.fit import fit_features
+    from groupsrc.stats.models.mixed.kernel import MixedKernel
+    from groupsrc.stats.models.mixed.model import MixedCore
+    d, Y, small = mc.cohort(4, max_sessions=1)
+    clean_Y = Y.copy()
+    g, cond = np.asarray(d.groups), np.asarray(d.within)[:, 1]
+    level = np.random.default_rng(0).standard_normal(g.max() + 1)[g]
+    S, T = mc.grid().n_sources, mc.T
+    Y = Y.reshape(len(g), S, T)
+    Y[:, 0, :] = (level + 0.7 * cond)[:, None]
+    Y = Y.reshape(len(g), -1)
+    L, scheme = mc.CONTRASTS["within"]
+    vg = {"column": "group", "labels": small.astype(int)} if groups else None
+    spec = InferenceSpec(correction=correction, n_resamples=100, seed=3, forming_p=0.01)
+    clean = infer(MixedKernel(fit_features(MixedCore(d), clean_Y), clean_Y, L, scheme=scheme,
+                              variance_groups=vg), mc.grid().adjacency("face"), spec)
+    fit = fit_features(MixedCore(d), Y)
+    assert (fit.code.reshape(S, T)[0] == 3).all() and (fit.code.reshape(S, T)[1:] != 3).all()
+    kernel = MixedKernel(fit, Y, L, scheme=scheme, variance_groups=vg)
+    res = infer(kernel, mc.grid().adjacency("face"), spec)
+    assert np.isnan(res.statistic[0]).all() and np.isfinite(res.statistic[1:]).all()
+    assert res.statistic_info["degenerate_features"] == T
+    assert np.isnan(res.p_corrected[0]).all() and np.isnan(res.p_uncorrected[0]).all()
+    assert (res.cluster_labels[0] == 0).all()
+    # every feature is fitted alone: the null is the clean data's with source 0 scored 0
+    assert np.isfinite(res.null["max_stat"]).all()
+    assert (res.null["max_stat"] <= clean.null["max_stat"] + 1e-5).all()

@@ -172,6 +172,8 @@ class ContrastPlan:
         """What ``check`` calls the statistic: t, F, Welch v or G (variance groups)."""
         if self.groups is None:
             return self.kind
+        if self.model == "mixed":
+            return f"CR2 {self.kind}"            # cluster-robust (stats/models/mixed/robust)
         return "Welch v" if self.kind == "t" else "G"
 
 

@@ -20,12 +20,12 @@ the same linear function of the coefficients.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
-from .design import ID, ContrastPlan, Design, plan_contrast, weights_over
+from .design import ID, ContrastPlan, Design, plan_contrast, variance_groups, weights_over
 from .problems import ProblemList
 
 
@@ -241,8 +241,12 @@ def within_vector(mdesign: MixedModelDesign, within: dict | None) -> np.ndarray:
     return np.mean(list(rows.values()), axis=0)
 
 
-def plan_mixed_contrast(spec, design: Design, mdesign: MixedModelDesign, problems, where):
-    """The contrast over the mixed model's columns (same meaning as the GLM's)."""
+def plan_mixed_contrast(spec, design: Design, mdesign: MixedModelDesign, problems, where,
+                        variance_groups_setting="none"):
+    """The contrast over the mixed model's columns (same meaning as the GLM's).  With
+    variance groups (:func:`..inputs.design.variance_groups`, labels in the mixed
+    model's participant order) the contrast is tested by the CR2 statistic with
+    whole-participant sign flips (:mod:`..stats.models.mixed.robust`)."""
     cols = list(mdesign.X.columns)
     p_m = len(mdesign.map_names)
     if spec.weights:
@@ -277,6 +281,11 @@ def plan_mixed_contrast(spec, design: Design, mdesign: MixedModelDesign, problem
                      "simplify the contrast or the model (groupsrc check prints the columns)")
         return None
     plan.model = "mixed"
+    vg = variance_groups(variance_groups_setting, spec, design, problems, where)
+    if vg is not None:
+        by_id = dict(zip(design.participants, vg.labels))
+        plan.groups = replace(vg, labels=np.array([by_id[p] for p in mdesign.participants]))
+        plan.scheme = "sign-flip"
     return plan
 
 
@@ -330,7 +339,8 @@ def rearrangement_checks(settings, mdesign: MixedModelDesign, plans, blocks, pro
         if plan.model != "mixed":
             continue
         ex = exchange_plan(design, plan.weights, plan.scheme, int(inf.get("resamples", 1000)),
-                           blocks, tails=inf.get("tails", "two"))
+                           blocks, variance_groups=plan.groups is not None,
+                           tails=inf.get("tails", "two"))
         if ex.p_min > alpha:
             short = ("more resamples" if int(inf.get("resamples", 1000)) < ex.distinct
                      else "more participants")

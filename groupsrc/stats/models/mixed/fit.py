@@ -55,6 +55,7 @@ import numpy as np
 
 from . import linalg as la
 from ...engine.blas import one_blas_thread
+from ..glm import degenerate as glm_degenerate
 from .model import MixedCore, Stats, canonical_theta, lower_index
 
 #: features per block of the fit (arrays of N x block float64 stay in cache)
@@ -101,6 +102,11 @@ def start_theta(core: MixedCore, st: Stats):
     s2 = np.maximum((rss - proj) / df_w, 1e-12 * np.maximum(rss, 1e-300) / core.n)
     full = rank == q
     degenerate = ~(rss > 1e-10 * np.maximum(st.yy, 1e-300))
+    if core.n > int(rank.sum()):
+        # no residual within participants (e.g. the same condition difference in every
+        # participant): the residual variance is zero and every t infinite -- undefined,
+        # as in the GLM (glm.degenerate, the same tolerance)
+        degenerate |= glm_degenerate(np.maximum(rss - proj, 0.0), st.yy)
     if not full.any():
         Psi = np.repeat(np.eye(q)[:, :, None] * START_FLOOR ** 2, st.n_features, axis=2)
     else:

@@ -358,8 +358,8 @@ def contrast_statistics(fit: MixedFit, Y, Lmat, tails="two", chunk=FIT_CHUNK) ->
                              cap[a:b])
         for key, val in zip(("est", "se", "stat", "nu", "z", "p", "eff"), res):
             out[key][a:b] = val
-    bad = fit.code == 3
-    for key, v in (("stat", 0.0), ("z", 0.0), ("p", 1.0), ("eff", 0.0)):
-        out[key][bad] = v
+    bad = fit.code == 3       # degenerate: undefined (NaN), as in the GLM (glm.degenerate)
+    for key in ("stat", "z", "p", "eff", "nu"):
+        out[key][bad] = np.nan
     return ContrastStats(out["est"], out["se"], out["stat"], out["nu"], out["z"], out["p"],
                          out["eff"], Lmat.shape[0])

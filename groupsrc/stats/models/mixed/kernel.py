@@ -180,6 +180,9 @@ class MixedKernel(StatisticKernel):
             cs, z0, nu0 = self._robust_observed(cs, tails)
         else:
             z0, _, nu0 = score_statistics(self.fit, self.null_fit(), self.Y, self.L)
+        # degenerate features (fit code 3): an undefined statistic, counted by
+        # stats.inference like the GLM's; every resample scores them 0
+        z0 = np.where(self.fit.code == 3, np.nan, z0)
         self._nu = nu0
         self._z0 = np.asarray(z0, np.float32)
         med = round(float(np.median(cs.df[np.isfinite(cs.df)])), 3) \
@@ -211,6 +214,7 @@ class MixedKernel(StatisticKernel):
             cs.statistic = stat
             cs.std_effect = stat * k / (stat * k + nu)
         p[bad] = 1.0
+        p[self.fit.code == 3] = np.nan
         cs.p, cs.df = p, nu
         cs.z = scored_z(stat, nu, t_switch(nu)) if k == 1 else z_of_f(stat, k, nu)
         fit0 = self.null_fit()
