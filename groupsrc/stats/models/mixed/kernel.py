@@ -214,7 +214,7 @@ class MixedKernel(StatisticKernel):
             cs.statistic = stat
             cs.std_effect = stat * k / (stat * k + nu)
         p[bad] = 1.0
-        p[self.fit.code == 3] = np.nan
+        p[(self.fit.code == 3) | (self.fit.code == 2)] = np.nan     # as contrast_statistics
         cs.p, cs.df = p, nu
         cs.z = scored_z(stat, nu, t_switch(nu)) if k == 1 else z_of_f(stat, k, nu)
         fit0 = self.null_fit()
