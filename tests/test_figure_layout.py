@@ -145,7 +145,6 @@ def test_no_text_overlaps_in_any_figure_kind(checked, tmp_path_factory):
     from _outputs_fixture import results_folder
     from _surface_fixture import make_surface_cohort
     from _cifti_volume_fixture import make_volume_cohort
-    from conftest import make_cohort
     from test_mixed_check import _model, _unbalanced
 
     kinds = set()

@@ -12,7 +12,6 @@ import hashlib
 import shutil
 
 import pandas as pd
-import pytest
 
 from _surface_fixture import make_surface_cohort
 from conftest import make_cohort

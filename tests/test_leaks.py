@@ -263,7 +263,7 @@ def test_groupsrc_cache_shows_clears_and_limits(tmp_path, monkeypatch, capsys):
     assert main(["cache"]) == 0
     text = capsys.readouterr().out
     found = cache_upkeep.entries(folder)
-    assert len(found) == 2 and f"entries      : 2, " in text, text
+    assert len(found) == 2 and "entries      : 2, " in text, text
     assert all(e.key[:12] in text for e in found) and "4 GiB (default" in text, text
     # --limit: stored in the folder, the least recently used entry removed
     one = max(e.size for e in found)

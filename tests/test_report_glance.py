@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import re
 
-import numpy as np
 import pandas as pd
 import pytest
 

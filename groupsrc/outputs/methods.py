@@ -242,10 +242,10 @@ def effect_paragraph(summary, contrasts, cite) -> str:
         glm_t = [c for c in contrasts if c["kind"] == "t" and c.get("model", "glm") == "glm"]
         mixed_t = [c for c in contrasts if c["kind"] == "t" and c.get("model") == "mixed"]
         both = bool(glm_t and mixed_t)
-        how = join(([f"the t distribution at the residual df"
+        how = join((["the t distribution at the residual df"
                      + (f" ({join(c['name'] for c in glm_t)})" if both else "")]
                     if glm_t else [])
-                   + ([f"the t distribution at each point's Satterthwaite df"
+                   + (["the t distribution at each point's Satterthwaite df"
                        + (f" ({join(c['name'] for c in mixed_t)})" if both else "")]
                       if mixed_t else []))
         out.append(f"Contrast estimates of the t contrasts ({join(tc)}) are reported in {unit} "

@@ -386,7 +386,7 @@ def surface_figures(space, stat, labels, clusters, reported, times, name, kind, 
             views_figure(space, stat[:, t_idx], inside, kind, title, b, vlim=vlim,
                          strong=labels[:, t_idx] > 0, threshold=threshold,
                          numbers=(shown, signs), inflated=inflated)
-            out.append(((f"The same on the inflated surface (smoothed so that the walls and "
+            out.append((("The same on the inflated surface (smoothed so that the walls and "
                          "floors of sulci show; light grey: gyri, darker grey: sulci)."
                          if inflated else
                          f"The {kind} map at {times[t_idx]:g} ms on the template surface: "
