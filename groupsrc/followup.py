@@ -506,7 +506,6 @@ def refit(values, mdesign, reml, contrasts):
     note = "; ".join(sorted({str(w.message).splitlines()[0] for w in caught}))
     rows = []
     ci = np.asarray(fit.conf_int())
-    p = X.shape[1]
     for j, term in enumerate(X.columns):
         rows.append({"term": term, "kind": "fixed", "estimate": fit.fe_params.iloc[j],
                      "std_error": fit.bse_fe.iloc[j], "z": fit.tvalues.iloc[j],

@@ -101,7 +101,7 @@ def test_gifti_pairs_in_nested_bids_folders(tmp_path, capsys):
         folder.mkdir(parents=True, exist_ok=True)
         for hemi, h in (("left", "L"), ("right", "R")):
             shutil.copy(src / row[f"path_{hemi}"],
-                        folder / f"{pid}_ses-1_cond-{cond}_hemi-{h}_desc-mne.func.gii")
+                        folder / f"{pid}_ses-1_cond-{cond}_hemi-{h}_desc-minnorm.func.gii")
     assert main(["init", str(study / "derivatives")]) == 0
     out = capsys.readouterr().out
     assert "16 maps (GIfTI maps per hemisphere) of 8 participants" in out, out
@@ -110,7 +110,7 @@ def test_gifti_pairs_in_nested_bids_folders(tmp_path, capsys):
     assert list(maps.columns) == ["participant_id", "condition", "session", "path_left",
                                   "path_right"]
     assert maps.loc[0, "path_left"] == "derivatives/sub-01/ses-1/sub-01_ses-1_cond-frequent_" \
-                                       "hemi-L_desc-mne.func.gii"
+                                       "hemi-L_desc-minnorm.func.gii"
     # the edits the file asks for: the meshes and the time axis (GIfTI carries none here)
     shutil.copytree(src / "template", study / "template")
     text = (study / "analysis.toml").read_text()

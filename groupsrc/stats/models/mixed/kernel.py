@@ -415,7 +415,7 @@ class MixedKernel(StatisticKernel):
         v = la.solve_lower(LA[:, :, None, :], h)                          # (p, N, f)
         # effect directions in the whitened coordinates
         At = la.solve_lower(LA[:, :, None, :], np.broadcast_to(L.T[:, :, None], (p, L.shape[0], f)))
-        At = _orthonormal_columns(At)                                     # (p, k, f)
+        At = la.orthonormal_columns(At)                                     # (p, k, f)
         At = np.where(live, At, 0.0)
         fc = self.fc
         self.live[a:b] = live
@@ -544,15 +544,3 @@ class MixedKernel(StatisticKernel):
                         np.maximum(mx[seg], z.max(axis=1), out=mx[seg])
                         np.minimum(mn[seg], z.min(axis=1), out=mn[seg])
         return out, mx, mn
-
-
-def _orthonormal_columns(A):
-    """Gram-Schmidt on the columns of A (p, k, F), per feature."""
-    p, k = A.shape[:2]
-    Q = np.array(A, dtype=float)
-    for j in range(k):
-        for i in range(j):
-            Q[:, j] -= (Q[:, i] * Q[:, j]).sum(axis=0) * Q[:, i]
-        nrm = np.sqrt((Q[:, j] * Q[:, j]).sum(axis=0))
-        Q[:, j] /= np.where(nrm > 0, nrm, 1.0)
-    return Q

@@ -146,3 +146,15 @@ def sym_pinv_solve(H, g, rtol=1e-10):
     gf = np.moveaxis(g, 0, -1)
     c = np.einsum("...ji,...j->...i", V, gf) * winv
     return np.moveaxis(np.einsum("...ij,...j->...i", V, c), -1, 0)
+
+
+def orthonormal_columns(A):
+    """Gram-Schmidt on the columns of A (p, k, F), per feature."""
+    p, k = A.shape[:2]
+    Q = np.array(A, dtype=float)
+    for j in range(k):
+        for i in range(j):
+            Q[:, j] -= (Q[:, i] * Q[:, j]).sum(axis=0) * Q[:, i]
+        nrm = np.sqrt((Q[:, j] * Q[:, j]).sum(axis=0))
+        Q[:, j] /= np.where(nrm > 0, nrm, 1.0)
+    return Q

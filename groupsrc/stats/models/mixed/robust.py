@@ -165,13 +165,7 @@ def directions(LA, Lmat):
     """Orthonormal effect directions ``a`` (p, k, f) in the coordinates of ``L_A``."""
     p, k, f = Lmat.shape[1], Lmat.shape[0], LA.shape[2]
     At = la.solve_lower(LA[:, :, None, :], np.broadcast_to(Lmat.T[:, :, None], (p, k, f)))
-    Q = np.array(At, dtype=float)
-    for j in range(k):
-        for i in range(j):
-            Q[:, j] -= (Q[:, i] * Q[:, j]).sum(axis=0) * Q[:, i]
-        nrm = np.sqrt((Q[:, j] * Q[:, j]).sum(axis=0))
-        Q[:, j] /= np.where(nrm > 0, nrm, 1.0)
-    return Q
+    return la.orthonormal_columns(At)
 
 
 def fai_cornelius(nus, k):
@@ -224,7 +218,7 @@ def robust_block(rd: Design, psi, Yc, Lmat, reml):
     st = core.stats(Yc)
     ev = core.evaluate(psi, st, reml, order=0)
     live = ev.ok
-    p, N, f, k = core.p, core.N, Yc.shape[1], Lmat.shape[0]
+    p, f, k = core.p, Yc.shape[1], Lmat.shape[0]
     LA = np.where(live, ev.LA, np.eye(p)[:, :, None])
     Ki = ev.Kc[:, :, core.cls]
     h = rd.scores(Yc, st, Ki)
